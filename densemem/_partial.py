@@ -1,0 +1,222 @@
+"""The partial-softmax kernel and its exact merge.
+
+Every retrieval path in densemem reduces *some set of stored rows* to a
+:class:`Partial` per query batch and merges partials with :func:`merge`:
+
+    m   : running max of z = beta * score                      (B,)   float64
+    l   : sum_i exp(z_i - m)                                   (B,)   float64
+    acc : sum_i exp(z_i - m) * x_i                             (B, d) float32
+    top : the k largest z with their global row numbers        (B, k)
+
+Two partials over disjoint row sets merge exactly (the online-softmax identity,
+Milakov & Gimelshein, arXiv:1805.02867): ``m = max(m1, m2)``,
+``l = l1 e^(m1-m) + l2 e^(m2-m)``, ``acc`` likewise, ``top`` = the k largest of
+both. The merge is associative and commutative, so any tree order gives the same
+answer up to rounding.
+
+``m`` only has to be a *reference* value: any ``m >= max z - small`` keeps the
+exponentials finite, and the merge is exact for any reference.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["Partial", "block", "gathered", "merge", "finish"]
+
+_NEG = -np.inf
+
+
+@dataclass(slots=True)
+class Partial:
+    """Softmax statistics of one query batch over one set of stored rows."""
+
+    m: np.ndarray  # (B,) float64 reference (max of z seen), -inf when no rows
+    l: np.ndarray  # (B,) float64
+    acc: np.ndarray | None  # (B, d) float32, None when not asked for
+    top_z: np.ndarray  # (B, k) float32, -inf padded, unsorted
+    top_i: np.ndarray  # (B, k) int64 global row numbers, -1 padded
+
+    @property
+    def n_queries(self) -> int:
+        return int(self.m.shape[0])
+
+
+def empty(n_queries: int, dim: int, k: int, *, need_acc: bool = True) -> Partial:
+    """The partial of an empty row set (the identity of :func:`merge`)."""
+    return Partial(
+        m=np.full(n_queries, _NEG),
+        l=np.zeros(n_queries),
+        acc=np.zeros((n_queries, dim), dtype=np.float32) if need_acc else None,
+        top_z=np.full((n_queries, k), _NEG, dtype=np.float32),
+        top_i=np.full((n_queries, k), -1, dtype=np.int64),
+    )
+
+
+def _select_top(vals: np.ndarray, idx: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
+    """Keep the k largest entries per row of (vals, idx); pad with -inf / -1."""
+    width = vals.shape[1]
+    if width > k:
+        sel = np.argpartition(vals, width - k, axis=1)[:, width - k :]
+        return np.take_along_axis(vals, sel, 1), np.take_along_axis(idx, sel, 1)
+    if width < k:
+        pad = k - width
+        vals = np.concatenate([vals, np.full((vals.shape[0], pad), _NEG, vals.dtype)], axis=1)
+        idx = np.concatenate([idx, np.full((idx.shape[0], pad), -1, np.int64)], axis=1)
+    return vals, idx
+
+
+_GROUP = 16  # columns per group in the two-level top-k of a tile
+
+
+def _block_top(z: np.ndarray, k: int, offset: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Top-k of a score tile and each row's max, without a full partition.
+
+    The tile's columns are folded into ``G = width // 16`` strided groups
+    (group j holds columns j, j+G, j+2G, ...). One element-wise max over the 16
+    slices gives every group's max; the k groups with the largest maxima
+    contain every top-k entry (if an entry's group were outside them, k other
+    groups would each hold a larger entry). Only those k * 16 entries are then
+    partitioned. Columns past ``16 * G`` are candidates directly.
+
+    Returns (top_z, top_i, row_max).
+    """
+    n_rows, width = z.shape
+    n_groups = width // _GROUP
+    if n_groups <= k:
+        idx = np.broadcast_to(np.arange(width, dtype=np.int64), z.shape)
+        vals, top_i = _select_top(z, idx, k)
+        return vals, top_i + offset, z.max(axis=1).astype(np.float64)
+    main = n_groups * _GROUP
+    gmax = z[:, :n_groups].copy()  # (B, G): element-wise max of 16 column slices
+    for c in range(1, _GROUP):
+        np.maximum(gmax, z[:, c * n_groups : (c + 1) * n_groups], out=gmax)
+    row_max = gmax.max(axis=1)
+    best = np.argpartition(gmax, n_groups - k, axis=1)[:, n_groups - k :]  # (B, k)
+    cols = (best[:, :, None] + (np.arange(_GROUP, dtype=np.int64) * n_groups)[None, None, :]).reshape(n_rows, -1)
+    if main < width:
+        rest = np.broadcast_to(np.arange(main, width, dtype=np.int64), (n_rows, width - main))
+        cols = np.concatenate([cols, rest], axis=1)
+        row_max = np.maximum(row_max, z[:, main:].max(axis=1))
+    vals = np.take_along_axis(z, cols, 1)
+    vals, top_i = _select_top(vals, cols, k)
+    return vals, top_i + offset, row_max.astype(np.float64)
+
+
+def block(
+    z: np.ndarray,
+    rows: np.ndarray,
+    *,
+    k: int,
+    offset: int = 0,
+    need_acc: bool = True,
+) -> Partial:
+    """Partial of a tile of stored rows shared by every query.
+
+    Parameters
+    ----------
+    z : ndarray of shape (n_queries, n_rows), float32
+        ``beta * queries @ rows.T``. Overwritten in place.
+    rows : ndarray of shape (n_rows, dim), float32
+        The stored rows of this tile.
+    k : int
+        Size of the top list kept (0 keeps none).
+    offset : int
+        Global row number of ``rows[0]``.
+    need_acc : bool
+        Whether to form the weighted sum of rows (the second matrix product).
+    """
+    if k > 0:
+        top_z, top_i, m = _block_top(z, k, offset)
+    else:
+        top_z = np.empty((z.shape[0], 0), np.float32)
+        top_i = np.empty((z.shape[0], 0), np.int64)
+        m = z.max(axis=1).astype(np.float64)
+    z -= m[:, None].astype(np.float32)
+    np.exp(z, out=z)
+    l = z.sum(axis=1).astype(np.float64)  # float32 pairwise sum: ~1e-7 relative
+    acc = z @ rows if need_acc else None
+    return Partial(m=m, l=l, acc=acc, top_z=top_z, top_i=top_i)
+
+
+def gathered(
+    z: np.ndarray,
+    rows: np.ndarray | None,
+    ids: np.ndarray,
+    *,
+    k: int,
+) -> Partial:
+    """Partial over a per-query candidate set (certified and index-backed paths).
+
+    Parameters
+    ----------
+    z : ndarray of shape (n_queries, n_cand)
+        ``beta * score`` of each query's candidates; ``-inf`` marks a missing one.
+    rows : ndarray of shape (n_queries, n_cand, dim) or None
+        The candidate vectors (None: no weighted sum).
+    ids : ndarray of shape (n_queries, n_cand), int64
+        Global row numbers of the candidates (-1 for a missing one).
+    k : int
+        Size of the top list kept.
+    """
+    z = np.asarray(z, dtype=np.float64)
+    m = z.max(axis=1)
+    safe_m = np.where(np.isfinite(m), m, 0.0)
+    w = np.exp(z - safe_m[:, None])
+    l = w.sum(axis=1)
+    acc = None
+    if rows is not None:
+        acc = np.einsum("bc,bcd->bd", w.astype(np.float32), rows, optimize=True).astype(np.float32)
+    top_z, top_i = _select_top(z.astype(np.float32), ids.astype(np.int64), k)
+    return Partial(m=m, l=l, acc=acc, top_z=top_z, top_i=top_i)
+
+
+def _rescale(m_old: np.ndarray, m_new: np.ndarray) -> np.ndarray:
+    """exp(m_old - m_new), with an empty side (-inf) giving 0 instead of NaN."""
+    with np.errstate(invalid="ignore"):
+        d = m_old - m_new
+    return np.where(np.isfinite(m_old), np.exp(np.where(np.isfinite(d), d, _NEG)), 0.0)
+
+
+def merge(a: Partial, b: Partial) -> Partial:
+    """Merge two partials over disjoint row sets, exactly."""
+    m = np.maximum(a.m, b.m)
+    ea, eb = _rescale(a.m, m), _rescale(b.m, m)
+    l = a.l * ea + b.l * eb
+    acc = None
+    if a.acc is not None and b.acc is not None:
+        acc = a.acc * ea.astype(np.float32)[:, None] + b.acc * eb.astype(np.float32)[:, None]
+    k = max(a.top_z.shape[1], b.top_z.shape[1])
+    top_z, top_i = _select_top(
+        np.concatenate([a.top_z, b.top_z], axis=1), np.concatenate([a.top_i, b.top_i], axis=1), k
+    )
+    return Partial(m=m, l=l, acc=acc, top_z=top_z, top_i=top_i)
+
+
+@dataclass(slots=True)
+class Finished:
+    """A partial turned into answers."""
+
+    states: np.ndarray | None  # (B, d) float32, the softmax-weighted mean
+    lse: np.ndarray  # (B,) float64, log sum_i exp(z_i)
+    top_i: np.ndarray  # (B, k) row numbers, heaviest first
+    top_w: np.ndarray  # (B, k) softmax weights, heaviest first
+    top_z: np.ndarray  # (B, k) beta * score, heaviest first
+
+
+def finish(p: Partial) -> Finished:
+    """Normalise a partial: states = acc / l, lse = m + log l, sorted top list."""
+    states = None
+    if p.acc is not None:
+        states = (p.acc / p.l[:, None]).astype(np.float32)
+    with np.errstate(divide="ignore"):
+        lse = p.m + np.log(p.l)
+    order = np.argsort(-p.top_z, axis=1, kind="stable")
+    top_z = np.take_along_axis(p.top_z, order, 1)
+    top_i = np.take_along_axis(p.top_i, order, 1)
+    with np.errstate(invalid="ignore"):
+        top_w = np.exp(top_z.astype(np.float64) - p.m[:, None]) / p.l[:, None]
+    top_w = np.where(top_i >= 0, top_w, 0.0)
+    return Finished(states=states, lse=lse, top_i=top_i, top_w=top_w, top_z=top_z)

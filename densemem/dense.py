@@ -1,0 +1,459 @@
+"""The dense (continuous, modern Hopfield) associative memory."""
+
+from __future__ import annotations
+
+from typing import Any, Literal
+
+import faiss
+import numpy as np
+
+from . import _partial as P
+from ._exact import exact_reduce
+from ._table import PatternTable
+from ._tiles import DEFAULT_TILE_MIB, n_threads_default
+from ._validation import (
+    check_beta,
+    check_k,
+    check_nonneg_float,
+    check_positive_int,
+    check_queries,
+)
+from .errors import InputValueError
+from .results import NearestResult, RetrievalResult
+
+__all__ = ["DenseMemory"]
+
+Method = Literal["auto", "exact", "certified", "index"]
+_METHODS = ("auto", "exact", "certified", "index")
+
+
+class DenseMemory:
+    """A store of real-valued patterns retrieved by the softmax (modern Hopfield) update.
+
+    Parameters
+    ----------
+    dim : int
+        Number of features of every stored pattern.
+    normalize : bool, default False
+        L2-normalise stored patterns and queries (cosine geometry).
+    beta : float, default 1.0
+        Default inverse temperature for :meth:`retrieve` and :meth:`energy`.
+    tile_mib : float, default 16.0
+        Working-memory budget (MiB) of one (query chunk x tile) score block.
+    n_threads : int, optional
+        Threads for retrieval (default: the cores available).
+
+    See Also
+    --------
+    DenseMemory.from_array : build a memory from an array in one call.
+
+    Notes
+    -----
+    One update maps a state ``xi`` to ``X.T @ softmax(beta * X @ xi)`` and the
+    energy is ``-lse(beta, X xi)/beta + xi.xi/2 + log(N)/beta + M^2/2`` with
+    ``M`` the largest stored norm [1]_.
+
+    References
+    ----------
+    .. [1] H. Ramsauer et al., "Hopfield Networks is All You Need", ICLR 2021,
+       arXiv:2008.02217.
+
+    Examples
+    --------
+    >>> import numpy as np, densemem
+    >>> mem = densemem.DenseMemory.from_array(np.eye(3), beta=50.0)
+    >>> mem.retrieve([0.9, 0.1, 0.0]).top_ids[0]
+    0
+    """
+
+    def __init__(
+        self,
+        dim: int,
+        *,
+        normalize: bool = False,
+        beta: float = 1.0,
+        tile_mib: float = DEFAULT_TILE_MIB,
+        n_threads: int | None = None,
+    ) -> None:
+        where = "DenseMemory"
+        self._table = PatternTable(check_positive_int(dim, name="dim", where=where), normalize=bool(normalize))
+        self._beta = check_beta(beta, where=where)
+        self.tile_mib = check_nonneg_float(tile_mib, name="tile_mib", where=where, strict=True)
+        self.n_threads = (
+            n_threads_default() if n_threads is None else check_positive_int(n_threads, name="n_threads", where=where)
+        )
+        self._max_norm: float | None = None
+        self._max_norm_version = -1
+        self._index: Any = None  # a candidate index (see build_index); seam for the store format
+
+    # ------------------------------------------------------------------ build
+    @classmethod
+    def from_array(
+        cls,
+        patterns: Any,
+        ids: Any = None,
+        *,
+        normalize: bool = False,
+        beta: float = 1.0,
+        **options: Any,
+    ) -> "DenseMemory":
+        """Build a memory holding ``patterns`` (n_patterns x dim).
+
+        Parameters
+        ----------
+        patterns : array-like of shape (n_patterns, dim)
+            Real numbers; float64 and integers are converted to float32.
+        ids : sequence of int or str, optional
+            One unique id per row (default: 0, 1, 2, ...).
+        normalize, beta, **options
+            As for :class:`DenseMemory`.
+
+        Examples
+        --------
+        >>> import numpy as np, densemem
+        >>> len(densemem.DenseMemory.from_array(np.ones((4, 2)), ids=list("abcd")))
+        4
+        """
+        arr = np.asarray(patterns) if not isinstance(patterns, np.ndarray) else patterns
+        if arr.ndim != 2:
+            from ._validation import as_float_matrix
+
+            as_float_matrix(patterns, name="patterns", where="DenseMemory.from_array")
+        mem = cls(int(arr.shape[1]), normalize=normalize, beta=beta, **options)
+        mem._add(patterns, ids, where="DenseMemory.from_array")
+        return mem
+
+    # ------------------------------------------------------------ properties
+    @property
+    def dim(self) -> int:
+        """Number of features of the stored patterns."""
+        return self._table.dim
+
+    @property
+    def normalize(self) -> bool:
+        """Whether patterns and queries are L2-normalised."""
+        return self._table.normalize
+
+    @property
+    def beta(self) -> float:
+        """Default inverse temperature."""
+        return self._beta
+
+    @beta.setter
+    def beta(self, value: float) -> None:
+        self._beta = check_beta(value, where="DenseMemory.beta")
+
+    @property
+    def patterns(self) -> np.ndarray:
+        """Read-only view of the stored patterns, shape (n_patterns, dim), float32."""
+        v = self._table.x.view()
+        v.flags.writeable = False
+        return v
+
+    @property
+    def ids(self) -> np.ndarray:
+        """Read-only view of the ids, one per stored pattern (int64 or str)."""
+        v = self._table.ids.view()
+        v.flags.writeable = False
+        return v
+
+    @property
+    def max_norm(self) -> float:
+        """Largest stored pattern norm ``M`` (0.0 for an empty memory)."""
+        if self._max_norm_version != self._table.version or self._max_norm is None:
+            x = self._table.x
+            self._max_norm = float(np.sqrt(np.max(np.einsum("ij,ij->i", x, x)))) if len(x) else 0.0
+            self._max_norm_version = self._table.version
+        return self._max_norm
+
+    def __len__(self) -> int:
+        return len(self._table)
+
+    def __repr__(self) -> str:
+        return (
+            f"DenseMemory(n_patterns={len(self)}, dim={self.dim}, normalize={self.normalize}, "
+            f"beta={self.beta:g})"
+        )
+
+    # --------------------------------------------------------------- changes
+    def add(self, patterns: Any, ids: Any = None) -> np.ndarray:
+        """Store new patterns and return their ids.
+
+        Parameters
+        ----------
+        patterns : array-like of shape (n_new, dim)
+        ids : sequence of int or str, optional
+            Unique new ids; default: the next free integers.
+
+        Returns
+        -------
+        ndarray of shape (n_new,)
+            The ids given to the new patterns.
+
+        Raises
+        ------
+        InputValueError
+            Wrong width, NaN/inf, zero rows under ``normalize=True``, repeated
+            or already stored ids. Nothing is stored then.
+
+        Examples
+        --------
+        >>> import densemem
+        >>> mem = densemem.DenseMemory(2)
+        >>> mem.add([[1.0, 0.0], [0.0, 1.0]]).tolist()
+        [0, 1]
+        """
+        return self._add(patterns, ids, where="DenseMemory.add")
+
+    def _add(self, patterns: Any, ids: Any, *, where: str) -> np.ndarray:
+        x, new_ids = self._table.prepare(patterns, ids, where=where)
+        self._table.append(x, new_ids)
+        return new_ids.copy()
+
+    def remove(self, ids: Any) -> int:
+        """Remove the patterns with these ids; return how many were removed.
+
+        Every id is checked first: an unknown id raises and removes nothing.
+
+        Examples
+        --------
+        >>> import numpy as np, densemem
+        >>> mem = densemem.DenseMemory.from_array(np.eye(3))
+        >>> mem.remove([1]), mem.ids.tolist()
+        (1, [0, 2])
+        """
+        return self._table.delete(ids, where="DenseMemory.remove")
+
+    def positions(self, ids: Any) -> np.ndarray:
+        """Row numbers in :attr:`patterns` of the given ids."""
+        return self._table.positions(ids, where="DenseMemory.positions")
+
+    # -------------------------------------------------------------- retrieval
+    def _prepare_queries(self, queries: Any, *, where: str) -> tuple[np.ndarray, bool]:
+        if len(self) == 0:
+            raise InputValueError(f"{where}: the memory is empty; add patterns first.")
+        q, was_1d = check_queries(queries, where=where, dim=self.dim)
+        if self.normalize:
+            norms = np.linalg.norm(q, axis=1)
+            zero = np.flatnonzero(norms == 0)
+            if zero.size:
+                raise InputValueError(
+                    f"{where}: query row {int(zero[0])} has zero norm and cannot be normalised."
+                )
+            q = (q / norms[:, None]).astype(np.float32)
+        return q, was_1d
+
+    def _reduce(
+        self, states: np.ndarray, beta: float, *, k: int, method: str, need_acc: bool, opts: dict[str, Any]
+    ) -> tuple[P.Finished, dict[str, Any]]:
+        """One pass of the chosen method: softmax statistics for ``states``."""
+        if method == "exact":
+            part = exact_reduce(
+                states, self._table.x, beta, k=k, tile_mib=self.tile_mib, n_threads=self.n_threads, need_acc=need_acc
+            )
+            return P.finish(part), {}
+        raise InputValueError(f"DenseMemory.retrieve: unknown `method` {method!r}; use one of {_METHODS}.")
+
+    def retrieve(
+        self,
+        queries: Any,
+        beta: float | None = None,
+        *,
+        steps: int = 1,
+        tol: float = 1e-6,
+        k: int = 10,
+        method: Method = "exact",
+        return_energy: bool = True,
+        **method_options: Any,
+    ) -> RetrievalResult:
+        """Retrieve by the softmax update ``xi <- X.T softmax(beta X xi)``.
+
+        Parameters
+        ----------
+        queries : array-like of shape (n_queries, dim) or (dim,)
+            Start states. A 1-D query gives results without the query axis.
+        beta : float, optional
+            Inverse temperature (default: the memory's). Large beta returns the
+            best-matching stored pattern; small beta blends many.
+        steps : int, default 1
+            Most updates to do. With ``steps > 1`` a query stops once its state
+            moves by at most ``tol * M`` (M: largest stored norm).
+        tol : float, default 1e-6
+        k : int, default 10
+            Heaviest stored items to report per query.
+        method : {"exact"}, default "exact"
+            "exact" reduces all stored rows in tiles.
+        return_energy : bool, default True
+            Compute the energy of the returned states (one more pass over the
+            stored rows without the weighted sum).
+
+        Returns
+        -------
+        RetrievalResult
+
+        Raises
+        ------
+        InputValueError
+            Empty memory, wrong query width, NaN/inf, beta <= 0, k out of range.
+
+        Examples
+        --------
+        >>> import numpy as np, densemem
+        >>> mem = densemem.DenseMemory.from_array(np.eye(4), beta=40.0)
+        >>> res = mem.retrieve([[0.0, 0.8, 0.2, 0.0]], k=2)
+        >>> res.top_ids.tolist(), np.round(res.states, 3).tolist()
+        ([[1, 2]], [[0.0, 1.0, 0.0, 0.0]])
+        """
+        where = "DenseMemory.retrieve"
+        q, was_1d = self._prepare_queries(queries, where=where)
+        beta = self._beta if beta is None else check_beta(beta, where=where)
+        steps = check_positive_int(steps, name="steps", where=where)
+        tol = check_nonneg_float(tol, name="tol", where=where)
+        k = check_k(k, n=len(self), where=where)
+        if method not in _METHODS:
+            raise InputValueError(f"{where}: unknown `method` {method!r}; use one of {', '.join(_METHODS)}.")
+        return self._iterate(q, was_1d, beta, steps, tol, k, method, return_energy, method_options)
+
+    def _iterate(
+        self,
+        q: np.ndarray,
+        was_1d: bool,
+        beta: float,
+        steps: int,
+        tol: float,
+        k: int,
+        method: str,
+        return_energy: bool,
+        opts: dict[str, Any],
+    ) -> RetrievalResult:
+        n_q = q.shape[0]
+        state = q.copy()
+        top_i = np.zeros((n_q, k), np.int64)
+        top_w = np.zeros((n_q, k))
+        converged = np.zeros(n_q, dtype=bool)
+        info_all: dict[str, Any] = {}
+        active = np.arange(n_q)
+        scale = max(self.max_norm, np.finfo(np.float32).tiny)
+        done = 0
+        for _ in range(steps):
+            fin, info = self._reduce(state[active], beta, k=k, method=method, need_acc=True, opts=opts)
+            assert fin.states is not None
+            moved = np.linalg.norm(fin.states - state[active], axis=1)
+            state[active] = fin.states
+            top_i[active] = fin.top_i
+            top_w[active] = fin.top_w
+            now = moved <= tol * scale
+            converged[active] = now
+            _store_info(info_all, info, active, n_q)
+            done += 1
+            active = active[~now]
+            if active.size == 0:
+                break
+        energy = self._energy_of(state, beta, method, opts) if return_energy else None
+        ids = self._table.ids[top_i]
+        return _shape_result(
+            was_1d,
+            states=state,
+            top_ids=ids,
+            top_weights=top_w,
+            energy=energy,
+            steps=done,
+            converged=converged,
+            method=method,
+            **info_all,
+        )
+
+    def _energy_of(self, states: np.ndarray, beta: float, method: str, opts: dict[str, Any]) -> np.ndarray:
+        fin, _ = self._reduce(states, beta, k=0, method=method, need_acc=False, opts=opts)
+        sq = np.einsum("ij,ij->i", states.astype(np.float64), states.astype(np.float64))
+        n = len(self)
+        m = self.max_norm
+        return -fin.lse / beta + 0.5 * sq + np.log(n) / beta + 0.5 * m * m
+
+    def energy(self, states: Any, beta: float | None = None) -> np.ndarray:
+        """Log-sum-exp energy of states (computed exactly, tile by tile).
+
+        ``E(xi) = -lse(beta, X xi)/beta + xi.xi/2 + log(N)/beta + M^2/2``;
+        ``E >= 0`` and one update never raises it.
+
+        Parameters
+        ----------
+        states : array-like of shape (n_states, dim) or (dim,)
+        beta : float, optional
+
+        Returns
+        -------
+        ndarray of shape (n_states,), float64 (a float for a 1-D state)
+
+        Examples
+        --------
+        >>> import numpy as np, densemem
+        >>> mem = densemem.DenseMemory.from_array(np.eye(2), beta=1.0)
+        >>> bool(mem.energy([1.0, 0.0]) >= 0)
+        True
+        """
+        where = "DenseMemory.energy"
+        if len(self) == 0:
+            raise InputValueError(f"{where}: the memory is empty; add patterns first.")
+        s, was_1d = check_queries(states, where=where, dim=self.dim, name="states")
+        beta = self._beta if beta is None else check_beta(beta, where=where)
+        e = self._energy_of(s, beta, "exact", {})
+        return float(e[0]) if was_1d else e
+
+    def nearest(
+        self, queries: Any, k: int = 10, *, metric: Literal["ip", "l2"] = "ip"
+    ) -> NearestResult:
+        """Exact k nearest stored patterns by faiss brute-force search.
+
+        Parameters
+        ----------
+        queries : array-like of shape (n_queries, dim) or (dim,)
+        k : int, default 10
+        metric : {"ip", "l2"}, default "ip"
+            Inner product (cosine when ``normalize=True``; faiss
+            ``METRIC_INNER_PRODUCT``) or squared Euclidean distance
+            (``METRIC_L2``).
+
+        Returns
+        -------
+        NearestResult
+
+        Examples
+        --------
+        >>> import numpy as np, densemem
+        >>> mem = densemem.DenseMemory.from_array(np.eye(3), ids=["a", "b", "c"])
+        >>> mem.nearest([0.1, 0.9, 0.0], k=1).ids.tolist()
+        ['b']
+        """
+        where = "DenseMemory.nearest"
+        q, was_1d = self._prepare_queries(queries, where=where)
+        k = check_k(k, n=len(self), where=where)
+        if metric not in ("ip", "l2"):
+            raise InputValueError(f"{where}: `metric` must be 'ip' or 'l2'; got {metric!r}.")
+        fm = faiss.METRIC_INNER_PRODUCT if metric == "ip" else faiss.METRIC_L2
+        scores, pos = faiss.knn(q, self._table.x, k, metric=fm)
+        ids = self._table.ids[pos]
+        if was_1d:
+            return NearestResult(ids=ids[0], scores=scores[0], metric=metric)
+        return NearestResult(ids=ids, scores=scores, metric=metric)
+
+
+def _store_info(acc: dict[str, Any], info: dict[str, Any], active: np.ndarray, n_q: int) -> None:
+    """Write one step's per-query method info into full-length arrays."""
+    for key, val in info.items():
+        if isinstance(val, np.ndarray) and val.shape[:1] == active.shape:
+            if key not in acc:
+                acc[key] = np.zeros(n_q, dtype=val.dtype)
+            acc[key][active] = val
+        else:
+            acc[key] = val
+
+
+def _shape_result(was_1d: bool, **fields: Any) -> RetrievalResult:
+    if was_1d:
+        for key, val in fields.items():
+            if isinstance(val, np.ndarray) and val.ndim >= 1:
+                fields[key] = val[0]
+        if fields.get("energy") is not None:
+            fields["energy"] = float(fields["energy"])
+    return RetrievalResult(**fields)

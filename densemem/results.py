@@ -1,0 +1,107 @@
+"""Frozen result objects returned by densemem's retrieval calls."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, fields
+from typing import Any
+
+import numpy as np
+
+__all__ = ["RetrievalResult", "NearestResult"]
+
+
+def _short(value: Any) -> str:
+    if isinstance(value, np.ndarray):
+        return f"array(shape={value.shape}, dtype={value.dtype})"
+    return repr(value)
+
+
+def _plain(value: Any) -> Any:
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    if isinstance(value, np.generic):
+        return value.item()
+    return value
+
+
+class _ResultMixin:
+    __slots__ = ()
+
+    def __repr__(self) -> str:
+        body = ", ".join(f"{f.name}={_short(getattr(self, f.name))}" for f in fields(self))  # type: ignore[arg-type]
+        return f"{type(self).__name__}({body})"
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain-Python (JSON-ready) copy of every field."""
+        return {f.name: _plain(getattr(self, f.name)) for f in fields(self)}  # type: ignore[arg-type]
+
+
+@dataclass(frozen=True, slots=True, repr=False)
+class RetrievalResult(_ResultMixin):
+    """What :meth:`densemem.DenseMemory.retrieve` returns.
+
+    For a 1-D query every per-query field drops its leading axis.
+
+    Attributes
+    ----------
+    states : ndarray of shape (n_queries, dim), float32
+        The retrieved states after the last update.
+    top_ids : ndarray of shape (n_queries, k)
+        Ids of the heaviest stored items in the last update, heaviest first.
+    top_weights : ndarray of shape (n_queries, k), float64
+        Their softmax weights.
+    energy : ndarray of shape (n_queries,) or None
+        Log-sum-exp energy of ``states`` (None with ``return_energy=False``).
+    steps : int
+        Updates done (the most any query needed).
+    converged : ndarray of shape (n_queries,), bool
+        Whether the last update moved the state by at most ``tol`` times the
+        largest stored norm.
+    method : str
+        The retrieval path used: "exact", "certified" or "index".
+    mass_bound : ndarray of shape (n_queries,) or None
+        Certified path: upper bound on the softmax mass outside the candidates
+        in the last update (0 where the query fell back to exact).
+    state_bound : ndarray of shape (n_queries,) or None
+        Certified path: upper bound on the distance to the exact state,
+        ``2 * M * mass_bound``.
+    k_used : ndarray of shape (n_queries,) or None
+        Certified/index paths: candidates used per query in the last update.
+    fell_back : ndarray of shape (n_queries,), bool, or None
+        Certified path: queries answered by the exact path instead.
+    candidate_recall : float or None
+        Index path with ``measure=True``: fraction of the exact top-k found by
+        the index, over a sample of queries.
+    """
+
+    states: np.ndarray
+    top_ids: np.ndarray
+    top_weights: np.ndarray
+    energy: np.ndarray | None
+    steps: int
+    converged: np.ndarray
+    method: str = "exact"
+    mass_bound: np.ndarray | None = None
+    state_bound: np.ndarray | None = None
+    k_used: np.ndarray | None = None
+    fell_back: np.ndarray | None = None
+    candidate_recall: float | None = None
+
+
+@dataclass(frozen=True, slots=True, repr=False)
+class NearestResult(_ResultMixin):
+    """What :meth:`densemem.DenseMemory.nearest` returns.
+
+    Attributes
+    ----------
+    ids : ndarray of shape (n_queries, k)
+        Ids of the nearest stored items, nearest first.
+    scores : ndarray of shape (n_queries, k), float32
+        Inner products (``metric="ip"``) or squared Euclidean distances
+        (``metric="l2"``).
+    metric : str
+    """
+
+    ids: np.ndarray
+    scores: np.ndarray
+    metric: str = "ip"
