@@ -261,7 +261,7 @@ class DenseMemory:
         *,
         steps: int = 1,
         tol: float = 1e-6,
-        k: int = 10,
+        k: int | None = None,
         method: Method = "exact",
         return_energy: bool = True,
         **method_options: Any,
@@ -279,8 +279,10 @@ class DenseMemory:
             Most updates to do. With ``steps > 1`` a query stops once its state
             moves by at most ``tol * M`` (M: largest stored norm).
         tol : float, default 1e-6
-        k : int, default 10
-            Heaviest stored items to report per query.
+        k : int, optional
+            Heaviest stored items to report per query (default: 10, or every
+            stored item when fewer are held). An explicit ``k`` above the
+            number of stored patterns is an error.
         method : {"exact"}, default "exact"
             "exact" reduces all stored rows in tiles.
         return_energy : bool, default True
@@ -309,7 +311,7 @@ class DenseMemory:
         beta = self._beta if beta is None else check_beta(beta, where=where)
         steps = check_positive_int(steps, name="steps", where=where)
         tol = check_nonneg_float(tol, name="tol", where=where)
-        k = check_k(k, n=len(self), where=where)
+        k = min(10, len(self)) if k is None else check_k(k, n=len(self), where=where)
         if method not in _METHODS:
             raise InputValueError(f"{where}: unknown `method` {method!r}; use one of {', '.join(_METHODS)}.")
         return self._iterate(q, was_1d, beta, steps, tol, k, method, return_energy, method_options)
@@ -401,14 +403,15 @@ class DenseMemory:
         return float(e[0]) if was_1d else e
 
     def nearest(
-        self, queries: Any, k: int = 10, *, metric: Literal["ip", "l2"] = "ip"
+        self, queries: Any, k: int | None = None, *, metric: Literal["ip", "l2"] = "ip"
     ) -> NearestResult:
         """Exact k nearest stored patterns by faiss brute-force search.
 
         Parameters
         ----------
         queries : array-like of shape (n_queries, dim) or (dim,)
-        k : int, default 10
+        k : int, optional
+            Default 10, or every stored item when fewer are held.
         metric : {"ip", "l2"}, default "ip"
             Inner product (cosine when ``normalize=True``; faiss
             ``METRIC_INNER_PRODUCT``) or squared Euclidean distance
@@ -427,7 +430,7 @@ class DenseMemory:
         """
         where = "DenseMemory.nearest"
         q, was_1d = self._prepare_queries(queries, where=where)
-        k = check_k(k, n=len(self), where=where)
+        k = min(10, len(self)) if k is None else check_k(k, n=len(self), where=where)
         if metric not in ("ip", "l2"):
             raise InputValueError(f"{where}: `metric` must be 'ip' or 'l2'; got {metric!r}.")
         fm = faiss.METRIC_INNER_PRODUCT if metric == "ip" else faiss.METRIC_L2
