@@ -62,7 +62,7 @@ class DenseMemory:
     --------
     >>> import numpy as np, densemem
     >>> mem = densemem.DenseMemory.from_array(np.eye(3), beta=50.0)
-    >>> mem.retrieve([0.9, 0.1, 0.0]).top_ids[0]
+    >>> int(mem.retrieve([0.9, 0.1, 0.0]).top_ids[0])
     0
     """
 
