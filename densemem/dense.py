@@ -228,6 +228,20 @@ class DenseMemory:
         """Row numbers in :attr:`patterns` of the given ids."""
         return self._table.positions(ids, where="DenseMemory.positions")
 
+    # ------------------------------------------------------------------ disk
+    def save(self, path: Any, *, overwrite: bool = True) -> None:
+        """Write the memory to a store folder (atomic; see :mod:`densemem.storage`)."""
+        from .storage import save_memory
+
+        save_memory(self, path, overwrite=overwrite)
+
+    @classmethod
+    def load(cls, path: Any, *, mmap: bool = False, verify: bool = True) -> "DenseMemory":
+        """Read a store folder written by :meth:`save` (never unpickles)."""
+        from .storage import load_memory
+
+        return load_memory(path, mmap=mmap, verify=verify)
+
     # -------------------------------------------------------------- retrieval
     def _prepare_queries(self, queries: Any, *, where: str) -> tuple[np.ndarray, bool]:
         if len(self) == 0:
