@@ -40,7 +40,12 @@ class Engine(Protocol):
 
 
 class PairwiseEngine:
-    """E(s) = -s.W s / 2 + theta.s with symmetric W; aux is the field h = s W - theta."""
+    """E(s) = -s.W s / 2 + theta.s with symmetric W.
+
+    The cache is a pair (sT, hT) of the states and local fields h = W s - theta stored unit-
+    major, shape (n_units, n_probes), so that one unit's values over all probes are one
+    contiguous row.
+    """
 
     def __init__(self, weights: np.ndarray, theta: np.ndarray, block: int = BLOCK) -> None:
         self.w = weights
@@ -49,57 +54,58 @@ class PairwiseEngine:
         scale = float(np.max(np.abs(weights).sum(axis=1) + np.abs(theta)))
         self.tol = TIE_RTOL * scale
 
-    def start(self, s: np.ndarray) -> np.ndarray:
-        return s @ self.w - self.theta  # W symmetric: (W s_b)_i for every probe b
+    def start(self, s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        st = np.ascontiguousarray(s.T)
+        return st, self.w @ st - self.theta[:, None]
 
-    def energy(self, s: np.ndarray, h: np.ndarray) -> np.ndarray:
+    def energy(self, s: np.ndarray, aux: tuple[np.ndarray, np.ndarray]) -> np.ndarray:
+        st, ht = aux
         # W s = h + theta, so E = -s.(h + theta)/2 + theta.s = -s.h/2 + theta.s/2
-        return -0.5 * np.einsum("ij,ij->i", s, h) + 0.5 * (s @ self.theta)
+        return -0.5 * np.einsum("ij,ij->j", st, ht) + 0.5 * (self.theta @ st)
 
-    def decide(self, s: np.ndarray, h: np.ndarray) -> np.ndarray:
-        new = np.where(h > self.tol, 1.0, np.where(h < -self.tol, -1.0, s))
-        return new
+    def decide(self, s: np.ndarray, aux: tuple[np.ndarray, np.ndarray]) -> np.ndarray:
+        h = aux[1].T
+        return np.where(h > self.tol, 1.0, np.where(h < -self.tol, -1.0, s))
 
-    def select(self, h: np.ndarray, keep: np.ndarray) -> np.ndarray:
-        return h[keep]
+    def select(self, aux: tuple[np.ndarray, np.ndarray], keep: np.ndarray):
+        return aux[0][:, keep], aux[1][:, keep]
 
-    def async_sweep(self, s: np.ndarray, h: np.ndarray, order: np.ndarray) -> np.ndarray:
-        """One asynchronous sweep over `order`, in place on `s` and `h`.
+    def async_sweep(self, s: np.ndarray, aux: tuple[np.ndarray, np.ndarray],
+                    order: np.ndarray) -> np.ndarray:
+        """One asynchronous sweep over `order`, in place on `s` and the cache.
 
         Units are taken in blocks of `block` consecutive positions of the order. Inside a
-        block, unit t is decided from its exact current field and, where it flips, only the
-        fields of the *later units of the same block* are corrected (a (b-t) x n_changed
-        update). At the end of the block the fields of all units are brought up to date with
-        one product restricted to the probes and units that changed:
-        h[rows] += D[rows, cols] @ W[cols], D holding the +-2 changes. The result is exactly
-        the sequential single-unit dynamics; the cost is one pass over W per block touched by
-        changes, so a sweep in which few units flip costs little more than the loop itself.
+        block, the field of unit t is its field at the start of the block plus the effect of
+        the block's earlier flips, w[t, :t] @ delta[:t] (delta holds the +-2 changes), so it
+        is exact when the unit is decided. At the end of the block the fields of all units are
+        brought up to date by one product over the units that flipped,
+        h += W[:, flipped] @ delta[flipped] (numpy's BLAS only: a second BLAS pool, e.g.
+        scipy.linalg.blas, would compete with numpy's spinning threads on small machines).
+        The result is exactly the sequential single-unit dynamics; a block in which no unit
+        flips costs only its loop, so late sweeps are cheap.
         """
-        n_probes = s.shape[0]
-        changed = np.zeros(n_probes, dtype=bool)
+        st, ht = aux
+        changed = np.zeros(s.shape[0], dtype=bool)
         w, tol = self.w, self.tol
         for start in range(0, order.size, self.block):
             blk = order[start : start + self.block]
-            hb = np.ascontiguousarray(h[:, blk].T)  # (b, n_probes)
-            sb = np.ascontiguousarray(s[:, blk].T)
+            hb, sb = ht[blk], st[blk]  # (b, n_probes) copies
             wbb = w[np.ix_(blk, blk)]
             delta = np.zeros_like(sb)
             for t in range(blk.size):
-                idx = np.flatnonzero(sb[t] * hb[t] < -tol)
-                if idx.size == 0:
-                    continue
-                d = -2.0 * sb[t, idx]
-                sb[t, idx] += d
-                delta[t, idx] = d
-                if t + 1 < blk.size:
-                    hb[t + 1 :, idx] += wbb[t + 1 :, t, None] * d[None, :]
+                h_t = hb[t] + wbb[t, :t] @ delta[:t] if t else hb[t]
+                idx = np.flatnonzero(sb[t] * h_t < -tol)
+                if idx.size:
+                    d = -2.0 * sb[t, idx]
+                    sb[t, idx] += d
+                    delta[t, idx] = d
             cols = np.flatnonzero(delta.any(axis=1))
             if cols.size == 0:
                 continue
-            rows = np.flatnonzero(delta.any(axis=0))
-            s[:, blk] = sb.T
-            h[rows] += delta[np.ix_(cols, rows)].T @ w[blk[cols]]
-            changed[rows] = True
+            st[blk] = sb
+            changed |= delta.any(axis=0)
+            ht += w[blk[cols]].T @ delta[cols]  # W[:, cols] = W[cols].T (W symmetric)
+        s[:] = st.T
         return changed
 
 
