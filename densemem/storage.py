@@ -316,19 +316,28 @@ def _verify_file(folder: Path, name: str, entry: Any, where: str, *, hash_it: bo
     return fpath
 
 
+def _npy_dtype(fpath: Path, where: str) -> np.dtype:
+    """The dtype in a .npy header, read without loading (or unpickling) anything."""
+    fmt = np.lib.format
+    try:
+        with open(fpath, "rb") as fh:
+            version = fmt.read_magic(fh)
+            reader = fmt.read_array_header_1_0 if version == (1, 0) else fmt.read_array_header_2_0
+            _, _, dtype = reader(fh)
+    except (ValueError, OSError, EOFError) as exc:
+        raise StoreFormatError(f"{where}: {str(fpath)!r} is not a readable .npy file ({exc}).") from None
+    return dtype
+
+
 def _load_array(fpath: Path, mmap: bool, where: str) -> np.ndarray:
+    if _npy_dtype(fpath, where).hasobject:
+        raise StoreFormatError(
+            f"{where}: {str(fpath)!r} holds an object array; densemem never unpickles store files."
+        )
     try:
         arr = np.load(fpath, mmap_mode="r" if mmap else None, allow_pickle=False)
-    except ValueError as exc:
-        if "allow_pickle" in str(exc) or "bject" in str(exc):
-            raise StoreFormatError(
-                f"{where}: {str(fpath)!r} holds an object array; densemem never unpickles store files."
-            ) from None
+    except (ValueError, OSError, EOFError) as exc:
         raise StoreFormatError(f"{where}: {str(fpath)!r} is not a readable .npy file ({exc}).") from None
-    except (OSError, EOFError) as exc:
-        raise StoreFormatError(f"{where}: {str(fpath)!r} is not a readable .npy file ({exc}).") from None
-    if not isinstance(arr, np.ndarray):
-        raise StoreFormatError(f"{where}: {str(fpath)!r} is not a single .npy array.")
     return arr
 
 
