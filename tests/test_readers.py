@@ -1,0 +1,173 @@
+"""Embedding readers (densemem.readers) against files written by numpy, pyarrow and csv."""
+
+from __future__ import annotations
+
+import builtins
+import csv
+
+import numpy as np
+import pytest
+
+from densemem import InputTypeError, InputValueError, MissingExtraError
+from densemem.readers import Embeddings, read_embeddings
+
+pa = pytest.importorskip("pyarrow")
+pq = pytest.importorskip("pyarrow.parquet")
+
+
+@pytest.fixture
+def small(digits):
+    """First 50 rows of scikit-learn's digits (real data; integers 0..16 survive every format exactly)."""
+    return digits[:50]
+
+
+def _write_csv(path, rows, delim=","):
+    with open(path, "w", newline="") as fh:
+        csv.writer(fh, delimiter=delim).writerows(rows)
+
+
+def test_npy(tmp_path, small):
+    np.save(tmp_path / "v.npy", small.astype(np.float64))
+    emb = read_embeddings(tmp_path / "v.npy")
+    np.testing.assert_array_equal(emb.vectors, small)
+    assert emb.vectors.dtype == np.float32 and emb.ids is None and emb.kind == "npy"
+    assert emb.to_dict()["n_rows"] == 50 and "n_rows=50" in repr(emb)
+    assert isinstance(emb, Embeddings)
+
+
+def test_npz_named_and_ambiguous(tmp_path, small):
+    names = np.array([f"scan-{i}" for i in range(50)])
+    np.savez(tmp_path / "one.npz", vectors=small, names=names)
+    emb = read_embeddings(tmp_path / "one.npz", id_column="names")
+    np.testing.assert_array_equal(emb.vectors, small)
+    assert emb.ids.tolist() == names.tolist() and emb.column == "vectors"
+    np.savez(tmp_path / "two.npz", a=small, b=small[:, :10])
+    with pytest.raises(InputValueError, match=r"holds arrays \['a', 'b'\]; pass `column`"):
+        read_embeddings(tmp_path / "two.npz")
+    assert read_embeddings(tmp_path / "two.npz", column="b").vectors.shape == (50, 10)
+    with pytest.raises(InputValueError, match=r"has no array 'c'; it holds \['a', 'b'\]"):
+        read_embeddings(tmp_path / "two.npz", column="c")
+
+
+def test_npz_object_member_not_unpickled(tmp_path, small):
+    np.savez(tmp_path / "o.npz", vectors=small, ids=np.array([object()] * 50, dtype=object))
+    with pytest.raises(InputValueError, match="cannot read .* without unpickling"):
+        read_embeddings(tmp_path / "o.npz", id_column="ids")
+
+
+def test_npy_object_array_refused(tmp_path):
+    np.save(tmp_path / "o.npy", np.array([[1, "a"]], dtype=object), allow_pickle=True)
+    with pytest.raises(InputValueError, match="is not a numeric .npy array"):
+        read_embeddings(tmp_path / "o.npy")
+
+
+@pytest.mark.parametrize("fixed", [True, False])
+def test_parquet_list_columns(tmp_path, small, fixed):
+    typ = pa.list_(pa.float32(), 64) if fixed else pa.list_(pa.float32())
+    table = pa.table({"photo": [f"p{i}" for i in range(50)], "emb": pa.array(small.tolist(), type=typ)})
+    pq.write_table(table, tmp_path / "v.parquet")
+    emb = read_embeddings(tmp_path / "v.parquet", id_column="photo")
+    np.testing.assert_array_equal(emb.vectors, small)
+    assert emb.ids[3] == "p3" and emb.column == "emb"
+
+
+def test_parquet_errors(tmp_path, small):
+    pq.write_table(pa.table({"a": [[1.0, 2.0], [3.0]]}), tmp_path / "ragged.parquet")
+    with pytest.raises(InputValueError, match="is ragged: row 1 has 1 numbers, row 0 has 2"):
+        read_embeddings(tmp_path / "ragged.parquet")
+    pq.write_table(pa.table({"a": [[1.0], None]}), tmp_path / "null.parquet")
+    with pytest.raises(InputValueError, match="has a missing vector at row 1"):
+        read_embeddings(tmp_path / "null.parquet")
+    pq.write_table(pa.table({"a": [[1.0], [None]]}), tmp_path / "inner.parquet")
+    with pytest.raises(InputValueError, match="1 missing numbers inside its vectors"):
+        read_embeddings(tmp_path / "inner.parquet")
+    pq.write_table(pa.table({"a": [["x"], ["y"]]}), tmp_path / "str.parquet")
+    with pytest.raises(InputValueError, match="must hold numbers; got lists of string"):
+        read_embeddings(tmp_path / "str.parquet")
+    pq.write_table(pa.table({"a": [[1.0]], "b": [[2.0]], "i": [None]}), tmp_path / "two.parquet")
+    with pytest.raises(InputValueError, match=r"has 2 list columns among \['a', 'b', 'i'\]; pass `column`"):
+        read_embeddings(tmp_path / "two.parquet")
+    with pytest.raises(InputValueError, match="has no column 'zz'"):
+        read_embeddings(tmp_path / "two.parquet", column="a", id_column="zz")
+    with pytest.raises(InputValueError, match="column 'i' has 1 missing ids"):
+        read_embeddings(tmp_path / "two.parquet", column="a", id_column="i")
+    pq.write_table(pa.table({"a": [1.0], "l": [[1.0]]}), tmp_path / "scalar.parquet")
+    with pytest.raises(InputValueError, match="must be a list or fixed-size list of numbers; got double"):
+        read_embeddings(tmp_path / "scalar.parquet", column="a")
+
+
+def test_parquet_without_pyarrow(tmp_path, monkeypatch):
+    (tmp_path / "v.parquet").write_bytes(b"PAR1")
+    real_import = builtins.__import__
+
+    def no_pyarrow(name, *args, **kw):
+        if name.startswith("pyarrow"):
+            raise ImportError(name)
+        return real_import(name, *args, **kw)
+
+    monkeypatch.setattr(builtins, "__import__", no_pyarrow)
+    with pytest.raises(MissingExtraError, match=r"pip install densemem\[parquet\]"):
+        read_embeddings(tmp_path / "v.parquet")
+
+
+@pytest.mark.parametrize("suffix,delim", [(".csv", ","), (".tsv", "\t")])
+def test_text_with_header_and_ids(tmp_path, small, suffix, delim):
+    rows = [["photo"] + [f"f{j}" for j in range(64)]] + [[f"p{i}"] + [f"{v:g}" for v in r] for i, r in enumerate(small)]
+    _write_csv(tmp_path / f"v{suffix}", rows, delim)
+    emb = read_embeddings(tmp_path / f"v{suffix}", id_column="photo")
+    np.testing.assert_array_equal(emb.vectors, small)
+    assert emb.ids[0] == "p0" and emb.id_column == "photo"
+
+
+def test_csv_without_header_integer_ids(tmp_path, small):
+    _write_csv(tmp_path / "v.csv", [[str(100 + i)] + [f"{v:g}" for v in r] for i, r in enumerate(small)])
+    emb = read_embeddings(tmp_path / "v.csv", id_column=0)
+    np.testing.assert_array_equal(emb.vectors, small)
+    assert emb.ids.dtype == np.int64 and emb.ids[:2].tolist() == [100, 101]
+    plain = read_embeddings(tmp_path / "v.csv")  # no header: every column is a feature
+    assert plain.vectors.shape == (50, 65)
+
+
+def test_csv_errors(tmp_path):
+    _write_csv(tmp_path / "s.csv", [["id", "a", "b"], ["x", "1", "2"], ["y", "3", "oops"]])
+    with pytest.raises(InputValueError, match=r"s.csv line 2, id: 'x' is not a number; pass `id_column`"):
+        read_embeddings(tmp_path / "s.csv")
+    with pytest.raises(InputValueError, match=r"line 3, b: 'oops' is not a number\.$"):
+        read_embeddings(tmp_path / "s.csv", id_column="id")
+    with pytest.raises(InputValueError, match=r"has no id column 'name'; its columns are \['id', 'a', 'b'\]"):
+        read_embeddings(tmp_path / "s.csv", id_column="name")
+    _write_csv(tmp_path / "r.csv", [["1", "2"], ["3"]])
+    with pytest.raises(InputValueError, match="line 2 has 1 fields; line 1 has 2"):
+        read_embeddings(tmp_path / "r.csv")
+    with pytest.raises(InputValueError, match=r"no header and 2 columns \(use 0..1\)"):
+        read_embeddings(tmp_path / "r.csv", id_column=5)
+    (tmp_path / "e.csv").write_text("\n\n")
+    with pytest.raises(InputValueError, match="has no rows"):
+        read_embeddings(tmp_path / "e.csv")
+    _write_csv(tmp_path / "n.csv", [["1", "nan"]])
+    with pytest.raises(InputValueError, match="contains NaN at row 0"):
+        read_embeddings(tmp_path / "n.csv")
+    _write_csv(tmp_path / "d.csv", [["k", "a"], ["7", "1"], ["7", "2"]])
+    with pytest.raises(InputValueError, match="repeats the id 7"):
+        read_embeddings(tmp_path / "d.csv", id_column="k")
+
+
+def test_path_errors(tmp_path):
+    with pytest.raises(InputValueError, match=r"suffix '.txt'; use one of .npy, .npz, .parquet, .csv, .tsv"):
+        read_embeddings(tmp_path / "v.txt")
+    with pytest.raises(InputValueError, match="no file at"):
+        read_embeddings(tmp_path / "missing.npy")
+    with pytest.raises(InputTypeError, match="`path` must be a str or os.PathLike; got int"):
+        read_embeddings(3)
+    np.save(tmp_path / "v.npy", np.eye(2))
+    with pytest.raises(InputValueError, match="`column` applies to .npz and .parquet files"):
+        read_embeddings(tmp_path / "v.npy", column="x")
+    with pytest.raises(InputValueError, match="`id_column` does not apply"):
+        read_embeddings(tmp_path / "v.npy", id_column="x")
+
+
+def test_inputs_unchanged(tmp_path, small):
+    np.save(tmp_path / "v.npy", small)
+    before = (tmp_path / "v.npy").read_bytes()
+    read_embeddings(tmp_path / "v.npy").vectors[:] = 0  # the returned array is a private copy
+    assert (tmp_path / "v.npy").read_bytes() == before
