@@ -139,8 +139,9 @@ def test_csv_errors(tmp_path):
     _write_csv(tmp_path / "r.csv", [["1", "2"], ["3"]])
     with pytest.raises(InputValueError, match="line 2 has 1 fields; line 1 has 2"):
         read_embeddings(tmp_path / "r.csv")
+    _write_csv(tmp_path / "n.csv", [["1", "2"], ["3", "4"]])
     with pytest.raises(InputValueError, match=r"no header and 2 columns \(use 0..1\)"):
-        read_embeddings(tmp_path / "r.csv", id_column=5)
+        read_embeddings(tmp_path / "n.csv", id_column=5)
     (tmp_path / "e.csv").write_text("\n\n")
     with pytest.raises(InputValueError, match="has no rows"):
         read_embeddings(tmp_path / "e.csv")
