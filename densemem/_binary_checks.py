@@ -71,7 +71,7 @@ def check_binary(values: object, name: str, states: str, where: str) -> np.ndarr
     if bad.any():
         row, col = np.argwhere(bad)[0]
         raise InputValueError(
-            f"{where}: `{name}` must be binary; got the value {arr[row, col]!r} at "
+            f"{where}: `{name}` must be binary; got the value {arr[row, col].item()!r} at "
             f"row {row}, column {col}."
         )
     if is_zero.any() and is_minus.any():

@@ -28,15 +28,17 @@ def storkey_weights(patterns: np.ndarray, weights: np.ndarray) -> np.ndarray:
     """Apply Storkey's rule for each pattern in order, starting from `weights` (not modified).
 
     w_ij += (e_i e_j - e_i h_ji - h_ij e_j) / n with h_ij = sum_{k != i, j} w_ik e_k
-    (Storkey 1997). With a zero diagonal h_ij = (W e)_i - w_ij e_j. The update is symmetric
-    term by term, so W stays exactly symmetric; the diagonal is kept at zero.
+    (Storkey 1997). With a zero diagonal h_ij = (W e)_i - w_ij e_j. The two cross terms are
+    added before subtracting, so W stays exactly symmetric in floating point; the diagonal
+    is kept at zero.
     """
     w = weights.copy()
     n = w.shape[0]
     for e in patterns.astype(np.float64):
         g = w @ e
         h = g[:, None] - w * e[None, :]  # h[i, j] = h_ij
-        w += (np.outer(e, e) - e[:, None] * h.T - h * e[None, :]) / n
+        cross = h * e[None, :]  # h_ij e_j; its transpose is e_i h_ji
+        w += (np.outer(e, e) - (cross + cross.T)) / n  # (a + b) == (b + a): exactly symmetric
         np.fill_diagonal(w, 0.0)
     return w
 
