@@ -1,0 +1,106 @@
+"""Pydantic specs for the ``densemem`` command's options (validated once, at the boundary).
+
+Each spec names the option a field came from (``FLAGS``) so that a rejected
+value is reported as ``densemem retrieve: --beta must be greater than 0; got -1.0.``.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError
+
+__all__ = [
+    "BuildSpec",
+    "InfoSpec",
+    "RetrieveSpec",
+    "NearestSpec",
+    "DemoSpec",
+    "SpecError",
+    "make_spec",
+]
+
+FiniteFloat = Field(allow_inf_nan=False)
+
+
+class _Spec(BaseModel):
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+
+class BuildSpec(_Spec):
+    """``densemem build``: an embeddings file into a store folder."""
+
+    input: Path
+    store: Path
+    column: str | None = None
+    id_column: str | None = None
+    normalize: bool = False
+    beta: float = Field(1.0, gt=0, allow_inf_nan=False)
+    index: Literal["hnsw", "ivf"] | None = None
+    overwrite: bool = False
+
+
+class InfoSpec(_Spec):
+    """``densemem info``: describe a store folder."""
+
+    store: Path
+    verify: bool = True
+
+
+class _QuerySpec(_Spec):
+    store: Path
+    queries: Path
+    column: str | None = None
+    id_column: str | None = None
+    k: int | None = Field(None, ge=1)
+    mmap: bool = False
+    chunk: int = Field(4096, ge=1)
+
+
+class RetrieveSpec(_QuerySpec):
+    """``densemem retrieve``: softmax retrieval of queries from a store."""
+
+    beta: float | None = Field(None, gt=0, allow_inf_nan=False)
+    steps: int = Field(1, ge=1)
+    tol: float = Field(1e-6, ge=0, allow_inf_nan=False)
+    method: Literal["auto", "exact", "certified", "index"] = "auto"
+    states_out: Path | None = None
+
+
+class NearestSpec(_QuerySpec):
+    """``densemem nearest``: exact (or index) nearest neighbours by faiss."""
+
+    metric: Literal["ip", "l2"] = "ip"
+    index: bool = False
+
+
+class DemoSpec(_Spec):
+    """``densemem demo``: the invented archive scenario, end to end."""
+
+    out: Path = Path("densemem-demo")
+    photos: int = Field(4000, ge=50, le=200_000)
+    seed: int = Field(0, ge=0)
+    plots: bool = True
+
+
+class SpecError(ValueError):
+    """A command-line value the spec rejected (exit code 2)."""
+
+
+def _flag(name: str, positional: set[str]) -> str:
+    return name.upper() if name in positional else "--" + name.replace("_", "-")
+
+
+def make_spec(model: type[BaseModel], values: dict[str, Any], *, positional: tuple[str, ...] = ()) -> Any:
+    """Build ``model`` from parsed options, or raise :class:`SpecError` with one line."""
+    fields = set(model.model_fields)
+    try:
+        return model(**{k: v for k, v in values.items() if k in fields})
+    except ValidationError as exc:
+        err = exc.errors()[0]
+        name = str(err["loc"][0]) if err["loc"] else "?"
+        msg = err["msg"]
+        msg = msg[0].lower() + msg[1:] if msg else msg
+        msg = msg.replace("input should be", "must be")
+        raise SpecError(f"{_flag(name, set(positional))} {msg}; got {err.get('input')!r}.") from None
