@@ -1,0 +1,517 @@
+"""Capacity and robustness experiments: how many patterns a memory holds, and how much
+corruption it takes, measured by seeded Monte Carlo trials.
+
+**Success probability.** At a count K one *trial* draws K patterns, stores them, and probes
+the first min(K, max_probes) of them (the patterns are i.i.d., so that is a uniform
+sample), each from its own corrupted copy, all through one retrieve call. A probe succeeds
+when the criterion holds for the pattern it came from. The success probability at K is the
+probability that a probe of a randomly drawn stored pattern, in a randomly drawn memory of K
+patterns, succeeds; it is estimated by pooling every probe of every trial at K (at least
+`n_trials` trials, more at small K so that at least `min_probes` probes are judged). The
+capacity is the largest K whose estimate is >= 1 - delta (``decide="estimate"``), or whose
+lower confidence bound is (``decide="lower"``), found by doubling K = 1, 2, 4, ... up to the
+first failure or `max_patterns`, then bisecting. The interval (Wilson or Clopper-Pearson)
+treats probes as independent; probes in one trial share a memory, so it is a little narrow.
+
+Trials are keyed by (seed, trial), not by K: the K-pattern memory of a trial holds the first K
+patterns of that trial's pool, and the probes' corruptions are the same at every K (common
+random numbers), which keeps the measured curve nearly monotone in K.
+
+Examples
+--------
+>>> from densemem.capacity import estimate_capacity
+>>> rep = estimate_capacity("hebbian", 32, n_trials=2, min_probes=16, max_patterns=64)
+>>> 1 <= rep.capacity < 32
+True
+"""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+from typing import Any, Literal, Optional, Sequence
+
+import numpy as np
+from pydantic import BaseModel, ConfigDict, Field, field_validator
+
+from densemem import _capacity_models as cm
+from densemem._capacity_plot import plot_curve
+from densemem._capacity_report import CapacityCurve, CapacityReport, RobustnessReport
+from densemem._capacity_search import CI_METHODS, DECISIONS, interval, search_capacity
+from densemem._validation import check_nonneg_float, check_positive_int
+from densemem.errors import InputTypeError, InputValueError, MissingExtraError
+
+__all__ = [
+    "estimate_capacity", "capacity_curve", "plot_capacity", "robustness_curve",
+    "CapacityReport", "CapacityCurve", "RobustnessReport", "CapacitySpec",
+]
+
+ROBUSTNESS_KINDS = cm.CORRUPTIONS + cm.DAMAGES
+DEFAULT_LEVELS = (0.0, 0.05, 0.1, 0.15, 0.2, 0.3, 0.4)
+
+
+# ----------------------------------------------------------------- validation
+def _choice(value: Any, name: str, options: Sequence[str], where: str) -> str:
+    if not isinstance(value, str) or value not in options:
+        opts = ", ".join(repr(o) for o in options)
+        raise InputValueError(f"{where}: `{name}` must be one of {opts}; got {value!r}.")
+    return value
+
+
+def _corruption(value: Any, where: str, name: str = "corruption") -> tuple[str, float] | None:
+    """None, ("flip"|"mask", fraction in [0, 1]), ("gauss", sigma >= 0), or "kind:level"."""
+    if value is None or value == "none":
+        return None
+    if isinstance(value, str):
+        kind, _, level = value.partition(":")
+        try:
+            value = (kind, float(level))
+        except ValueError:
+            value = (kind, level)
+    if not (isinstance(value, (tuple, list)) and len(value) == 2 and value[0] in cm.CORRUPTIONS):
+        raise InputValueError(
+            f"{where}: `{name}` must be None, ('flip', fraction), ('mask', fraction) or "
+            f"('gauss', sigma) (or a string like 'flip:0.1'); got {value!r}."
+        )
+    kind, level = value
+    level = check_nonneg_float(level, name=f"{name} level", where=where)
+    if kind != "gauss" and level > 1:
+        raise InputValueError(f"{where}: the {kind} fraction must be in [0, 1]; got {level!r}.")
+    return kind, level
+
+
+def _progress(progress: Any, total: int | None, desc: str, where: str) -> Any:
+    if progress is None:
+        progress = sys.stderr.isatty()
+    if not isinstance(progress, bool):
+        raise InputTypeError(f"{where}: `progress` must be True, False or None; got {progress!r}.")
+    if not progress:
+        return None
+    try:
+        from tqdm.auto import tqdm
+    except ImportError:
+        raise MissingExtraError(
+            f"{where}: progress bars need tqdm; install it with: pip install densemem[progress]"
+        ) from None
+    return tqdm(total=total, desc=desc, file=sys.stderr, leave=False)
+
+
+def _setup(where: str, model: Any, dim: Any, patterns: Any, corruption: Any, damage: Any,
+           success: Any, eps: Any, steps: Any, mode: Any, max_probes: Any, seed: Any,
+           ci: Any, confidence: Any) -> tuple[cm.Model, cm.Setup]:
+    m = cm.parse_model(model, where)
+    success = _choice(success, "success", cm.SUCCESS, where)
+    if m.kind == "custom":
+        source = cm.Source("custom", check_positive_int(dim, name="dim", where=where))
+    else:
+        source = cm.make_source(patterns, dim, m.binary, where)
+    if eps is None:
+        eps = 0.05 if success == "overlap" else (1e-3 if not m.binary else 0.0)
+    eps = check_nonneg_float(eps, name="eps", where=where)
+    default_steps = 50 if m.binary else 1
+    steps = default_steps if steps is None else check_positive_int(steps, name="steps", where=where)
+    if seed is None:
+        seed = int(np.random.SeedSequence().entropy % (2**63))
+    seed = check_positive_int(seed, name="seed", where=where, minimum=0)
+    _choice(ci, "ci", CI_METHODS, where)
+    confidence = check_nonneg_float(confidence, name="confidence", where=where, strict=True)
+    if confidence >= 1:
+        raise InputValueError(f"{where}: `confidence` must be in (0, 1); got {confidence!r}.")
+    setup = cm.Setup(
+        source=source, corruption=_corruption(corruption, where), damage=damage,
+        success=success, eps=eps, steps=steps, mode=_choice(mode, "mode", cm.MODES, where),
+        max_probes=check_positive_int(max_probes, name="max_probes", where=where), seed=seed)
+    return m, setup
+
+
+def _corruption_tag(c: tuple[str, float] | None) -> str:
+    return "none" if c is None else f"{c[0]}:{c[1]:g}"
+
+
+# ------------------------------------------------------------------ public API
+def estimate_capacity(
+    model: Any,
+    dim: int | None,
+    *,
+    patterns: Any = "pm1",
+    corruption: Any = None,
+    success: str = "fixed_point",
+    eps: float | None = None,
+    delta: float = 0.05,
+    n_trials: int = 5,
+    min_probes: int = 256,
+    max_probes: int = 256,
+    seed: int | None = 0,
+    max_patterns: int = 4096,
+    steps: int | None = None,
+    mode: str = "async",
+    ci: str = "wilson",
+    confidence: float = 0.95,
+    decide: str = "estimate",
+    rel_tol: float = 0.0,
+    progress: bool | None = None,
+) -> CapacityReport:
+    """Largest number of stored patterns retrieved with probability >= 1 - delta.
+
+    Parameters
+    ----------
+    model : str, tuple or callable
+        "hebbian", "storkey", "pseudo_inverse" (BinaryMemory rules), ("poly", n) or "exp"
+        (DenseBinaryMemory), ("softmax", beta) (DenseMemory.retrieve at that beta), or a
+        callable ``trial(n_patterns, rng) -> bool array`` (one success per probe).
+    dim : int or None
+        Units / dimensions (None: the width of a `patterns` array).
+    patterns : {"pm1", "unit", "gaussian"} or array_like of shape (n_rows, dim)
+        Random -1/+1, random unit vectors, N(0, 1) entries, or rows of your own array drawn
+        without replacement (binary models: "pm1" or a -1/+1 or 0/1 array). Never modified.
+    corruption : None, ("flip", fraction), ("mask", fraction) or ("gauss", sigma)
+        Probe corruption; see :func:`densemem._capacity_models.corrupt`. Strings such as
+        "flip:0.1" are accepted.
+    success : {"fixed_point", "overlap", "top1"}, default "fixed_point"
+        fixed_point: the retrieved state equals the pattern (binary: exactly; continuous:
+        within `eps` relative distance, default 1e-3). overlap: overlap (binary
+        s.xi / n; continuous cosine) >= 1 - eps (default eps 0.05). top1: the pattern is the
+        unique best match (binary: of the final state; continuous: the heaviest softmax
+        weight, ties failing).
+    delta : float in (0, 1), default 0.05
+    n_trials, min_probes, max_probes : int
+        At least `n_trials` trials per count, raised so >= `min_probes` probes are judged;
+        each trial probes at most `max_probes` stored patterns.
+    seed : int >= 0 or None
+    max_patterns : int, default 4096
+        Search ceiling (also capped by the rows of a `patterns` array).
+    steps : int, optional
+        Binary: most sweeps (default 50); continuous: softmax updates (default 1).
+    mode : {"async", "sync"}, default "async"
+        Binary update mode; ``mode="sync", steps=1`` is the one-step update.
+    ci : {"wilson", "clopper_pearson"}; confidence : float in (0, 1)
+    decide : {"estimate", "lower"}
+        Pass on the rate itself, or on the lower end of its interval (conservative).
+    rel_tol : float >= 0, default 0
+        Bisection stops when the bracket is within max(1, rel_tol * capacity).
+    progress : bool or None
+        tqdm bar on stderr (None: only when stderr is a terminal).
+
+    Returns
+    -------
+    CapacityReport
+
+    Raises
+    ------
+    InputValueError, InputTypeError
+        Bad model, dim, patterns, corruption, criterion or statistics settings.
+
+    References
+    ----------
+    McEliece et al., IEEE Trans. Inf. Theory 33(4) (1987); Krotov & Hopfield, NeurIPS
+    (2016); Demircigil et al., J. Stat. Phys. 168 (2017); Ramsauer et al., ICLR (2021).
+
+    Examples
+    --------
+    >>> rep = estimate_capacity(("softmax", 40.0), 10, corruption=("mask", 0.2),
+    ...                         success="top1", n_trials=2, min_probes=32)
+    >>> rep.capacity > 1, rep.counts[:3]
+    (True, (1, 2, 4))
+    """
+    where = "estimate_capacity"
+    m, setup = _setup(where, model, dim, patterns, corruption, None, success, eps, steps, mode,
+                      max_probes, seed, ci, confidence)
+    delta = check_nonneg_float(delta, name="delta", where=where, strict=True)
+    if delta >= 1:
+        raise InputValueError(f"{where}: `delta` must be in (0, 1); got {delta!r}.")
+    n_trials = check_positive_int(n_trials, name="n_trials", where=where)
+    min_probes = check_positive_int(min_probes, name="min_probes", where=where)
+    max_n = check_positive_int(max_patterns, name="max_patterns", where=where)
+    if setup.source.limit is not None:
+        max_n = min(max_n, setup.source.limit)
+    _choice(decide, "decide", DECISIONS, where)
+    rel_tol = check_nonneg_float(rel_tol, name="rel_tol", where=where)
+    bar = _progress(progress, None, f"capacity {m.label} d={setup.source.dim}", where)
+    trials: list[int] = []
+
+    def evaluate(k: int) -> tuple[int, int]:
+        t = cm.trials_at(k, n_trials, min_probes, setup.max_probes)
+        trials.append(t)
+        return cm.pooled(m, setup, k, t)
+
+    def step(k: int, ok: bool) -> None:
+        if bar is not None:
+            bar.update(1)
+            bar.set_postfix(n=k, passed=ok)
+
+    try:
+        tr = search_capacity(evaluate, target=1.0 - delta, max_n=max_n, confidence=confidence,
+                             ci=ci, decide=decide, rel_tol=rel_tol, on_step=step)
+    finally:
+        if bar is not None:
+            bar.close()
+    cis = [interval(k, n, confidence, ci) for k, n in zip(tr.successes, tr.totals)]
+    return CapacityReport(
+        model=m.label, dim=setup.source.dim, capacity=tr.capacity, first_fail=tr.first_fail,
+        capped=tr.first_fail is None, counts=tuple(tr.counts), successes=tuple(tr.successes),
+        probes=tuple(tr.totals), trials=tuple(trials),
+        rates=tuple(k / n if n else 0.0 for k, n in zip(tr.successes, tr.totals)),
+        ci_low=tuple(c[0] for c in cis), ci_high=tuple(c[1] for c in cis),
+        patterns=setup.source.kind, corruption=_corruption_tag(setup.corruption),
+        success=setup.success, eps=setup.eps, delta=delta, confidence=confidence, ci=ci,
+        decide=decide, n_trials=n_trials, seed=setup.seed)
+
+
+def capacity_curve(
+    models: Sequence[Any],
+    dims: Sequence[int],
+    *,
+    csv_path: Any = None,
+    json_path: Any = None,
+    progress: bool | None = None,
+    **options: Any,
+) -> CapacityCurve:
+    """Capacity of each model at each dimension (a table), optionally written to CSV/JSON.
+
+    Parameters
+    ----------
+    models : sequence of model descriptions (as for :func:`estimate_capacity`)
+    dims : sequence of int
+    csv_path, json_path : path, optional
+        Where to write the table (JSON also holds every report in full).
+    progress : bool or None
+        One tqdm bar over the (model, dim) pairs.
+    **options
+        Passed to :func:`estimate_capacity` (patterns, corruption, success, delta, ...).
+
+    Returns
+    -------
+    CapacityCurve
+
+    Examples
+    --------
+    >>> curve = capacity_curve(["hebbian"], [16, 32], n_trials=2, min_probes=16)
+    >>> [row["dim"] for row in curve.rows()]
+    [16, 32]
+    """
+    where = "capacity_curve"
+    if isinstance(models, (str, bytes)) or not isinstance(models, Sequence) or not models:
+        raise InputValueError(f"{where}: `models` must be a non-empty list of models; got {models!r}.")
+    if isinstance(dims, (str, bytes)) or not isinstance(dims, Sequence) or not dims:
+        raise InputValueError(f"{where}: `dims` must be a non-empty list of integers; got {dims!r}.")
+    if "progress" in options or "dim" in options or "model" in options:
+        raise InputValueError(f"{where}: pass `model`/`dim` through `models`/`dims`.")
+    bar = _progress(progress, len(models) * len(dims), "capacity curve", where)
+    reports = []
+    try:
+        for model in models:
+            for d in dims:
+                reports.append(estimate_capacity(model, d, progress=False, **options))
+                if bar is not None:
+                    bar.update(1)
+    finally:
+        if bar is not None:
+            bar.close()
+    curve = CapacityCurve(tuple(reports))
+    if csv_path is not None:
+        curve.write_csv(csv_path)
+    if json_path is not None:
+        curve.write_json(json_path)
+    return curve
+
+
+def plot_capacity(table: CapacityCurve, path: Any, *, title: str | None = None) -> Path:
+    """PNG of capacity against dimension (log y) with the published asymptotic curves.
+
+    Each measured model is drawn with markers (open triangles: capped at max_patterns); in
+    the same colour, dashed, the curves of CHECKS.md entries 19-24 for that model, each
+    labelled with its source and "asymptotic": Amit-Gutfreund-Sompolinsky 0.138 N and
+    McEliece N/(2 ln N), N/(4 ln N) (Hebbian); Storkey N/sqrt(2 ln N); pseudo-inverse N;
+    Krotov-Hopfield N^(n-1)/(2 (2n-3)!! ln N); Demircigil exp(N ln2/2) (and exp(N I(1-2rho)/2)
+    for flip corruption rho). The softmax model has no curve in those entries.
+
+    Raises
+    ------
+    MissingExtraError
+        matplotlib is not installed (``pip install densemem[plot]``).
+
+    Examples
+    --------
+    >>> import tempfile, os
+    >>> curve = capacity_curve(["hebbian"], [16, 24], n_trials=1, min_probes=8)
+    >>> out = plot_capacity(curve, os.path.join(tempfile.mkdtemp(), "c.png"))
+    >>> out.suffix
+    '.png'
+    """
+    return plot_curve(table, path, title=title)
+
+
+def robustness_curve(
+    model: Any,
+    dim: int | None,
+    n_patterns: int,
+    *,
+    levels: Sequence[float] = DEFAULT_LEVELS,
+    kind: str = "flip",
+    corruption: Any = None,
+    patterns: Any = "pm1",
+    success: str = "fixed_point",
+    eps: float | None = None,
+    n_trials: int = 5,
+    min_probes: int = 256,
+    max_probes: int = 256,
+    seed: int | None = 0,
+    steps: int | None = None,
+    mode: str = "async",
+    ci: str = "wilson",
+    confidence: float = 0.95,
+    progress: bool | None = None,
+) -> RobustnessReport:
+    """Success rate against corruption or damage level at a fixed load of `n_patterns`.
+
+    Parameters
+    ----------
+    kind : {"flip", "gauss", "mask", "damage_units", "zero_weights", "zero_coords"}
+        flip / gauss / mask: probe corruption at each level (as in estimate_capacity).
+        damage_units: that fraction of units is deleted (their weights zeroed; they keep the
+        probe's value), zero_weights: that fraction of weight pairs is zeroed (both
+        BinaryMemory rules only, via BinaryMemory.damaged). zero_coords: that fraction of
+        coordinates of every stored pattern is zeroed (softmax model only); success is judged
+        against the undamaged pattern.
+    corruption : optional
+        Probe corruption applied at every level of a damage sweep (None for kind in flip /
+        gauss / mask, where the level is the corruption).
+    Other parameters as for :func:`estimate_capacity`; the same trials (seed, trial) are
+    used at every level, so the curve is smooth.
+
+    Returns
+    -------
+    RobustnessReport
+
+    Examples
+    --------
+    >>> rep = robustness_curve("hebbian", 64, 4, levels=(0.0, 0.45), n_trials=2, min_probes=16)
+    >>> rep.rates[0] >= rep.rates[1]
+    True
+    """
+    where = "robustness_curve"
+    kind = _choice(kind, "kind", ROBUSTNESS_KINDS, where)
+    if kind in cm.CORRUPTIONS and corruption is not None:
+        raise InputValueError(
+            f"{where}: with kind={kind!r} the levels are the corruption; pass corruption=None "
+            f"(got {corruption!r})."
+        )
+    parsed = cm.parse_model(model, where)
+    if kind in ("damage_units", "zero_weights") and parsed.kind not in cm.PAIRWISE:
+        raise InputValueError(
+            f"{where}: kind={kind!r} needs a pairwise binary model ('hebbian', 'storkey', "
+            f"'pseudo_inverse'); got model {parsed.label!r}."
+        )
+    if kind == "zero_coords" and parsed.kind != "softmax":
+        raise InputValueError(
+            f"{where}: kind='zero_coords' needs the continuous ('softmax', beta) model; got "
+            f"{parsed.label!r} (use kind='damage_units' for binary memories)."
+        )
+    if isinstance(levels, (str, bytes)) or not isinstance(levels, Sequence) or not levels:
+        raise InputValueError(f"{where}: `levels` must be a non-empty list of numbers; got {levels!r}.")
+    n_patterns = check_positive_int(n_patterns, name="n_patterns", where=where)
+    n_trials = check_positive_int(n_trials, name="n_trials", where=where)
+    min_probes = check_positive_int(min_probes, name="min_probes", where=where)
+    if kind in cm.CORRUPTIONS:
+        lv = [_corruption((kind, x), where, name="levels")[1] for x in levels]  # type: ignore[index]
+    else:
+        lv = [check_nonneg_float(x, name="levels", where=where) for x in levels]
+        if max(lv) > 1:
+            raise InputValueError(f"{where}: damage `levels` must be fractions in [0, 1]; got {max(lv)!r}.")
+    m, base = _setup(where, model, dim, patterns, corruption, None, success, eps, steps, mode,
+                     max_probes, seed, ci, confidence)
+    if base.source.limit is not None and n_patterns > base.source.limit:
+        raise InputValueError(
+            f"{where}: `n_patterns` is {n_patterns} but the `patterns` array has only "
+            f"{base.source.limit} rows."
+        )
+    t = cm.trials_at(n_patterns, n_trials, min_probes, base.max_probes)
+    bar = _progress(progress, len(lv), f"robustness {m.label} {kind}", where)
+    succ, tot = [], []
+    try:
+        for x in lv:
+            setup = _with_level(base, kind, x)
+            k, n = cm.pooled(m, setup, n_patterns, t)
+            succ.append(k)
+            tot.append(n)
+            if bar is not None:
+                bar.update(1)
+    finally:
+        if bar is not None:
+            bar.close()
+    cis = [interval(k, n, confidence, ci) for k, n in zip(succ, tot)]
+    return RobustnessReport(
+        model=m.label, dim=base.source.dim, n_patterns=n_patterns, kind=kind, levels=tuple(lv),
+        rates=tuple(k / n for k, n in zip(succ, tot)), ci_low=tuple(c[0] for c in cis),
+        ci_high=tuple(c[1] for c in cis), successes=tuple(succ), probes=tuple(tot),
+        success=base.success, corruption=_corruption_tag(base.corruption),
+        confidence=confidence, ci=ci, n_trials=t, seed=base.seed)
+
+
+def _with_level(base: cm.Setup, kind: str, level: float) -> cm.Setup:
+    from dataclasses import replace
+
+    if kind in cm.CORRUPTIONS:
+        return replace(base, corruption=(kind, level))
+    return replace(base, damage=(kind, level) if level > 0 else None)
+
+
+# ------------------------------------------------------------------ CLI spec
+class CapacitySpec(BaseModel):
+    """Options of a capacity-curve run as they cross a boundary (CLI flags, JSON file).
+
+    ``spec.curve_options()`` gives the keyword arguments of :func:`capacity_curve` besides
+    `models` and `dims`; the output paths are for the caller to honour.
+
+    Examples
+    --------
+    >>> spec = CapacitySpec(models=["hebbian", "softmax:50"], dims=[16, 32], corruption="mask:0.25")
+    >>> spec.curve_options()["corruption"]
+    ('mask', 0.25)
+    """
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    models: list[str] = Field(default_factory=lambda: ["hebbian", "storkey", "pseudo_inverse"],
+                              min_length=1)
+    dims: list[int] = Field(default_factory=lambda: [25, 50, 100, 200], min_length=1)
+    patterns: Literal["pm1", "unit", "gaussian"] = "pm1"
+    patterns_file: Optional[str] = None  # an array file the caller loads and passes as patterns
+    corruption: Optional[str] = None  # "flip:0.1", "mask:0.25", "gauss:0.5"
+    success: Literal["fixed_point", "overlap", "top1"] = "fixed_point"
+    eps: Optional[float] = Field(default=None, ge=0)
+    delta: float = Field(default=0.05, gt=0, lt=1)
+    n_trials: int = Field(default=5, ge=1)
+    min_probes: int = Field(default=256, ge=1)
+    max_probes: int = Field(default=256, ge=1)
+    seed: int = Field(default=0, ge=0)
+    max_patterns: int = Field(default=4096, ge=1)
+    steps: Optional[int] = Field(default=None, ge=1)
+    mode: Literal["async", "sync"] = "async"
+    ci: Literal["wilson", "clopper_pearson"] = "wilson"
+    confidence: float = Field(default=0.95, gt=0, lt=1)
+    decide: Literal["estimate", "lower"] = "estimate"
+    rel_tol: float = Field(default=0.0, ge=0)
+    csv_path: Optional[str] = None
+    json_path: Optional[str] = None
+    plot_path: Optional[str] = None
+
+    @field_validator("models")
+    @classmethod
+    def _models_known(cls, v: list[str]) -> list[str]:
+        for m in v:
+            cm.parse_model(m, "CapacitySpec")
+        return v
+
+    @field_validator("corruption")
+    @classmethod
+    def _corruption_ok(cls, v: Optional[str]) -> Optional[str]:
+        _corruption(v, "CapacitySpec")
+        return v
+
+    def curve_options(self) -> dict[str, Any]:
+        """Keyword arguments for :func:`capacity_curve` (without models, dims, paths)."""
+        skip = {"models", "dims", "patterns_file", "csv_path", "json_path", "plot_path"}
+        out = {k: v for k, v in self.model_dump().items() if k not in skip}
+        out["corruption"] = _corruption(self.corruption, "CapacitySpec")
+        return out
