@@ -58,6 +58,8 @@ def empty(n_queries: int, dim: int, k: int, *, need_acc: bool = True) -> Partial
 def _select_top(vals: np.ndarray, idx: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
     """Keep the k largest entries per row of (vals, idx); pad with -inf / -1."""
     width = vals.shape[1]
+    if k == 0:
+        return vals[:, :0].copy(), idx[:, :0].copy()
     if width > k:
         sel = np.argpartition(vals, width - k, axis=1)[:, width - k :]
         return np.take_along_axis(vals, sel, 1), np.take_along_axis(idx, sel, 1)

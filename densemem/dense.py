@@ -2,13 +2,16 @@
 
 from __future__ import annotations
 
+import warnings
 from typing import Any, Literal
 
 import faiss
 import numpy as np
 
 from . import _partial as P
-from ._exact import exact_reduce
+from . import _retrieval as R
+from ._candidates import CertifiedOptions
+from ._index import CandidateIndex, default_settings
 from ._table import PatternTable
 from ._tiles import DEFAULT_TILE_MIB, n_threads_default
 from ._validation import (
@@ -18,7 +21,7 @@ from ._validation import (
     check_positive_int,
     check_queries,
 )
-from .errors import InputValueError
+from .errors import DenseMemWarning, IndexStaleError, InputValueError
 from .results import NearestResult, RetrievalResult
 
 __all__ = ["DenseMemory"]
@@ -208,6 +211,8 @@ class DenseMemory:
     def _add(self, patterns: Any, ids: Any, *, where: str) -> np.ndarray:
         x, new_ids = self._table.prepare(patterns, ids, where=where)
         self._table.append(x, new_ids)
+        if self._index is not None:
+            self._index.add(x, self._table.version)
         return new_ids.copy()
 
     def remove(self, ids: Any) -> int:
@@ -222,7 +227,10 @@ class DenseMemory:
         >>> mem.remove([1]), mem.ids.tolist()
         (1, [0, 2])
         """
-        return self._table.delete(ids, where="DenseMemory.remove")
+        removed = self._table.delete(ids, where="DenseMemory.remove")
+        if self._index is not None:
+            self._index.stale = True  # positions shifted: rebuilt on next use
+        return removed
 
     def positions(self, ids: Any) -> np.ndarray:
         """Row numbers in :attr:`patterns` of the given ids."""
@@ -260,13 +268,7 @@ class DenseMemory:
     def _reduce(
         self, states: np.ndarray, beta: float, *, k: int, method: str, need_acc: bool, opts: dict[str, Any]
     ) -> tuple[P.Finished, dict[str, Any]]:
-        """One pass of the chosen method: softmax statistics for ``states``."""
-        if method == "exact":
-            part = exact_reduce(
-                states, self._table.x, beta, k=k, tile_mib=self.tile_mib, n_threads=self.n_threads, need_acc=need_acc
-            )
-            return P.finish(part), {}
-        raise InputValueError(f"DenseMemory.retrieve: unknown `method` {method!r}; use one of {_METHODS}.")
+        return R.reduce(self, states, beta, k=k, method=method, need_acc=need_acc, opts=opts)
 
     def retrieve(
         self,
@@ -276,9 +278,12 @@ class DenseMemory:
         steps: int = 1,
         tol: float = 1e-6,
         k: int | None = None,
-        method: Method = "exact",
+        method: Method = "auto",
         return_energy: bool = True,
-        **method_options: Any,
+        tol_mass: float = 1e-6,
+        k_max: int = 1024,
+        n_candidates: int | None = None,
+        measure: bool | int = False,
     ) -> RetrievalResult:
         """Retrieve by the softmax update ``xi <- X.T softmax(beta X xi)``.
 
@@ -297,11 +302,31 @@ class DenseMemory:
             Heaviest stored items to report per query (default: 10, or every
             stored item when fewer are held). An explicit ``k`` above the
             number of stored patterns is an error.
-        method : {"exact"}, default "exact"
-            "exact" reduces all stored rows in tiles.
+        method : {"auto", "exact", "certified", "index"}, default "auto"
+            - "exact": every stored row, in tiles (two matrix products).
+            - "certified": softmax over faiss's exact top-kc rows with a bound
+              on the omitted mass; kc doubles (up to ``k_max``) until the bound
+              is at most ``tol_mass``, then the query falls back to "exact".
+            - "index": softmax over the candidates of the index made by
+              :meth:`build_index` (approximate, no bound).
+            - "auto": "certified" for the queries where the bound can hold at
+              all (``2 beta M |q| >= ln((N - k) / tol_mass)``, since scores lie
+              in ``[-M|q|, M|q|]``), "exact" for the others. Certified
+              queries start at ``max(k, 16)`` candidates; one whose first
+              bound exceeds ``1e4 * tol_mass`` goes to "exact" without
+              growing, the others grow as in "certified".
         return_energy : bool, default True
             Compute the energy of the returned states (one more pass over the
-            stored rows without the weighted sum).
+            stored rows, without the weighted sum).
+        tol_mass : float, default 1e-6
+            Certified/auto: largest omitted softmax fraction accepted.
+        k_max : int, default 1024
+            Certified/auto: most candidates per query before falling back.
+        n_candidates : int, optional
+            Index: candidates fetched per query (default ``max(k, 32)``).
+        measure : bool or int, default False
+            Index: also report candidate recall against faiss exact top-kc on
+            a sample of queries (``True``: up to 256; an int: that many).
 
         Returns
         -------
@@ -310,7 +335,8 @@ class DenseMemory:
         Raises
         ------
         InputValueError
-            Empty memory, wrong query width, NaN/inf, beta <= 0, k out of range.
+            Empty memory, wrong query width, NaN/inf, beta <= 0, k out of range,
+            unknown method, "index" without :meth:`build_index`.
 
         Examples
         --------
@@ -328,63 +354,24 @@ class DenseMemory:
         k = min(10, len(self)) if k is None else check_k(k, n=len(self), where=where)
         if method not in _METHODS:
             raise InputValueError(f"{where}: unknown `method` {method!r}; use one of {', '.join(_METHODS)}.")
-        return self._iterate(q, was_1d, beta, steps, tol, k, method, return_energy, method_options)
-
-    def _iterate(
-        self,
-        q: np.ndarray,
-        was_1d: bool,
-        beta: float,
-        steps: int,
-        tol: float,
-        k: int,
-        method: str,
-        return_energy: bool,
-        opts: dict[str, Any],
-    ) -> RetrievalResult:
-        n_q = q.shape[0]
-        state = q.copy()
-        top_i = np.zeros((n_q, k), np.int64)
-        top_w = np.zeros((n_q, k))
-        converged = np.zeros(n_q, dtype=bool)
-        info_all: dict[str, Any] = {}
-        active = np.arange(n_q)
-        scale = max(self.max_norm, np.finfo(np.float32).tiny)
-        done = 0
-        for _ in range(steps):
-            fin, info = self._reduce(state[active], beta, k=k, method=method, need_acc=True, opts=opts)
-            assert fin.states is not None
-            moved = np.linalg.norm(fin.states - state[active], axis=1)
-            state[active] = fin.states
-            top_i[active] = fin.top_i
-            top_w[active] = fin.top_w
-            now = moved <= tol * scale
-            converged[active] = now
-            _store_info(info_all, info, active, n_q)
-            done += 1
-            active = active[~now]
-            if active.size == 0:
-                break
-        energy = self._energy_of(state, beta, method, opts) if return_energy else None
-        ids = self._table.ids[top_i]
-        return _shape_result(
-            was_1d,
-            states=state,
-            top_ids=ids,
-            top_weights=top_w,
-            energy=energy,
-            steps=done,
-            converged=converged,
-            method=method,
-            **info_all,
-        )
-
-    def _energy_of(self, states: np.ndarray, beta: float, method: str, opts: dict[str, Any]) -> np.ndarray:
-        fin, _ = self._reduce(states, beta, k=0, method=method, need_acc=False, opts=opts)
-        sq = np.einsum("ij,ij->i", states.astype(np.float64), states.astype(np.float64))
-        n = len(self)
-        m = self.max_norm
-        return -fin.lse / beta + 0.5 * sq + np.log(n) / beta + 0.5 * m * m
+        opts: dict[str, Any] = {
+            "certified": CertifiedOptions(
+                tol_mass=check_nonneg_float(tol_mass, name="tol_mass", where=where, strict=True),
+                k_max=check_positive_int(k_max, name="k_max", where=where),
+                tile_mib=self.tile_mib,
+            ),
+            "n_candidates": max(k, 32)
+            if n_candidates is None
+            else check_positive_int(n_candidates, name="n_candidates", where=where),
+        }
+        if method == "index":
+            self._fresh_index(where=where)
+        result = R.iterate(self, q, was_1d, beta, steps, tol, k, method, return_energy, opts)
+        if method == "index" and measure:
+            n_sample = 256 if measure is True else check_positive_int(int(measure), name="measure", where=where)
+            recall = R.candidate_recall(self, q, opts["n_candidates"], k, n_sample)
+            result = R.replace(result, candidate_recall=recall)
+        return result
 
     def energy(self, states: Any, beta: float | None = None) -> np.ndarray:
         """Log-sum-exp energy of states (computed exactly, tile by tile).
@@ -413,11 +400,82 @@ class DenseMemory:
             raise InputValueError(f"{where}: the memory is empty; add patterns first.")
         s, was_1d = check_queries(states, where=where, dim=self.dim, name="states")
         beta = self._beta if beta is None else check_beta(beta, where=where)
-        e = self._energy_of(s, beta, "exact", {})
+        e = R.energy_of(self, s, beta, "exact", {})
         return float(e[0]) if was_1d else e
 
+    # ----------------------------------------------------------------- index
+    def build_index(self, kind: Literal["hnsw", "ivf"] = "hnsw", **params: Any) -> dict[str, Any]:
+        """Build an approximate candidate index for ``method="index"`` and ``nearest(index=True)``.
+
+        Parameters
+        ----------
+        kind : {"hnsw", "ivf"}, default "hnsw"
+            faiss ``IndexHNSWFlat`` or ``IndexIVFFlat``, by inner product.
+        **params
+            HNSW: ``M`` (32), ``ef_construction`` (80), ``ef_search`` (64).
+            IVF: ``nlist`` (about 4 sqrt(N)), ``nprobe`` (nlist / 32, at least 8),
+            ``seed`` (0) for training.
+
+        Returns
+        -------
+        dict
+            The settings used.
+
+        Notes
+        -----
+        ``add`` appends to the index; ``remove`` marks it stale and the next
+        use rebuilds it with the same settings (with a :class:`DenseMemWarning`).
+
+        Examples
+        --------
+        >>> import numpy as np, densemem
+        >>> mem = densemem.DenseMemory.from_array(np.eye(8))
+        >>> mem.build_index("hnsw", M=8)["kind"]
+        'hnsw'
+        """
+        where = "DenseMemory.build_index"
+        if len(self) == 0:
+            raise InputValueError(f"{where}: the memory is empty; add patterns first.")
+        settings = default_settings(kind, len(self), **params)
+        self._index = CandidateIndex.build(self._table.x, settings, self._table.version)
+        return settings.to_dict()
+
+    def _fresh_index(self, *, where: str) -> CandidateIndex:
+        if self._index is None:
+            raise InputValueError(f"{where}: no candidate index; call build_index('hnsw') or build_index('ivf') first.")
+        if self._index.stale or self._index.n_rows != len(self):
+            warnings.warn(
+                f"{where}: patterns were removed since the index was built; rebuilding it "
+                f"({self._index.settings.kind}) with the same settings.",
+                DenseMemWarning,
+                stacklevel=3,
+            )
+            self._index = CandidateIndex.build(self._table.x, self._index.settings, self._table.version)
+        return self._index
+
+    def _index_payload(self) -> tuple[dict[str, Any], Any] | None:
+        """(meta, faiss index) for the store format, or None (no or stale index)."""
+        if self._index is None or self._index.stale or self._index.n_rows != len(self):
+            return None
+        return self._index.meta(), self._index.faiss_index
+
+    def _restore_index(self, meta: dict[str, Any], index: Any) -> None:
+        """Attach an index read from a store folder (checked against the rows)."""
+        from ._index import IndexSettings
+
+        if int(meta.get("n_rows", -1)) != len(self) or int(index.ntotal) != len(self):
+            raise IndexStaleError(
+                f"DenseMemory.load: the stored index covers {index.ntotal} rows but the store holds {len(self)}."
+            )
+        self._index = CandidateIndex(IndexSettings(**meta["settings"]), index, len(self), self._table.version)
+
     def nearest(
-        self, queries: Any, k: int | None = None, *, metric: Literal["ip", "l2"] = "ip"
+        self,
+        queries: Any,
+        k: int | None = None,
+        *,
+        metric: Literal["ip", "l2"] = "ip",
+        index: bool = False,
     ) -> NearestResult:
         """Exact k nearest stored patterns by faiss brute-force search.
 
@@ -430,6 +488,9 @@ class DenseMemory:
             Inner product (cosine when ``normalize=True``; faiss
             ``METRIC_INNER_PRODUCT``) or squared Euclidean distance
             (``METRIC_L2``).
+        index : bool, default False
+            Search the approximate index of :meth:`build_index` instead
+            (inner product only), for like-for-like baselines.
 
         Returns
         -------
@@ -447,30 +508,16 @@ class DenseMemory:
         k = min(10, len(self)) if k is None else check_k(k, n=len(self), where=where)
         if metric not in ("ip", "l2"):
             raise InputValueError(f"{where}: `metric` must be 'ip' or 'l2'; got {metric!r}.")
-        fm = faiss.METRIC_INNER_PRODUCT if metric == "ip" else faiss.METRIC_L2
-        scores, pos = faiss.knn(q, self._table.x, k, metric=fm)
-        ids = self._table.ids[pos]
+        if index:
+            if metric != "ip":
+                raise InputValueError(f"{where}: the candidate index ranks by inner product; use metric='ip'.")
+            scores, pos = self._fresh_index(where=where).search(q, k)
+        else:
+            fm = faiss.METRIC_INNER_PRODUCT if metric == "ip" else faiss.METRIC_L2
+            scores, pos = faiss.knn(q, self._table.x, k, metric=fm)
+        ids = self._table.ids[np.maximum(pos, 0)]
         if was_1d:
             return NearestResult(ids=ids[0], scores=scores[0], metric=metric)
         return NearestResult(ids=ids, scores=scores, metric=metric)
 
 
-def _store_info(acc: dict[str, Any], info: dict[str, Any], active: np.ndarray, n_q: int) -> None:
-    """Write one step's per-query method info into full-length arrays."""
-    for key, val in info.items():
-        if isinstance(val, np.ndarray) and val.shape[:1] == active.shape:
-            if key not in acc:
-                acc[key] = np.zeros(n_q, dtype=val.dtype)
-            acc[key][active] = val
-        else:
-            acc[key] = val
-
-
-def _shape_result(was_1d: bool, **fields: Any) -> RetrievalResult:
-    if was_1d:
-        for key, val in fields.items():
-            if isinstance(val, np.ndarray) and val.ndim >= 1:
-                fields[key] = val[0]
-        if fields.get("energy") is not None:
-            fields["energy"] = float(fields["energy"])
-    return RetrievalResult(**fields)
