@@ -261,6 +261,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         sys.stderr.write(f"{prog}: interrupted\n")
         return 130
+    except Exception as exc:  # a bug, not a user error: still one line unless --debug
+        if args.debug:
+            traceback.print_exc()
+        sys.stderr.write(f"{prog}: internal error: {type(exc).__name__}: {_one_line(exc)} (rerun with --debug)\n")
+        return 1
     sys.stdout.write((out.to_json(data) if args.json else text) + "\n")
     return 0
 
