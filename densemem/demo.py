@@ -18,7 +18,7 @@ Examples
 --------
 >>> from densemem.demo import make_archive
 >>> arc = make_archive(60, seed=1)
->>> arc.vectors.shape[1], arc.ids[0]
+>>> arc.vectors.shape[1], str(arc.ids[0])
 (64, 'HVA-00000')
 """
 
