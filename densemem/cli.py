@@ -124,8 +124,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--no-plots", dest="plots", action="store_false", help="skip the PNG plots")
     p.set_defaults(run=_run_demo)
 
-    for add in _JOB_COMMANDS:
-        add(subs)
+    from ._cli_jobs import register
+
+    register(subs, _sub)
     return parser
 
 
@@ -231,10 +232,6 @@ def _run_demo(a: argparse.Namespace) -> Result:
     s = make_spec(DemoSpec, vars(a))
     report = run_demo(s.out, n_photos=s.photos, seed=s.seed, plots=s.plots, quiet=a.quiet)
     return report.to_dict(), report.summary_text()
-
-
-# -------------------------------------------------- job commands (optional)
-_JOB_COMMANDS: list[Callable[[Any], None]] = []
 
 
 # -------------------------------------------------------------------- main

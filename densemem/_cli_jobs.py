@@ -1,0 +1,152 @@
+"""``densemem tune`` / ``dedup`` / ``capacity``: thin wrappers over the job modules.
+
+Each ``add_*`` registers its subcommand only when its job module imports, so a
+missing module leaves no stub command behind. Options map onto the job
+module's own pydantic spec (TuneSpec, DedupSpec, CapacitySpec).
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+from pathlib import Path
+from typing import Any, Callable
+
+from . import _cli_output as out
+from ._cli_specs import SpecError, make_spec
+
+__all__ = ["ADDERS"]
+
+
+def _has(module: str) -> bool:
+    try:
+        importlib.import_module(f"densemem.{module}")
+    except ImportError:
+        return False
+    return True
+
+
+def _load_data(path: str, column: str | None, id_column: str | None) -> tuple[Any, Any]:
+    """A store folder (its memory) or an embeddings file (vectors and ids)."""
+    p = Path(path)
+    if p.is_dir():
+        from .dense import DenseMemory
+
+        return DenseMemory.load(p, mmap=True), None
+    from .readers import read_embeddings
+
+    emb = read_embeddings(p, column=column, id_column=id_column)
+    return emb.vectors, emb.ids
+
+
+# ------------------------------------------------------------------- tune
+def add_tune(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
+    p = sub(subs, "tune", "choose beta for a store: separation, predicted beta, a measured sweep",
+            "densemem tune archive-store --target sharp --n-betas 15 --plot sweep.png")
+    p.add_argument("store", help="store folder")
+    p.add_argument("--target", choices=["sharp", "blend", "none"], default="sharp",
+                   help="what the automatic choice aims for (default sharp; none: sweep only)")
+    p.add_argument("--n-betas", type=int, default=25, help="betas in the sweep (default 25)")
+    p.add_argument("--n-queries", type=int, default=256, help="generated noisy queries (default 256)")
+    p.add_argument("--corruption", choices=["gaussian", "mask", "mix"], default="gaussian")
+    p.add_argument("--level", type=float, default=0.1, help="corruption level (default 0.1)")
+    p.add_argument("--steps", type=int, default=1, help="updates per query (default 1)")
+    p.add_argument("--blend-size", type=float, default=5.0, help="blend size aimed for with --target blend")
+    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--plot", help="write the sweep as a PNG here (needs matplotlib)")
+    p.set_defaults(run=_run_tune)
+
+
+def _run_tune(a: argparse.Namespace) -> tuple[Any, str]:
+    from . import tuning
+    from .dense import DenseMemory
+
+    values = dict(vars(a))
+    values["target"] = None if a.target == "none" else a.target
+    spec = make_spec(tuning.TuneSpec, values)
+    if a.plot is not None and Path(a.plot).exists():
+        raise SpecError(f"--plot must name a new file; {a.plot!r} exists.")
+    rep = tuning.tune_beta(DenseMemory.load(a.store, mmap=True), spec)
+    if a.plot is not None and rep.sweep is not None:
+        tuning.plot_sweep(rep.sweep, a.plot, predicted_beta=rep.prediction.beta_target_separated,
+                          chosen_beta=rep.choice.beta if rep.choice else None)
+    return rep.to_dict(), tuning.format_report(rep)
+
+
+# ------------------------------------------------------------------ dedup
+def add_dedup(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
+    p = sub(subs, "dedup", "group near-duplicates and write a keep/drop plan (nothing is removed)",
+            "densemem dedup archive-store plan/ --threshold 0.97 --no-chaining star")
+    p.add_argument("input", help="store folder or embeddings file (.npy, .npz, .parquet, .csv, .tsv)")
+    p.add_argument("out", help="folder for the plan files (groups.csv/json, keep.txt, drop.txt)")
+    p.add_argument("--column", help="array/column holding the vectors (embeddings files)")
+    p.add_argument("--id-column", help="array/column holding ids (embeddings files)")
+    p.add_argument("--threshold", type=float, default=0.98, help="cosine similarity for a near-duplicate (0.98)")
+    p.add_argument("--method", choices=["graph", "attractor"], default="graph")
+    p.add_argument("--candidates", choices=["auto", "exact", "ivf", "hnsw"], default="auto")
+    p.add_argument("--k", type=int, default=32, help="candidate neighbours per item (default 32)")
+    p.add_argument("--no-chaining", choices=["off", "star", "complete"], default="off")
+    p.add_argument("--representative", choices=["medoid", "first"], default="medoid")
+    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--overwrite", action="store_true", help="replace plan files already in OUT")
+    p.set_defaults(run=_run_dedup)
+
+
+def _run_dedup(a: argparse.Namespace) -> tuple[Any, str]:
+    from .duplicates import DedupSpec
+
+    spec = make_spec(DedupSpec, vars(a))
+    data, ids = _load_data(a.input, a.column, a.id_column)
+    plan = spec.run(data, ids=ids, progress=None if not a.quiet else False)
+    files = plan.write(a.out, overwrite=a.overwrite)
+    s = plan.summary()
+    text = out.table(["items", "groups", "keep", "drop", "threshold", "candidates"],
+                     [[s["n_items"], s["n_groups"], s["n_keep"], s["n_drop"], s["threshold"], s["candidates"]]],
+                     title=f"near-duplicates -> {a.out}")
+    return {"summary": s, "files": files}, text
+
+
+# --------------------------------------------------------------- capacity
+def add_capacity(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
+    p = sub(subs, "capacity", "measure how many patterns each memory model stores, by dimension",
+            "densemem capacity --models hebbian storkey --dims 25 50 --n-trials 3 --csv capacity.csv")
+    p.add_argument("--models", nargs="+", default=["hebbian", "storkey", "pseudo_inverse"],
+                   help="models, e.g. hebbian storkey pseudo_inverse softmax:50")
+    p.add_argument("--dims", nargs="+", type=int, default=[25, 50, 100, 200])
+    p.add_argument("--patterns", choices=["pm1", "unit", "gaussian"], default="pm1")
+    p.add_argument("--corruption", help="query corruption, e.g. flip:0.1, mask:0.25, gauss:0.5")
+    p.add_argument("--n-trials", type=int, default=5)
+    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--csv", dest="csv_path", help="also write the table as CSV (new file)")
+    p.add_argument("--json-out", dest="json_path", help="also write the table as JSON (new file)")
+    p.add_argument("--plot", dest="plot_path", help="also draw the curve as PNG (new file)")
+    p.set_defaults(run=_run_capacity)
+
+
+def _run_capacity(a: argparse.Namespace) -> tuple[Any, str]:
+    from . import capacity
+
+    spec = make_spec(capacity.CapacitySpec, vars(a))
+    for flag, path in (("--csv", spec.csv_path), ("--json-out", spec.json_path), ("--plot", spec.plot_path)):
+        if path is not None and Path(path).exists():
+            raise SpecError(f"{flag} must name a new file; {path!r} exists.")
+    curve = capacity.capacity_curve(spec.models, spec.dims, csv_path=spec.csv_path, json_path=spec.json_path,
+                                    progress=None if not a.quiet else False, **spec.curve_options())
+    if spec.plot_path is not None:
+        capacity.plot_capacity(curve, spec.plot_path)
+    rows = curve.rows()
+    keys = list(rows[0]) if rows else []
+    shown = [k for k in keys if not isinstance(rows[0][k], (list, dict))][:8]
+    return {"rows": rows}, out.table(shown, [[r[k] for k in shown] for r in rows], title="capacity")
+
+
+ADDERS: list[tuple[str, Callable[..., None]]] = [
+    ("tuning", add_tune), ("duplicates", add_dedup), ("capacity", add_capacity),
+]
+
+
+def register(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
+    """Add every job subcommand whose module is present."""
+    for module, add in ADDERS:
+        if _has(module):
+            add(subs, sub)
