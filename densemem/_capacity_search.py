@@ -31,7 +31,9 @@ def wilson_interval(k: int, n: int, confidence: float) -> tuple[float, float]:
     den = 1.0 + z * z / n
     centre = (p + z * z / (2 * n)) / den
     half = z * np.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / den
-    return max(0.0, centre - half), min(1.0, centre + half)
+    lo = 0.0 if k == 0 else max(0.0, centre - half)  # exact ends at k = 0 and k = n
+    hi = 1.0 if k == n else min(1.0, centre + half)
+    return lo, hi
 
 
 def clopper_pearson_interval(k: int, n: int, confidence: float) -> tuple[float, float]:

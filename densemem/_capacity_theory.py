@@ -87,12 +87,19 @@ def hebbian_fixed_point_capacity(n: int, delta: float) -> int:
     when none of its n bits flips, with the bits treated as independent: (1 - P)^n.
     """
     p = 1
-    while True:
-        k = p * (n - 1)  # K for p + 1 patterns
-        flip = float(stats.binom.cdf(np.ceil((k - n + 1) / 2.0) - 1, k, 0.5))
-        if (1.0 - flip) ** n < 1.0 - delta:
-            return p
+    while (1.0 - hebbian_flip_probability(n, p + 1)) ** n >= 1.0 - delta:
         p += 1
+    return p
+
+
+def hebbian_flip_probability(n: int, p: int) -> float:
+    """Exact one-step flip probability of one bit of a stored pattern (CHECKS.md 18, derived).
+
+    Hebbian W = (1/n) sum xi xi^T, zero diagonal, p patterns, start at a stored pattern:
+    P = P(Binomial(K, 1/2) < (K - n + 1)/2) with K = (p - 1)(n - 1); a tie keeps the state.
+    """
+    k = (p - 1) * (n - 1)
+    return float(stats.binom.cdf(np.ceil((k - n + 1) / 2.0) - 1, k, 0.5))
 
 
 def top1_capacity_pm1(dim: int, kind: str, level: float, delta: float) -> int:
