@@ -38,7 +38,7 @@ def plot_curve(curve: Any, path: Any, *, title: str | None = None) -> Path:
         raise MissingExtraError(
             f"{where}: drawing needs matplotlib; install it with: pip install densemem[plot]"
         ) from None
-    fig, ax = plt.subplots(figsize=(8, 5.5))
+    fig, ax = plt.subplots(figsize=(12, 6))
     groups: dict[tuple[str, str], list[Any]] = {}
     for r in curve.reports:
         groups.setdefault((r.model, r.corruption), []).append(r)
@@ -58,7 +58,7 @@ def plot_curve(curve: Any, path: Any, *, title: str | None = None) -> Path:
     ax.set_ylabel("capacity (patterns)")
     ax.set_title(title or "Capacity: measured (markers) and published asymptotic (dashed)")
     ax.grid(True, which="both", alpha=0.3)
-    ax.legend(fontsize=6.5, loc="best")
+    ax.legend(fontsize=6.5, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
     path = Path(path)
     fig.tight_layout()
     fig.savefig(path, dpi=120)
