@@ -5,7 +5,8 @@ Invented scenario: a Hebbian memory of N = 1000 units holding 50 random patterns
 flip in the first sweep) or stored patterns with 10% of bits flipped ("noisy": the realistic
 use, about 10% of the units flip). Both sweeps start from the same states and local fields.
 
-Timed per case, median of `--repeats` runs:
+Timed per case, median of `--repeats` runs, sync and async alternated so that both see the
+same machine load (the ratio of medians and the median of per-pair ratios are both kept):
   sweep     one sweep of the update kernel given the current fields (what a sweep costs
             inside a longer retrieval: sync = decide + one GEMM for the new fields; async =
             the blocked sequential sweep), plus the energy bookkeeping of both.
@@ -36,13 +37,16 @@ from densemem.binary import BinaryMemory
 HERE = Path(__file__).resolve().parent
 
 
-def _median_time(fn, repeats: int) -> float:
-    times = []
+def _paired_times(fn_a, fn_b, repeats: int) -> tuple[float, float, float]:
+    """Median times of two functions run alternately (so both see the same machine load)
+    and the median of the per-pair ratios b / a."""
+    ta, tb = [], []
     for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return median(times)
+        for fn, acc in ((fn_a, ta), (fn_b, tb)):
+            t0 = time.perf_counter()
+            fn()
+            acc.append(time.perf_counter() - t0)
+    return median(ta), median(tb), median(b / a for a, b in zip(ta, tb))
 
 
 def _probes(kind: str, patterns: np.ndarray, n_probes: int, rng: np.random.Generator):
@@ -66,6 +70,7 @@ def _case(mem: BinaryMemory, patterns, kind: str, n_probes: int, repeats: int, s
     eng = mem._engine  # the private kernel: timing a sweep needs the cached fields
     s0 = probes.astype(np.float64)
     aux0 = eng.start(s0)
+    aux0.st = np.ascontiguousarray(s0.T)  # as after the first sweep of a longer retrieval
     order = rng.permutation(mem.n_units)
 
     def sync_sweep():
@@ -75,7 +80,7 @@ def _case(mem: BinaryMemory, patterns, kind: str, n_probes: int, repeats: int, s
         return new
 
     def async_sweep():
-        s, aux = s0.copy(), (aux0[0].copy(), aux0[1].copy())  # O(B N) copies, small
+        s, aux = s0.copy(), type(aux0)(aux0.st.copy(), aux0.ht.copy())  # O(B N) copies
         eng.async_sweep(s, aux, order)
         eng.energy(s, aux)
         return s
@@ -84,14 +89,33 @@ def _case(mem: BinaryMemory, patterns, kind: str, n_probes: int, repeats: int, s
         "sync": float((sync_sweep() != s0).mean()),
         "async": float((async_sweep() != s0).mean()),
     }
+    sweep_sync, sweep_async, sweep_ratio = _paired_times(sync_sweep, async_sweep, repeats)
+    retr_sync, retr_async, retr_ratio = _paired_times(
+        lambda: mem.retrieve(probes, mode="sync", max_sweeps=1),
+        lambda: mem.retrieve(probes, mode="async", max_sweeps=1, seed=seed), repeats)
+    # to convergence (max_sweeps=100) only near stored patterns: from random probes the
+    # dynamics wander through spurious states for tens of sweeps (real, but slow to time)
+    full_sync = full_async = None
+    conv = {m: None for m in ("sync", "async")}
+    if kind == "noisy":
+        full_sync, full_async, _ = _paired_times(
+            lambda: mem.retrieve(probes, mode="sync"),
+            lambda: mem.retrieve(probes, mode="async", seed=seed), max(1, repeats // 2))
+        conv = {m: mem.retrieve(probes, mode=m, seed=seed).sweeps for m in ("sync", "async")}
     row = {
         "case": kind,
-        "sweep_sync_s": _median_time(sync_sweep, repeats),
-        "sweep_async_s": _median_time(async_sweep, repeats),
-        "retrieve_sync_s": _median_time(
-            lambda: mem.retrieve(probes, mode="sync", max_sweeps=1), repeats),
-        "retrieve_async_s": _median_time(
-            lambda: mem.retrieve(probes, mode="async", max_sweeps=1, seed=seed), repeats),
+        "sweep_sync_s": sweep_sync,
+        "sweep_async_s": sweep_async,
+        "sweep_ratio_async_over_sync": sweep_async / sweep_sync,
+        "sweep_ratio_median_of_pairs": sweep_ratio,
+        "retrieve_sync_s": retr_sync,
+        "retrieve_async_s": retr_async,
+        "retrieve_ratio_async_over_sync": retr_async / retr_sync,
+        "retrieve_ratio_median_of_pairs": retr_ratio,
+        "to_convergence_sync_s": full_sync,
+        "to_convergence_async_s": full_async,
+        "sweeps_to_convergence_sync": conv["sync"],
+        "sweeps_to_convergence_async": conv["async"],
         "fraction_units_flipped_sync": n_changed["sync"],
         "fraction_units_flipped_async": n_changed["async"],
         "bits_matching_nearest_before": _quality(probes, patterns),
@@ -100,8 +124,6 @@ def _case(mem: BinaryMemory, patterns, kind: str, n_probes: int, repeats: int, s
         "bits_matching_nearest_after_async": _quality(
             mem.retrieve(probes, mode="async", max_sweeps=1, seed=seed).states, patterns),
     }
-    row["sweep_ratio_async_over_sync"] = row["sweep_async_s"] / row["sweep_sync_s"]
-    row["retrieve_ratio_async_over_sync"] = row["retrieve_async_s"] / row["retrieve_sync_s"]
     return row
 
 
@@ -118,6 +140,7 @@ def main(argv: list[str] | None = None) -> dict:
     rng = np.random.default_rng(args.seed)
     patterns = rng.choice(np.array([-1, 1], dtype=np.int8), size=(args.n_patterns, args.n_units))
     mem = BinaryMemory(patterns, rule="hebbian")
+    load_before = os.getloadavg()[0]
     rows = [_case(mem, patterns, kind, args.n_probes, args.repeats, args.seed + i)
             for i, kind in enumerate(("random", "noisy"))]
 
@@ -125,6 +148,12 @@ def main(argv: list[str] | None = None) -> dict:
           f"{args.n_patterns} Hebbian patterns, median of {args.repeats}")
     print(f"{'case':8} {'sync sweep':>11} {'async sweep':>12} {'ratio':>6} "
           f"{'sync retr.':>11} {'async retr.':>12} {'ratio':>6} {'flipped':>8} {'bits ok':>8}")
+    for r in rows:
+        if r["to_convergence_sync_s"] is not None:
+            print(f"  {r['case']}: to convergence sync {r['to_convergence_sync_s'] * 1e3:.1f}ms "
+                  f"({r['sweeps_to_convergence_sync']} sweeps), async "
+                  f"{r['to_convergence_async_s'] * 1e3:.1f}ms "
+                  f"({r['sweeps_to_convergence_async']} sweeps)")
     for r in rows:
         print(f"{r['case']:8} {r['sweep_sync_s'] * 1e3:9.1f}ms {r['sweep_async_s'] * 1e3:10.1f}ms "
               f"{r['sweep_ratio_async_over_sync']:6.2f} {r['retrieve_sync_s'] * 1e3:9.1f}ms "
@@ -135,7 +164,9 @@ def main(argv: list[str] | None = None) -> dict:
         "bench": "binary_sweep",
         "n_units": args.n_units, "n_probes": args.n_probes, "n_patterns": args.n_patterns,
         "repeats": args.repeats, "seed": args.seed,
-        "machine": {"python": platform.python_version(), "cpus": os.cpu_count()},
+        "machine": {"python": platform.python_version(), "cpus": os.cpu_count(),
+                    "load_average_1min_before": load_before,
+                    "load_average_1min_after": os.getloadavg()[0]},
         "rows": rows,
         "target": "async/sync sweep <= 2.0 on the noisy case",
         "ratio": rows[1]["sweep_ratio_async_over_sync"],

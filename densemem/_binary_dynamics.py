@@ -28,7 +28,7 @@ import numpy as np
 TIE_RTOL = 1e-10
 
 #: Units per block in the pairwise asynchronous sweep (see PairwiseEngine.async_sweep).
-BLOCK = 64
+BLOCK = 128
 
 
 class Engine(Protocol):
@@ -39,13 +39,19 @@ class Engine(Protocol):
     def select(self, aux: Any, keep: np.ndarray) -> Any: ...
 
 
-class PairwiseEngine:
-    """E(s) = -s.W s / 2 + theta.s with symmetric W.
+class _Fields:
+    """Cache of PairwiseEngine: fields ht and (for asynchronous sweeps) states st, both
+    unit-major, shape (n_units, n_probes), so one unit's values over all probes are one
+    contiguous row. st is made on the first asynchronous sweep."""
 
-    The cache is a pair (sT, hT) of the states and local fields h = W s - theta stored unit-
-    major, shape (n_units, n_probes), so that one unit's values over all probes are one
-    contiguous row.
-    """
+    __slots__ = ("st", "ht")
+
+    def __init__(self, st: np.ndarray | None, ht: np.ndarray) -> None:
+        self.st, self.ht = st, ht
+
+
+class PairwiseEngine:
+    """E(s) = -s.W s / 2 + theta.s with symmetric W; fields h = W s - theta."""
 
     def __init__(self, weights: np.ndarray, theta: np.ndarray, block: int = BLOCK) -> None:
         self.w = weights
@@ -54,24 +60,21 @@ class PairwiseEngine:
         scale = float(np.max(np.abs(weights).sum(axis=1) + np.abs(theta)))
         self.tol = TIE_RTOL * scale
 
-    def start(self, s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        st = np.ascontiguousarray(s.T)
-        return st, self.w @ st - self.theta[:, None]
+    def start(self, s: np.ndarray) -> _Fields:
+        return _Fields(None, self.w @ s.T - self.theta[:, None])
 
-    def energy(self, s: np.ndarray, aux: tuple[np.ndarray, np.ndarray]) -> np.ndarray:
-        st, ht = aux
+    def energy(self, s: np.ndarray, aux: _Fields) -> np.ndarray:
         # W s = h + theta, so E = -s.(h + theta)/2 + theta.s = -s.h/2 + theta.s/2
-        return -0.5 * np.einsum("ij,ij->j", st, ht) + 0.5 * (self.theta @ st)
+        return -0.5 * np.einsum("ij,ji->i", s, aux.ht) + 0.5 * (s @ self.theta)
 
-    def decide(self, s: np.ndarray, aux: tuple[np.ndarray, np.ndarray]) -> np.ndarray:
-        h = aux[1].T
+    def decide(self, s: np.ndarray, aux: _Fields) -> np.ndarray:
+        h = aux.ht.T
         return np.where(h > self.tol, 1.0, np.where(h < -self.tol, -1.0, s))
 
-    def select(self, aux: tuple[np.ndarray, np.ndarray], keep: np.ndarray):
-        return aux[0][:, keep], aux[1][:, keep]
+    def select(self, aux: _Fields, keep: np.ndarray) -> _Fields:
+        return _Fields(None if aux.st is None else aux.st[:, keep], aux.ht[:, keep])
 
-    def async_sweep(self, s: np.ndarray, aux: tuple[np.ndarray, np.ndarray],
-                    order: np.ndarray) -> np.ndarray:
+    def async_sweep(self, s: np.ndarray, aux: _Fields, order: np.ndarray) -> np.ndarray:
         """One asynchronous sweep over `order`, in place on `s` and the cache.
 
         Units are taken in blocks of `block` consecutive positions of the order. Inside a
@@ -84,27 +87,41 @@ class PairwiseEngine:
         The result is exactly the sequential single-unit dynamics; a block in which no unit
         flips costs only its loop, so late sweeps are cheap.
         """
-        st, ht = aux
-        changed = np.zeros(s.shape[0], dtype=bool)
-        w, tol = self.w, self.tol
+        if aux.st is None:
+            aux.st = np.ascontiguousarray(s.T)
+        st, ht = aux.st, aux.ht
+        w, tol, n_probes = self.w, self.tol, s.shape[0]
+        buf = np.empty_like(ht)  # scratch for the block products, reused
+        field, prod = np.empty(n_probes), np.empty(n_probes)
+        flips = np.empty(n_probes, dtype=bool)
+        changed = np.zeros(n_probes, dtype=bool)
         for start in range(0, order.size, self.block):
             blk = order[start : start + self.block]
             hb, sb = ht[blk], st[blk]  # (b, n_probes) copies
             wbb = w[np.ix_(blk, blk)]
             delta = np.zeros_like(sb)
-            for t in range(blk.size):
-                h_t = hb[t] + wbb[t, :t] @ delta[:t] if t else hb[t]
-                idx = np.flatnonzero(sb[t] * h_t < -tol)
-                if idx.size:
-                    d = -2.0 * sb[t, idx]
-                    sb[t, idx] += d
-                    delta[t, idx] = d
-            cols = np.flatnonzero(delta.any(axis=1))
-            if cols.size == 0:
+            any_flip = False
+            for t in range(blk.size):  # few whole-row numpy calls per unit
+                if any_flip:
+                    np.dot(wbb[t, :t], delta[:t], out=field)
+                    field += hb[t]
+                    np.multiply(sb[t], field, out=prod)
+                else:
+                    np.multiply(sb[t], hb[t], out=prod)
+                np.less(prod, -tol, out=flips)
+                if flips.any():
+                    np.multiply(sb[t], flips, out=delta[t])
+                    delta[t] *= -2.0
+                    any_flip = True
+            if not any_flip:
                 continue
+            cols = np.flatnonzero(delta.any(axis=1))
+            sb += delta
             st[blk] = sb
             changed |= delta.any(axis=0)
-            ht += w[blk[cols]].T @ delta[cols]  # W[:, cols] = W[cols].T (W symmetric)
+            # ht += W[:, cols] @ delta[cols]; W[:, cols] = W[cols].T as W is symmetric
+            np.matmul(w[blk[cols]].T, delta[cols], out=buf)
+            ht += buf
         s[:] = st.T
         return changed
 

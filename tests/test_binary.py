@@ -87,13 +87,13 @@ def _naive_async(s0, w, theta, free, rng, max_sweeps):
     return s
 
 
-@pytest.mark.parametrize("n", [7, 150])
-def test_blocked_async_equals_naive_sequential_updates(n, rng):
-    # agreement with a naive in-test reference; n = 150 gives uneven blocks of 64
+@pytest.mark.parametrize("n, block", [(7, 128), (150, 128), (150, 16)])
+def test_blocked_async_equals_naive_sequential_updates(n, block, rng):
+    # agreement with a naive in-test reference; n = 150 gives uneven blocks
     w, theta = random_network(rng, n)
     free = rng.random(n) > 0.1
     probes = pm1(rng, (9, n)).astype(np.float64)
-    out = dyn.run(dyn.PairwiseEngine(w, theta), probes, mode="async", max_sweeps=30,
+    out = dyn.run(dyn.PairwiseEngine(w, theta, block=block), probes, mode="async", max_sweeps=30,
                   rng=np.random.default_rng(5), free=free, keep_trajectory=False)
     ref = _naive_async(probes, w, theta, free, np.random.default_rng(5), 30)
     assert np.array_equal(out["states"], ref)
