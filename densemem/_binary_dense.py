@@ -43,7 +43,8 @@ class DenseEngine:
         polynomial:  g = M @ Xi + s * R,  M = (F(x+2) - F(x-2)) / 2,
                      R = sum_mu (2 F(x) - F(x+2) - F(x-2)) / 2
     (integer-valued, so exact in float64), and for F = exp, with L0 = lse(x),
-        s_i = +1: g_i = L0 - lse_mu(x_mu - 2 xi_mu,i);  s_i = -1: g_i = lse_mu(x_mu + 2 xi_mu,i) - L0
+        s_i = +1: g_i = L0 - lse_mu(x_mu - 2 xi_mu,i),
+        s_i = -1: g_i = lse_mu(x_mu + 2 xi_mu,i) - L0,
     where lse_mu(x_mu -+ 2 xi_mu,i) = m + log(exp(x - m) @ exp(-+2 Xi)) never overflows.
     """
 

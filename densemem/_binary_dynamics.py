@@ -44,7 +44,7 @@ class _Fields:
     unit-major, shape (n_units, n_probes), so one unit's values over all probes are one
     contiguous row. st is made on the first asynchronous sweep."""
 
-    __slots__ = ("st", "ht")
+    __slots__ = ("ht", "st")
 
     def __init__(self, st: np.ndarray | None, ht: np.ndarray) -> None:
         self.st, self.ht = st, ht

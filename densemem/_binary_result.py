@@ -13,6 +13,7 @@ import numpy as np
 from densemem import _binary_checks as chk
 from densemem._binary_dynamics import Engine, run
 
+
 @dataclass(frozen=True, slots=True)
 class BinaryRetrieval:
     """Outcome of retrieving a batch of probes from a binary memory.

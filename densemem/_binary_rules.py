@@ -97,13 +97,13 @@ def damage(
     w, th = weights.copy(), theta.copy()
     n = w.shape[0]
     iu, ju = np.triu_indices(n, k=1)
-    n_cut = int(round(weight_fraction * iu.size))
+    n_cut = round(weight_fraction * iu.size)
     if n_cut:
         pick = rng.choice(iu.size, size=n_cut, replace=False)
         w[iu[pick], ju[pick]] = 0.0
         w[ju[pick], iu[pick]] = 0.0
     hit = np.zeros(n, dtype=bool)
-    n_units = int(round(unit_fraction * n))
+    n_units = round(unit_fraction * n)
     if n_units:
         hit[rng.choice(n, size=n_units, replace=False)] = True
     if unit_mode == "delete":

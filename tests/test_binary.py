@@ -425,7 +425,7 @@ def test_dense_sync_product_form_equals_unit_by_unit_rule(rng):
         eng = DenseEngine(x, interaction, 3)
         got = eng.decide(s, eng.start(s))
 
-        def e(state):
+        def e(state, interaction=interaction):
             ov = x.astype(float) @ state
             if interaction == "exponential":
                 return -logsumexp(ov)
