@@ -81,6 +81,17 @@ def test_weights_states_energy_match_scipy(seed: int, beta: float, method: str) 
     assert res.energy.shape == (6,) and res.converged.shape == (6,) and res.steps == 1
 
 
+@pytest.mark.parametrize("beta", [1e-6, 1e-4, 1e-2, 1.0, 1e2, 1e6])
+def test_energy_matches_scipy_across_the_beta_range(beta: float) -> None:
+    # Reference: CHECKS.md entry 1 computed in float64 with scipy.special.logsumexp (13).
+    # Random states keep E of order M^2 at every beta, so rtol 1e-5 is a float32-level
+    # demand; at small beta the log-sum-exp must not lose the ln N it cancels against.
+    rng = np.random.default_rng(21)
+    x, s = _rand(rng, 50, 6), _rand(rng, 8, 6)
+    mem = DenseMemory.from_array(x, beta=beta)
+    np.testing.assert_allclose(mem.energy(s), ref_energy(x, s, beta), rtol=RTOL)
+
+
 def test_weights_of_every_item_sum_to_one() -> None:
     # Reference: scipy.special.softmax sums to 1 (CHECKS.md 13); k = N reports every item.
     rng = np.random.default_rng(1)
