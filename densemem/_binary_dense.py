@@ -71,7 +71,7 @@ class DenseEngine:
     def energy(self, s: np.ndarray, x: np.ndarray) -> np.ndarray:
         if self.interaction == "exponential":
             return -_lse(x)
-        return -self._f(x).sum(axis=1)
+        return 0.0 - self._f(x).sum(axis=1)  # 0.0 - : no negative zeros
 
     def _gain(self, s: np.ndarray, x: np.ndarray, i: int) -> np.ndarray:
         """g_i per probe (> 0: +1 has the lower energy), set to 0 on a tie."""

@@ -380,11 +380,13 @@ class DenseBinaryMemory:
 
     def _check_range(self, where: str) -> None:
         n_pat, n = self._patterns.shape
-        if self._interaction != "exponential" and self._degree * np.log(n) + np.log(n_pat) > 700:
+        # the synchronous decision evaluates F(x + 2) with |x| <= n_units
+        if self._interaction != "exponential" and (
+                self._degree * np.log(n + 2) + np.log(n_pat) > 700):
             raise InputValueError(
                 f"{where}: `degree` {self._degree} with {n} units and {n_pat} patterns would "
-                "overflow float64 (n_patterns * n_units**degree > 1e304); lower the degree or "
-                "use interaction='exponential', which is computed in log space."
+                "overflow float64 (n_patterns * (n_units + 2)**degree > 1e304); lower the "
+                "degree or use interaction='exponential', which is computed in log space."
             )
 
     @property
@@ -443,7 +445,7 @@ class DenseBinaryMemory:
         Examples
         --------
         >>> DenseBinaryMemory([[1, 1]], degree=2).energy([[1, 1], [1, -1]]).tolist()
-        [-4.0, -0.0]
+        [-4.0, 0.0]
         """
         where = "DenseBinaryMemory.energy"
         s = chk.check_width(chk.check_binary(states, "states", self._states, where),

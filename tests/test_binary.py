@@ -158,6 +158,21 @@ def test_01_and_pm1_forms_give_identical_trajectories(mode, rng):
     assert np.allclose(b.energy[-1], -0.5 * np.einsum("bi,ij,bj->b", v, t_w, v) + v @ u)
 
 
+def test_01_thresholds_convert_exactly(rng):
+    # CHECKS.md entry 16: given 0/1 thresholds U, the +-1 network has theta = U/2 - T 1/4
+    # (T = 4 W); the two memories run identical trajectories and U is reported back.
+    s_pat = pm1(rng, (5, 30))
+    u = rng.standard_normal(30)
+    m_01 = BinaryMemory((s_pat + 1) // 2, states="01", thresholds=u)
+    w = BinaryMemory(s_pat).weights
+    m_pm = BinaryMemory(s_pat, thresholds=u / 2 - (4 * w).sum(axis=1) / 4)
+    assert np.allclose(m_01.thresholds, u)
+    probes = pm1(rng, (10, 30))
+    a = m_pm.retrieve(probes, seed=4, return_trajectory=True)
+    b = m_01.retrieve((probes + 1) // 2, seed=4, return_trajectory=True)
+    assert np.array_equal(2 * b.trajectory.astype(int) - 1, a.trajectory)
+
+
 def test_01_patterns_store_like_their_pm1_form(rng):
     # CHECKS.md entry 16: default 0/1 thresholds make the 0/1 memory the exact image of the
     # +-1 memory (U = T 1 / 2 when theta = 0).
