@@ -24,17 +24,17 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
-import platform
+import sys
 import time
 from pathlib import Path
 from statistics import median
 
 import numpy as np
 
-from densemem.binary import BinaryMemory
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from _common import RESULTS, machine_facts, peak_python_mib  # noqa: E402
 
-HERE = Path(__file__).resolve().parent
+from densemem.binary import BinaryMemory  # noqa: E402
 
 
 def _paired_times(fn_a, fn_b, repeats: int) -> tuple[float, float, float]:
@@ -116,6 +116,8 @@ def _case(mem: BinaryMemory, patterns, kind: str, n_probes: int, repeats: int, s
         "to_convergence_async_s": full_async,
         "sweeps_to_convergence_sync": conv["sync"],
         "sweeps_to_convergence_async": conv["async"],
+        "peak_mib_sync_sweep": peak_python_mib(sync_sweep),
+        "peak_mib_async_sweep": peak_python_mib(async_sweep),
         "fraction_units_flipped_sync": n_changed["sync"],
         "fraction_units_flipped_async": n_changed["async"],
         "bits_matching_nearest_before": _quality(probes, patterns),
@@ -134,13 +136,13 @@ def main(argv: list[str] | None = None) -> dict:
     ap.add_argument("--n-patterns", type=int, default=50)
     ap.add_argument("--repeats", type=int, default=5)
     ap.add_argument("--seed", type=int, default=0)
-    ap.add_argument("--out", type=Path, default=HERE / "results" / "binary_sweep.json")
+    ap.add_argument("--out", type=Path, default=RESULTS / "binary_sweep.json")
     args = ap.parse_args(argv)
 
     rng = np.random.default_rng(args.seed)
     patterns = rng.choice(np.array([-1, 1], dtype=np.int8), size=(args.n_patterns, args.n_units))
     mem = BinaryMemory(patterns, rule="hebbian")
-    load_before = os.getloadavg()[0]
+    machine = machine_facts()
     rows = [_case(mem, patterns, kind, args.n_probes, args.repeats, args.seed + i)
             for i, kind in enumerate(("random", "noisy"))]
 
@@ -164,15 +166,14 @@ def main(argv: list[str] | None = None) -> dict:
         "bench": "binary_sweep",
         "n_units": args.n_units, "n_probes": args.n_probes, "n_patterns": args.n_patterns,
         "repeats": args.repeats, "seed": args.seed,
-        "machine": {"python": platform.python_version(), "cpus": os.cpu_count(),
-                    "load_average_1min_before": load_before,
-                    "load_average_1min_after": os.getloadavg()[0]},
+        "machine": machine,
+        "load_average_after": list(machine_facts()["load_average"]),
         "rows": rows,
         "target": "async/sync sweep <= 2.0 on the noisy case",
         "ratio": rows[1]["sweep_ratio_async_over_sync"],
     }
     args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps(result, indent=2))
+    args.out.write_text(json.dumps(result, indent=2, default=float))
     print(f"async/sync sweep ratio (noisy probes, target <= 2.0): {result['ratio']:.2f}")
     return result
 
