@@ -28,10 +28,14 @@ import time
 from pathlib import Path
 from statistics import median
 
-import numpy as np
 from scipy import stats
 
-from densemem.capacity import CapacityCurve, capacity_curve, plot_capacity, robustness_curve
+from densemem.capacity import (
+    CapacityCurve,
+    capacity_curve,
+    plot_capacity,
+    robustness_curve,
+)
 
 HERE = Path(__file__).resolve().parent
 
@@ -101,7 +105,7 @@ def main(argv=None):
         val = ref(r.dim) if ref else None
         ratio = r.capacity / val if val else None
         rows.append({**r.row(), "asymptotic": val, "ratio": ratio})
-        print(f"{r.model:<18}{r.dim:>5}{r.capacity:>10}{str(r.capped):>8}"
+        print(f"{r.model:<18}{r.dim:>5}{r.capacity:>10}{r.capped!s:>8}"
               f"{(f'{val:.1f}' if val else '-'):>12}{(f'{ratio:.2f}' if ratio else '-'):>8}")
     for rep in robust:
         print(rep)

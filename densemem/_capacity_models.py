@@ -14,8 +14,9 @@ Streams: 0 patterns, 1 corruption positions / noise, 2 dynamics (async orders),
 from __future__ import annotations
 
 import numbers
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 

@@ -8,8 +8,8 @@ wiggle, and every evaluated count is kept so a caller can see it.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Callable
 
 import numpy as np
 from scipy import stats

@@ -7,8 +7,8 @@ ones are computed in log space (``log_capacity``) so they never overflow.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Callable
 
 import numpy as np
 from scipy import stats

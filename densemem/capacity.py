@@ -27,105 +27,33 @@ True
 
 from __future__ import annotations
 
-import sys
+from collections.abc import Sequence
 from pathlib import Path
-from typing import Any, Literal, Optional, Sequence
+from typing import Any, Literal
 
-import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
+from densemem import _capacity_checks as ck
 from densemem import _capacity_models as cm
 from densemem._capacity_plot import plot_curve
 from densemem._capacity_report import CapacityCurve, CapacityReport, RobustnessReport
-from densemem._capacity_search import CI_METHODS, DECISIONS, interval, search_capacity
+from densemem._capacity_search import DECISIONS, interval, search_capacity
 from densemem._validation import check_nonneg_float, check_positive_int
-from densemem.errors import InputTypeError, InputValueError, MissingExtraError
+from densemem.errors import InputValueError
 
 __all__ = [
-    "estimate_capacity", "capacity_curve", "plot_capacity", "robustness_curve",
-    "CapacityReport", "CapacityCurve", "RobustnessReport", "CapacitySpec",
+    "CapacityCurve",
+    "CapacityReport",
+    "CapacitySpec",
+    "RobustnessReport",
+    "capacity_curve",
+    "estimate_capacity",
+    "plot_capacity",
+    "robustness_curve",
 ]
 
 ROBUSTNESS_KINDS = cm.CORRUPTIONS + cm.DAMAGES
 DEFAULT_LEVELS = (0.0, 0.05, 0.1, 0.15, 0.2, 0.3, 0.4)
-
-
-# ----------------------------------------------------------------- validation
-def _choice(value: Any, name: str, options: Sequence[str], where: str) -> str:
-    if not isinstance(value, str) or value not in options:
-        opts = ", ".join(repr(o) for o in options)
-        raise InputValueError(f"{where}: `{name}` must be one of {opts}; got {value!r}.")
-    return value
-
-
-def _corruption(value: Any, where: str, name: str = "corruption") -> tuple[str, float] | None:
-    """None, ("flip"|"mask", fraction in [0, 1]), ("gauss", sigma >= 0), or "kind:level"."""
-    if value is None or value == "none":
-        return None
-    if isinstance(value, str):
-        kind, _, level = value.partition(":")
-        try:
-            value = (kind, float(level))
-        except ValueError:
-            value = (kind, level)
-    if not (isinstance(value, (tuple, list)) and len(value) == 2 and value[0] in cm.CORRUPTIONS):
-        raise InputValueError(
-            f"{where}: `{name}` must be None, ('flip', fraction), ('mask', fraction) or "
-            f"('gauss', sigma) (or a string like 'flip:0.1'); got {value!r}."
-        )
-    kind, level = value
-    level = check_nonneg_float(level, name=f"{name} level", where=where)
-    if kind != "gauss" and level > 1:
-        raise InputValueError(f"{where}: the {kind} fraction must be in [0, 1]; got {level!r}.")
-    return kind, level
-
-
-def _progress(progress: Any, total: int | None, desc: str, where: str) -> Any:
-    if progress is None:
-        progress = sys.stderr.isatty()
-    if not isinstance(progress, bool):
-        raise InputTypeError(f"{where}: `progress` must be True, False or None; got {progress!r}.")
-    if not progress:
-        return None
-    try:
-        from tqdm.auto import tqdm
-    except ImportError:
-        raise MissingExtraError(
-            f"{where}: progress bars need tqdm; install it with: pip install densemem[progress]"
-        ) from None
-    return tqdm(total=total, desc=desc, file=sys.stderr, leave=False)
-
-
-def _setup(where: str, model: Any, dim: Any, patterns: Any, corruption: Any, damage: Any,
-           success: Any, eps: Any, steps: Any, mode: Any, max_probes: Any, seed: Any,
-           ci: Any, confidence: Any) -> tuple[cm.Model, cm.Setup]:
-    m = cm.parse_model(model, where)
-    success = _choice(success, "success", cm.SUCCESS, where)
-    if m.kind == "custom":
-        source = cm.Source("custom", check_positive_int(dim, name="dim", where=where))
-    else:
-        source = cm.make_source(patterns, dim, m.binary, where)
-    if eps is None:
-        eps = 0.05 if success == "overlap" else (1e-3 if not m.binary else 0.0)
-    eps = check_nonneg_float(eps, name="eps", where=where)
-    default_steps = 50 if m.binary else 1
-    steps = default_steps if steps is None else check_positive_int(steps, name="steps", where=where)
-    if seed is None:
-        seed = int(np.random.SeedSequence().entropy % (2**63))
-    seed = check_positive_int(seed, name="seed", where=where, minimum=0)
-    _choice(ci, "ci", CI_METHODS, where)
-    confidence = check_nonneg_float(confidence, name="confidence", where=where, strict=True)
-    if confidence >= 1:
-        raise InputValueError(f"{where}: `confidence` must be in (0, 1); got {confidence!r}.")
-    setup = cm.Setup(
-        source=source, corruption=_corruption(corruption, where), damage=damage,
-        success=success, eps=eps, steps=steps, mode=_choice(mode, "mode", cm.MODES, where),
-        max_probes=check_positive_int(max_probes, name="max_probes", where=where), seed=seed)
-    return m, setup
-
-
-def _corruption_tag(c: tuple[str, float] | None) -> str:
-    return "none" if c is None else f"{c[0]}:{c[1]:g}"
 
 
 # ------------------------------------------------------------------ public API
@@ -214,7 +142,7 @@ def estimate_capacity(
     (True, (1, 2, 4))
     """
     where = "estimate_capacity"
-    m, setup = _setup(where, model, dim, patterns, corruption, None, success, eps, steps, mode,
+    m, setup = ck.setup(where, model, dim, patterns, corruption, None, success, eps, steps, mode,
                       max_probes, seed, ci, confidence)
     delta = check_nonneg_float(delta, name="delta", where=where, strict=True)
     if delta >= 1:
@@ -224,9 +152,9 @@ def estimate_capacity(
     max_n = check_positive_int(max_patterns, name="max_patterns", where=where)
     if setup.source.limit is not None:
         max_n = min(max_n, setup.source.limit)
-    _choice(decide, "decide", DECISIONS, where)
+    ck.choice(decide, "decide", DECISIONS, where)
     rel_tol = check_nonneg_float(rel_tol, name="rel_tol", where=where)
-    bar = _progress(progress, None, f"capacity {m.label} d={setup.source.dim}", where)
+    bar = ck.progress_bar(progress, None, f"capacity {m.label} d={setup.source.dim}", where)
     trials: list[int] = []
 
     def evaluate(k: int) -> tuple[int, int]:
@@ -252,7 +180,7 @@ def estimate_capacity(
         probes=tuple(tr.totals), trials=tuple(trials),
         rates=tuple(k / n if n else 0.0 for k, n in zip(tr.successes, tr.totals)),
         ci_low=tuple(c[0] for c in cis), ci_high=tuple(c[1] for c in cis),
-        patterns=setup.source.kind, corruption=_corruption_tag(setup.corruption),
+        patterns=setup.source.kind, corruption=ck.corruption_tag(setup.corruption),
         success=setup.success, eps=setup.eps, delta=delta, confidence=confidence, ci=ci,
         decide=decide, n_trials=n_trials, seed=setup.seed)
 
@@ -296,7 +224,7 @@ def capacity_curve(
         raise InputValueError(f"{where}: `dims` must be a non-empty list of integers; got {dims!r}.")
     if "progress" in options or "dim" in options or "model" in options:
         raise InputValueError(f"{where}: pass `model`/`dim` through `models`/`dims`.")
-    bar = _progress(progress, len(models) * len(dims), "capacity curve", where)
+    bar = ck.progress_bar(progress, len(models) * len(dims), "capacity curve", where)
     reports = []
     try:
         for model in models:
@@ -390,7 +318,7 @@ def robustness_curve(
     True
     """
     where = "robustness_curve"
-    kind = _choice(kind, "kind", ROBUSTNESS_KINDS, where)
+    kind = ck.choice(kind, "kind", ROBUSTNESS_KINDS, where)
     if kind in cm.CORRUPTIONS and corruption is not None:
         raise InputValueError(
             f"{where}: with kind={kind!r} the levels are the corruption; pass corruption=None "
@@ -413,12 +341,12 @@ def robustness_curve(
     n_trials = check_positive_int(n_trials, name="n_trials", where=where)
     min_probes = check_positive_int(min_probes, name="min_probes", where=where)
     if kind in cm.CORRUPTIONS:
-        lv = [_corruption((kind, x), where, name="levels")[1] for x in levels]  # type: ignore[index]
+        lv = [ck.check_corruption((kind, x), where, name="levels")[1] for x in levels]  # type: ignore[index]
     else:
         lv = [check_nonneg_float(x, name="levels", where=where) for x in levels]
         if max(lv) > 1:
             raise InputValueError(f"{where}: damage `levels` must be fractions in [0, 1]; got {max(lv)!r}.")
-    m, base = _setup(where, model, dim, patterns, corruption, None, success, eps, steps, mode,
+    m, base = ck.setup(where, model, dim, patterns, corruption, None, success, eps, steps, mode,
                      max_probes, seed, ci, confidence)
     if base.source.limit is not None and n_patterns > base.source.limit:
         raise InputValueError(
@@ -426,7 +354,7 @@ def robustness_curve(
             f"{base.source.limit} rows."
         )
     t = cm.trials_at(n_patterns, n_trials, min_probes, base.max_probes)
-    bar = _progress(progress, len(lv), f"robustness {m.label} {kind}", where)
+    bar = ck.progress_bar(progress, len(lv), f"robustness {m.label} {kind}", where)
     succ, tot = [], []
     try:
         for x in lv:
@@ -444,7 +372,7 @@ def robustness_curve(
         model=m.label, dim=base.source.dim, n_patterns=n_patterns, kind=kind, levels=tuple(lv),
         rates=tuple(k / n for k, n in zip(succ, tot)), ci_low=tuple(c[0] for c in cis),
         ci_high=tuple(c[1] for c in cis), successes=tuple(succ), probes=tuple(tot),
-        success=base.success, corruption=_corruption_tag(base.corruption),
+        success=base.success, corruption=ck.corruption_tag(base.corruption),
         confidence=confidence, ci=ci, n_trials=t, seed=base.seed)
 
 
@@ -476,25 +404,25 @@ class CapacitySpec(BaseModel):
                               min_length=1)
     dims: list[int] = Field(default_factory=lambda: [25, 50, 100, 200], min_length=1)
     patterns: Literal["pm1", "unit", "gaussian"] = "pm1"
-    patterns_file: Optional[str] = None  # an array file the caller loads and passes as patterns
-    corruption: Optional[str] = None  # "flip:0.1", "mask:0.25", "gauss:0.5"
+    patterns_file: str | None = None  # an array file the caller loads and passes as patterns
+    corruption: str | None = None  # "flip:0.1", "mask:0.25", "gauss:0.5"
     success: Literal["fixed_point", "overlap", "top1"] = "fixed_point"
-    eps: Optional[float] = Field(default=None, ge=0)
+    eps: float | None = Field(default=None, ge=0)
     delta: float = Field(default=0.05, gt=0, lt=1)
     n_trials: int = Field(default=5, ge=1)
     min_probes: int = Field(default=256, ge=1)
     max_probes: int = Field(default=256, ge=1)
     seed: int = Field(default=0, ge=0)
     max_patterns: int = Field(default=4096, ge=1)
-    steps: Optional[int] = Field(default=None, ge=1)
+    steps: int | None = Field(default=None, ge=1)
     mode: Literal["async", "sync"] = "async"
     ci: Literal["wilson", "clopper_pearson"] = "wilson"
     confidence: float = Field(default=0.95, gt=0, lt=1)
     decide: Literal["estimate", "lower"] = "estimate"
     rel_tol: float = Field(default=0.0, ge=0)
-    csv_path: Optional[str] = None
-    json_path: Optional[str] = None
-    plot_path: Optional[str] = None
+    csv_path: str | None = None
+    json_path: str | None = None
+    plot_path: str | None = None
 
     @field_validator("models")
     @classmethod
@@ -505,13 +433,13 @@ class CapacitySpec(BaseModel):
 
     @field_validator("corruption")
     @classmethod
-    def _corruption_ok(cls, v: Optional[str]) -> Optional[str]:
-        _corruption(v, "CapacitySpec")
+    def _corruption_ok(cls, v: str | None) -> str | None:
+        ck.check_corruption(v, "CapacitySpec")
         return v
 
     def curve_options(self) -> dict[str, Any]:
         """Keyword arguments for :func:`capacity_curve` (without models, dims, paths)."""
         skip = {"models", "dims", "patterns_file", "csv_path", "json_path", "plot_path"}
         out = {k: v for k, v in self.model_dump().items() if k not in skip}
-        out["corruption"] = _corruption(self.corruption, "CapacitySpec")
+        out["corruption"] = ck.check_corruption(self.corruption, "CapacitySpec")
         return out

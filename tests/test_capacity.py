@@ -15,6 +15,7 @@ from scipy import stats
 
 from densemem import InputTypeError, InputValueError, MissingExtraError
 from densemem._capacity_models import Source
+from densemem._capacity_search import clopper_pearson_interval, wilson_interval
 from densemem._capacity_theory import (
     curves_for,
     hebbian_fixed_point_capacity,
@@ -30,7 +31,6 @@ from densemem.capacity import (
     plot_capacity,
     robustness_curve,
 )
-from densemem._capacity_search import clopper_pearson_interval, wilson_interval
 
 DIMS = (8, 12, 16, 20)  # multiples of 4, so a 0.25 mask erases a whole number of coordinates
 
