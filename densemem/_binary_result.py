@@ -63,7 +63,15 @@ class BinaryRetrieval:
         )
 
     def to_dict(self) -> dict[str, Any]:
-        """Plain Python values (lists, ints), ready for ``json.dumps``."""
+        """Plain Python values (lists, ints), ready for ``json.dumps``.
+
+        Examples
+        --------
+        >>> from densemem.binary import BinaryMemory
+        >>> r = BinaryMemory([[1, -1, 1]]).retrieve([[1, 1, 1]], mode="sync")
+        >>> r.to_dict()["states"], r.to_dict()["converged"]
+        ([[1, -1, 1]], [True])
+        """
         out: dict[str, Any] = {
             "mode": self.mode,
             "sweeps": self.sweeps,
