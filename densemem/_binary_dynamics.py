@@ -142,7 +142,7 @@ def run(
     Returned keys: states, energy (n_sweeps + 1, n_probes), sweeps_per_probe, converged,
     two_cycle, trajectory (or None).
     """
-    n_probes = s0.shape[0]
+    n_probes, n_units = s0.shape
     free_idx = np.flatnonzero(free)
     s = s0.astype(np.float64, copy=True)
     aux = engine.start(s)
@@ -162,8 +162,10 @@ def run(
             fixed = ~engine.async_sweep(s, aux, order)
             two = np.zeros_like(fixed)
         else:
-            new = s.copy()
-            new[:, free_idx] = engine.decide(s, aux)[:, free_idx]
+            new = engine.decide(s, aux)
+            if free_idx.size < n_units:  # damaged units hold their state
+                held = ~free
+                new[:, held] = s[:, held]
             fixed = (new == s).all(axis=1)
             two = ~fixed & ((new == prev).all(axis=1) if prev is not None else False)
             prev, s = s, new

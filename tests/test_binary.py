@@ -509,8 +509,9 @@ def test_graceful_degradation_under_weight_damage():
     assert np.array_equal(mem.weights, BinaryMemory(x).weights)  # original untouched
 
 
+@pytest.mark.parametrize("mode", ["async", "sync"])
 @pytest.mark.parametrize("unit_mode", ["delete", "clamp"])
-def test_retrieval_with_damaged_units(unit_mode):
+def test_retrieval_with_damaged_units(unit_mode, mode):
     # common practice: a network with 25% of its units removed (or stuck) still restores the
     # surviving units; damaged units keep the probe's value
     rng = np.random.default_rng(4)
@@ -520,7 +521,7 @@ def test_retrieval_with_damaged_units(unit_mode):
     dm = BinaryMemory(x).damaged(units=0.25, unit_mode=unit_mode, seed=1)
     dead = dm.damaged_units
     assert dead.size == 100
-    r = dm.retrieve(probes, seed=0)
+    r = dm.retrieve(probes, mode=mode, seed=0)
     alive = np.setdiff1d(np.arange(400), dead)
     assert (r.states[:, alive] != target[:, alive]).mean() < 0.0163
     assert np.array_equal(r.states[:, dead], probes[:, dead])
