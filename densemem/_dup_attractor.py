@@ -22,14 +22,15 @@ narrow band around the threshold; the graph method is the sharp one.
 
 from __future__ import annotations
 
-from typing import Any, Callable
+from collections.abc import Callable
+from typing import Any
 
 import faiss
 import numpy as np
 
-from ._dup_groups import adjacency, components, pack_labels, Packed
+from ._dup_groups import Packed, adjacency, components, pack_labels
 
-__all__ = ["beta_for_threshold", "merge_radius", "attractor_groups"]
+__all__ = ["attractor_groups", "beta_for_threshold", "merge_radius"]
 
 MERGE_FRACTION = 0.1
 """States closer than this fraction of the threshold distance sqrt(2(1 - t)) coincide."""
@@ -64,7 +65,7 @@ def attractor_groups(
     """Retrieve from every row of ``xn`` (unit rows) and group coinciding final states."""
     from .dense import DenseMemory
 
-    n, d = xn.shape
+    n = xn.shape[0]
     mem = DenseMemory.from_array(xn, normalize=False, beta=beta)
     states = np.empty_like(xn)
     unconverged = 0

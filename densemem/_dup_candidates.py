@@ -9,8 +9,10 @@ from __future__ import annotations
 
 import math
 import sys
+import time
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
-from typing import Any, Callable, Iterator
+from typing import Any
 
 import faiss
 import numpy as np
@@ -20,11 +22,11 @@ __all__ = [
     "SLACK",
     "PairSet",
     "choose_source",
-    "exact_pairs",
-    "ivf_pairs",
-    "hnsw_pairs",
-    "sample_recall",
     "chunk_rows_for",
+    "exact_pairs",
+    "hnsw_pairs",
+    "ivf_pairs",
+    "sample_recall",
 ]
 
 SLACK = 1e-6
@@ -66,6 +68,22 @@ def choose_source(n: int, d: int, requested: str) -> tuple[str, str]:
     if work <= EXACT_MAX_WORK:
         return "exact", f"n*n*d = {work:.3g} <= {EXACT_MAX_WORK:.3g}: brute force is affordable"
     return "ivf", f"n*n*d = {work:.3g} > {EXACT_MAX_WORK:.3g}: inverted-file index"
+
+
+class _Clock:
+    """Wall time of consecutive phases."""
+
+    def __init__(self) -> None:
+        self.laps: dict[str, float] = {}
+        self.cpu: dict[str, float] = {}
+        self._t = time.perf_counter()
+        self._c = time.process_time()
+
+    def lap(self, name: str) -> None:
+        now, cpu = time.perf_counter(), time.process_time()
+        self.laps[name] = round(now - self._t, 3)
+        self.cpu[name] = round(cpu - self._c, 3)
+        self._t, self._c = now, cpu
 
 
 def _chunks(n: int, size: int) -> Iterator[tuple[int, int]]:
@@ -143,11 +161,16 @@ def exact_pairs(
     return PairSet(lo, hi, sims, "exact", {"index": "IndexFlatIP", "search": "range_search"})
 
 
+TRAIN_PER_LIST = 16
+"""k-means sample: 16 rows per list, 8 iterations. Duplicates fall in the same or a
+neighbouring cell whatever the centroids' finish; nprobe covers the boundaries."""
+
+
 def default_nlist(n: int) -> int:
     """About 4 * sqrt(n) lists, rounded to a power of two, at most n // 32."""
     target = 4.0 * math.sqrt(n)
-    nlist = 2 ** int(round(math.log2(max(target, 1.0))))
-    return int(max(1, min(nlist, n // 32 if n >= 64 else 1)))
+    nlist = 2 ** round(math.log2(max(target, 1.0)))
+    return max(1, min(nlist, n // 32 if n >= 64 else 1))
 
 
 def _train_ivf(xn: np.ndarray, nlist: int, rng: np.random.Generator) -> faiss.IndexIVFFlat:
@@ -155,9 +178,9 @@ def _train_ivf(xn: np.ndarray, nlist: int, rng: np.random.Generator) -> faiss.In
     quantizer = faiss.IndexFlatIP(d)
     index = faiss.IndexIVFFlat(quantizer, d, nlist, faiss.METRIC_INNER_PRODUCT)
     index.cp.spherical = True  # unit centroids: inner-product assignment is cosine
-    index.cp.niter = 10
+    index.cp.niter = 8
     index.cp.min_points_per_centroid = 1  # we choose the sample size; silence faiss' warning
-    n_train = min(n, 40 * nlist)
+    n_train = min(n, TRAIN_PER_LIST * nlist)
     rows = np.sort(rng.choice(n, size=n_train, replace=False)) if n_train < n else slice(None)
     index.train(np.ascontiguousarray(xn[rows]))
     # faiss' python wrapper keeps a reference to `quantizer` inside `index`
@@ -211,35 +234,44 @@ def ivf_pairs(
     Coarse assignment is done once: the top-``nprobe`` lists of every row serve
     both for adding (the first list) and for the range search (all of them).
     """
-    n, d = xn.shape
+    n = xn.shape[0]
+    clock = _Clock()
     nlist = default_nlist(n) if nlist is None else min(nlist, n)
     index = _train_ivf(xn, nlist, rng)
+    clock.lap("train")
     params: dict[str, Any] = {"index": "IndexIVFFlat", "search": "range_search", "nlist": nlist}
     exact = None
     if sample is not None and sample.size:
         exact = exact_sample_pairs(xn, sample, threshold)
-    # add with top-1 assignment
+        clock.lap("exact_sample")
     bar = _bar(progress, "dedup: assign", n)
-    d1, i1 = _assign(index, xn, 1, chunk, bar)
+    dq, iq = _assign(index, xn, nprobe, chunk, bar)  # once: top-1 for adding, all for searching
     _close(bar)
     for a, b in _chunks(n, chunk):
-        add_preassigned(index, xn[a:b], i1[a:b, 0].copy())
-    del d1, i1
+        add_preassigned(index, xn[a:b], iq[a:b, 0].copy())
+    clock.lap("assign_add")
     if exact is not None and tune:
-        nprobe, history = _tune_nprobe(index, xn, sample, exact, threshold, nprobe, min(nlist, 256), target_recall)
+        tuned, history = _tune_nprobe(index, xn, sample, exact, threshold, nprobe, min(nlist, 256), target_recall)
         params["nprobe_tuning"] = history
+        clock.lap("tune")
+        if tuned != nprobe:
+            nprobe = tuned
+            dq, iq = _assign(index, xn, nprobe, chunk, None)
     params["nprobe"] = nprobe
     radius = _radius(threshold)
     parts = []
     bar = _bar(progress, "dedup: ivf search", n)
     for a, b in _chunks(n, chunk):
-        x = xn[a:b]
-        dq, iq = index.quantizer.search(x, nprobe)
-        parts.append(_ivf_search(index, x, a, radius, iq, dq))
+        parts.append(_ivf_search(index, xn[a:b], a, radius, iq[a:b], dq[a:b]))
         _tick(bar, b - a)
     _close(bar)
+    del dq, iq
+    clock.lap("search")
     lo, hi = _unique_pairs(*_collect(parts), n)
     lo, hi, sims = rescore(xn, lo, hi, threshold)
+    clock.lap("rescore")
+    params["phase_seconds"] = clock.laps
+    params["phase_cpu_seconds"] = clock.cpu
     pairs = PairSet(lo, hi, sims, "ivf", params)
     if exact is not None:
         params["sample_rows"] = int(sample.size)

@@ -12,7 +12,7 @@ import numpy as np
 from ._validation import as_float_matrix, check_beta, check_ids, check_positive_int
 from .errors import DenseMemWarning, InputTypeError, InputValueError
 
-__all__ = ["Options", "check_options", "input_matrix", "check_score", "normalised_copy"]
+__all__ = ["Options", "check_options", "check_score", "input_matrix", "normalised_copy"]
 
 WHERE = "find_duplicates"
 METHODS = ("graph", "attractor")
@@ -64,7 +64,7 @@ def _chain_mode(value: Any) -> str:
     if value is False or value is None:
         return "off"
     if value is True:
-        return "star"
+        return "complete"
     return _choice(value, "no_chaining", CHAIN_MODES)
 
 

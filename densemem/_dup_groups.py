@@ -13,7 +13,7 @@ import numpy as np
 from scipy.sparse import coo_matrix, csr_matrix
 from scipy.sparse.csgraph import connected_components
 
-__all__ = ["Packed", "pack_labels", "adjacency", "split_groups", "summarise"]
+__all__ = ["Packed", "adjacency", "pack_labels", "split_groups", "summarise"]
 
 _SMALL = 256  # groups up to this size get their full Gram matrix in one batched product
 _BATCH_MIB = 64.0

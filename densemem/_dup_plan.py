@@ -16,7 +16,7 @@ import numpy as np
 from .errors import InputTypeError, InputValueError
 from .results import _plain
 
-__all__ = ["DuplicateGroup", "DuplicatePlan", "PLAN_FILES"]
+__all__ = ["PLAN_FILES", "DuplicateGroup", "DuplicatePlan"]
 
 PLAN_FILES = {
     "groups_csv": "groups.csv",
@@ -81,7 +81,7 @@ class DuplicatePlan:
     representative_rule : str
         "medoid", "first" or "quality".
     n_items, n_pairs : int
-        Input rows; similarity edges found.
+        Input rows; similarity edges found (-1 for the attractor method).
     group_offsets : ndarray of int64, shape (n_groups + 1,)
     member_ids, member_rows : ndarray, shape (n_members,)
     similarity_to_representative : ndarray of float64, shape (n_members,)
@@ -96,6 +96,10 @@ class DuplicatePlan:
         Rows with zero norm: no cosine exists, so they were left out of the search.
     seconds : float
         Wall time of the search.
+    pair_ids : ndarray of shape (n_pairs, 2) or None
+        With ``return_pairs=True``: the ids at both ends of every edge.
+    pair_similarity : ndarray of float64, shape (n_pairs,), or None
+        Their cosine similarities.
     """
 
     threshold: float
@@ -118,6 +122,8 @@ class DuplicatePlan:
     drop_ids: np.ndarray
     excluded_zero_ids: np.ndarray
     seconds: float
+    pair_ids: np.ndarray | None = None
+    pair_similarity: np.ndarray | None = None
 
     # ----------------------------------------------------------- access
     @property

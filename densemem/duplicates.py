@@ -10,6 +10,7 @@ read only.
 
 from __future__ import annotations
 
+import dataclasses
 import sys
 import time
 from typing import Any, Literal
@@ -20,12 +21,18 @@ from pydantic import BaseModel, ConfigDict, Field
 from . import _dup_candidates as C
 from . import _dup_groups as G
 from ._dup_attractor import attractor_groups, beta_for_threshold
-from ._dup_checks import Options, check_options, check_score, input_matrix, normalised_copy
+from ._dup_checks import (
+    Options,
+    check_options,
+    check_score,
+    input_matrix,
+    normalised_copy,
+)
 from ._dup_plan import DuplicateGroup, DuplicatePlan
 from ._validation import as_rng
 from .errors import InputValueError, MissingExtraError
 
-__all__ = ["find_duplicates", "DuplicatePlan", "DuplicateGroup", "DedupSpec"]
+__all__ = ["DedupSpec", "DuplicateGroup", "DuplicatePlan", "find_duplicates"]
 
 
 def find_duplicates(
@@ -39,13 +46,14 @@ def find_duplicates(
     representative: Any = "medoid",
     ids: Any = None,
     nlist: int | None = None,
-    nprobe: int = 8,
+    nprobe: int = 4,
     check_sample: int = 1000,
     target_recall: float = 0.995,
     beta: float | None = None,
     max_steps: int = 300,
     retrieval: Literal["exact", "auto", "certified"] = "exact",
     work_mib: float = 64.0,
+    return_pairs: bool = False,
     progress: bool | None = None,
     seed: Any = 0,
 ) -> DuplicatePlan:
@@ -67,16 +75,19 @@ def find_duplicates(
     candidates : {"auto", "exact", "ivf", "hnsw"}, default "auto"
         Graph method: where candidate pairs come from. "exact" is a faiss flat
         range search (every pair); "ivf" a range search in a faiss inverted
-        file (``nlist`` lists, ``nprobe`` probed, raised until the pair recall
-        on ``check_sample`` rows reaches ``target_recall``); "hnsw" the ``k``
+        file (``nlist`` lists, ``nprobe`` probed, doubled until the pair recall
+        on ``check_sample`` rows reaches ``target_recall``; a pair counts when
+        found from either end); "hnsw" the ``k``
         approximate nearest neighbours of each item. "auto" picks exact while
         ``n * n * d <= 2**38``, IVF above; the plan reports the choice.
     k : int, default 32
         Neighbours per item for "hnsw".
     no_chaining : bool or {"off", "star", "complete"}, default False
-        Single linkage lets A~B~C group A with C below the threshold. "star"
-        (or True) splits components so each member is within the threshold of
-        its representative; "complete" so every pair in a group is.
+        Single linkage lets A~B~C group A with C below the threshold.
+        "complete" (or True) splits components greedily so every pair in a
+        group meets the threshold; "star" only so every member is within the
+        threshold of its representative (a hub may still join two families
+        that are each close to it).
     representative : "medoid", "first" or array of shape (n_items,)
         Which member is kept: the one with the largest summed similarity to
         the others, the first in input order, or the highest quality score
@@ -92,6 +103,9 @@ def find_duplicates(
         updates, and the DenseMemory.retrieve method.
     work_mib : float, default 64
         Memory budget of one query chunk.
+    return_pairs : bool, default False
+        Also return every similarity edge (``pair_ids``, ``pair_similarity``)
+        to explain the groups.
     progress : bool, optional
         Progress bars on stderr (needs tqdm). Default: when stderr is a terminal.
     seed : int or Generator, default 0
@@ -150,11 +164,12 @@ def find_duplicates(
     xn, valid, zero = normalised_copy(x, all_ids, chunk)
     vscore = None if score is None else score[valid]
     if opt.method == "graph":
-        groups, reps, source, params, n_pairs = _graph(xn, opt, rule, vscore, rng, chunk, bar)
+        groups, reps, source, params, pairs = _graph(xn, opt, rule, vscore, rng, chunk, bar)
     else:
-        groups, reps, source, params, n_pairs = _attractor(xn, opt, chunk, bar)
+        groups, reps, source, params, pairs = _attractor(xn, opt, chunk, bar)
     stats = G.summarise(xn, groups, rule, vscore, reps)
-    return _plan(x.shape[0], all_ids, valid, zero, groups, stats, opt, rule, source, params, n_pairs, t0)
+    plan = _plan(x.shape[0], all_ids, valid, zero, groups, stats, opt, rule, source, params, pairs, t0)
+    return plan if return_pairs or pairs is None else _without_pairs(plan)
 
 
 def _graph(xn: np.ndarray, opt: Options, rule: str, score: np.ndarray | None, rng: np.random.Generator,
@@ -183,24 +198,24 @@ def _graph(xn: np.ndarray, opt: Options, rule: str, score: np.ndarray | None, rn
     reps = None
     if opt.no_chaining != "off":
         groups, reps = G.split_groups(groups, adj, opt.no_chaining, rule, score)
-    return groups, reps, source, params, int(pairs.lo.shape[0])
+    return groups, reps, source, params, pairs
 
 
 def _attractor(xn: np.ndarray, opt: Options, chunk: int, bar: Any) -> tuple:
     beta = beta_for_threshold(opt.threshold) if opt.beta is None else opt.beta
     if xn.shape[0] < 2:
-        return G.pack_labels(np.arange(xn.shape[0])), None, "attractor", {"beta": beta}, 0
+        return G.pack_labels(np.arange(xn.shape[0])), None, "attractor", {"beta": beta}, None
     groups, info = attractor_groups(
         xn, opt.threshold, beta=beta, max_steps=opt.max_steps, tol=1e-5, retrieval=opt.retrieval,
         chunk=min(chunk, 4096), progress=bar,
     )
     info["beta_rule"] = "2 / (1 - threshold)" if opt.beta is None else "given"
-    return groups, None, "attractor", info, int(info["state_pairs"])
+    return groups, None, "attractor", info, None
 
 
 def _plan(n: int, all_ids: np.ndarray, valid: np.ndarray, zero: np.ndarray, groups: G.Packed,
           stats: dict[str, np.ndarray], opt: Options, rule: str, source: str, params: dict[str, Any],
-          n_pairs: int, t0: float) -> DuplicatePlan:
+          pairs: C.PairSet | None, t0: float) -> DuplicatePlan:
     member_rows = valid[groups.members]
     rep_rows = valid[stats["reps"]]
     drop = np.zeros(n, dtype=bool)
@@ -208,13 +223,20 @@ def _plan(n: int, all_ids: np.ndarray, valid: np.ndarray, zero: np.ndarray, grou
     drop[rep_rows] = False
     return DuplicatePlan(
         threshold=opt.threshold, method=opt.method, candidates=source, candidate_params=params,
-        no_chaining=opt.no_chaining, representative_rule=rule, n_items=n, n_pairs=n_pairs,
+        no_chaining=opt.no_chaining, representative_rule=rule, n_items=n,
+        n_pairs=-1 if pairs is None else int(pairs.lo.shape[0]),
         group_offsets=groups.offsets, member_ids=all_ids[member_rows], member_rows=member_rows,
         similarity_to_representative=stats["to_rep"], representative_ids=all_ids[rep_rows],
         representative_rows=rep_rows, min_similarity=stats["min"], mean_similarity=stats["mean"],
         keep_ids=all_ids[~drop], drop_ids=all_ids[drop], excluded_zero_ids=all_ids[zero],
         seconds=time.perf_counter() - t0,
+        pair_ids=None if pairs is None else np.stack([all_ids[valid[pairs.lo]], all_ids[valid[pairs.hi]]], axis=1),
+        pair_similarity=None if pairs is None else pairs.sim,
     )
+
+
+def _without_pairs(plan: DuplicatePlan) -> DuplicatePlan:
+    return dataclasses.replace(plan, pair_ids=None, pair_similarity=None)
 
 
 def _progress_factory(show: bool | None) -> Any:
@@ -256,7 +278,7 @@ class DedupSpec(BaseModel):
     representative: Literal["medoid", "first", "quality"] = "medoid"
     quality_column: str | None = None
     nlist: int | None = Field(None, ge=1)
-    nprobe: int = Field(8, ge=1)
+    nprobe: int = Field(4, ge=1)
     check_sample: int = Field(1000, ge=0)
     target_recall: float = Field(0.995, gt=0.0, le=1.0)
     beta: float | None = Field(None, gt=0.0, allow_inf_nan=False)
