@@ -63,6 +63,8 @@ def _select_top(vals: np.ndarray, idx: np.ndarray, k: int) -> tuple[np.ndarray, 
     if width > k:
         sel = np.argpartition(vals, width - k, axis=1)[:, width - k :]
         return np.take_along_axis(vals, sel, 1), np.take_along_axis(idx, sel, 1)
+    if width == k:
+        return vals.copy(), idx.copy()  # callers overwrite score tiles in place
     if width < k:
         pad = k - width
         vals = np.concatenate([vals, np.full((vals.shape[0], pad), _NEG, vals.dtype)], axis=1)
@@ -137,9 +139,17 @@ def block(
         top_i = np.empty((z.shape[0], 0), np.int64)
         m = z.max(axis=1).astype(np.float64)
     z -= m[:, None].astype(np.float32)
-    np.exp(z, out=z)
-    l = z.sum(axis=1).astype(np.float64)  # float32 pairwise sum: ~1e-7 relative
-    acc = z @ rows if need_acc else None
+    if need_acc:
+        np.exp(z, out=z)
+        l = z.sum(axis=1).astype(np.float64)  # float32 pairwise sum: ~1e-7 relative
+        acc = z @ rows
+    else:
+        # Energy pass: l = n + sum expm1(z - m). When every z is close to m
+        # (small beta * M^2) the exp terms round to 1 in float32 and lse - ln N,
+        # which is all the energy depends on, would be lost; expm1 keeps it.
+        np.expm1(z, out=z)
+        l = z.shape[1] + z.sum(axis=1).astype(np.float64)
+        acc = None
     return Partial(m=m, l=l, acc=acc, top_z=top_z, top_i=top_i)
 
 
@@ -163,7 +173,9 @@ def gathered(
     k : int
         Size of the top list kept.
     """
-    z = np.asarray(z, dtype=np.float64)
+    # Round scores to float32 first (as the tiled path does) so the reported
+    # top scores and the reference max agree exactly: weights exp(top_z - m) <= 1.
+    z = np.asarray(z, dtype=np.float32).astype(np.float64)
     m = z.max(axis=1)
     safe_m = np.where(np.isfinite(m), m, 0.0)
     w = np.exp(z - safe_m[:, None])

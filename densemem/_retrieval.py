@@ -22,6 +22,7 @@ if TYPE_CHECKING:
     from .dense import DenseMemory
 
 AUTO_K_START = 16  # auto: first candidate count
+AUTO_SMALL_N = 2048  # auto: below this many stored rows, exact is cheaper than any search
 AUTO_GIVE_UP = 1e4  # auto: a first bound above tol_mass * this goes exact without growing
 
 
@@ -36,6 +37,8 @@ def reduce(
 
     info: dict[str, Any] = {}
     cert = opts.get("certified")
+    if method == "auto" and len(mem) < AUTO_SMALL_N:
+        method = "exact"  # a search's fixed cost exceeds two small products
     if method == "auto":
         cert = dataclasses.replace(opts["certified"], give_up=AUTO_GIVE_UP, k_start=max(k, AUTO_K_START))
         can = bound_can_hold(beta, np.linalg.norm(states, axis=1), mem.max_norm, len(mem), k, cert.tol_mass)
@@ -174,4 +177,5 @@ def _shape_result(was_1d: bool, **fields: Any) -> RetrievalResult:
                 fields[key] = val[0]
         if fields.get("energy") is not None:
             fields["energy"] = float(fields["energy"])
+        fields["converged"] = bool(fields["converged"])
     return RetrievalResult(**fields)

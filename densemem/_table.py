@@ -98,7 +98,7 @@ class PatternTable:
             width = max(self._ids.dtype.itemsize, new_ids.dtype.itemsize) // 4
             ids = new_ids.astype(f"<U{width}")
             self._ids = self._ids.astype(f"<U{width}")
-        self._x = np.concatenate([self._x, x]) if start else np.ascontiguousarray(x)
+        self._x = np.concatenate([self._x, x]) if start else np.array(x, dtype=np.float32, order="C")
         self._ids = np.concatenate([self._ids, ids]) if start else ids.copy()
         lookup = self._lookup()
         for i, v in enumerate(ids.tolist()):

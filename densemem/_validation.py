@@ -63,22 +63,23 @@ def as_float_matrix(x: Any, *, name: str, where: str, allow_1d: bool = False) ->
     if arr.ndim != 2:
         expect = "1-D or 2-D" if allow_1d else "2-D (n_rows, n_features)"
         raise InputValueError(f"{where}: `{name}` must be {expect}; got {arr.ndim}-D of shape {arr.shape}.")
-    out = np.ascontiguousarray(arr, dtype=np.float32)
-    if arr.dtype.kind == "f" and out.size:
-        finite = np.isfinite(out)
+    if arr.dtype.kind == "f" and arr.size:
+        finite = np.isfinite(arr)
         if not finite.all():
             bad_row = int(np.flatnonzero(~finite.all(axis=1))[0])
-            what = "NaN" if np.isnan(out[bad_row]).any() else "infinity"
+            what = "NaN" if np.isnan(arr[bad_row]).any() else "infinity"
             raise InputValueError(
                 f"{where}: `{name}` contains {what} at row {bad_row}; clean or drop it first."
             )
         if arr.dtype.itemsize > 4:
-            big = np.abs(np.asarray(arr, dtype=np.float64)) > np.finfo(np.float32).max
+            big = np.abs(arr) > np.finfo(np.float32).max
             if big.any():
                 bad_row = int(np.flatnonzero(big.any(axis=1))[0])
                 raise InputValueError(
-                    f"{where}: `{name}` holds a value at row {bad_row} too large for float32."
+                    f"{where}: `{name}` holds a value at row {bad_row} too large for float32 "
+                    f"(largest is {float(np.finfo(np.float32).max):.3g})."
                 )
+    out = np.ascontiguousarray(arr, dtype=np.float32)
     return out, was_1d
 
 
@@ -101,7 +102,7 @@ def check_queries(x: Any, *, where: str, dim: int, name: str = "queries") -> tup
     arr, was_1d = as_float_matrix(x, name=name, where=where, allow_1d=True)
     if arr.shape[1] != dim:
         raise InputValueError(
-            f"{where}: {name} have {arr.shape[1]} features but the memory stores "
+            f"{where}: `{name}` have {arr.shape[1]} features but the memory stores "
             f"{dim}-dimensional patterns."
         )
     if arr.shape[0] == 0:
@@ -115,7 +116,7 @@ def _is_real_number(x: Any) -> bool:
 
 def check_beta(beta: Any, *, where: str, name: str = "beta") -> float:
     """Return ``beta`` as a finite float > 0."""
-    if isinstance(beta, np.ndarray) and beta.ndim == 0:
+    if isinstance(beta, (np.ndarray, np.generic)) and np.ndim(beta) == 0:
         beta = beta.item()
     if not _is_real_number(beta):
         raise InputTypeError(f"{where}: `{name}` must be a finite number > 0; got {_describe(beta)}.")
@@ -138,6 +139,8 @@ def check_positive_int(x: Any, *, name: str, where: str, minimum: int = 1) -> in
 
 def check_nonneg_float(x: Any, *, name: str, where: str, strict: bool = False) -> float:
     """Return ``x`` as a finite float >= 0 (> 0 when ``strict``)."""
+    if isinstance(x, np.generic):
+        x = x.item()
     if not _is_real_number(x):
         raise InputTypeError(f"{where}: `{name}` must be a finite number; got {_describe(x)}.")
     v = float(x)
@@ -162,7 +165,14 @@ def check_ids(ids: Any, *, n: int, where: str, name: str = "ids") -> np.ndarray:
     """Return ids as a 1-D int64 or fixed-width unicode array of length ``n``, no repeats."""
     if isinstance(ids, (str, bytes, int, np.integer)):
         ids = [ids]
-    arr = np.asarray(list(ids) if not isinstance(ids, np.ndarray) else ids)
+    if not isinstance(ids, np.ndarray):
+        ids = list(ids)
+        kinds = {"str" if isinstance(v, str) else "int" if isinstance(v, (int, np.integer)) and not isinstance(v, bool) else type(v).__name__ for v in ids}
+        if len(kinds) > 1:
+            raise InputTypeError(
+                f"{where}: `{name}` must be all integers or all strings; got a mix of {', '.join(sorted(kinds))}."
+            )
+    arr = np.asarray(ids)
     if arr.ndim != 1:
         raise InputValueError(f"{where}: `{name}` must be 1-D; got shape {arr.shape}.")
     if arr.size == 0 and n == 0:
@@ -181,7 +191,7 @@ def check_ids(ids: Any, *, n: int, where: str, name: str = "ids") -> np.ndarray:
         raise InputValueError(f"{where}: `{name}` has {arr.shape[0]} entries for {n} patterns.")
     uniq, counts = np.unique(arr, return_counts=True)
     if uniq.size != arr.size:
-        dup = uniq[counts > 1][0]
+        dup = uniq[counts > 1][0].item()
         raise InputValueError(f"{where}: `{name}` repeats the id {dup!r}; ids must be unique.")
     return arr
 

@@ -117,13 +117,16 @@ class DenseMemory:
         >>> len(densemem.DenseMemory.from_array(np.ones((4, 2)), ids=list("abcd")))
         4
         """
-        arr = np.asarray(patterns) if not isinstance(patterns, np.ndarray) else patterns
-        if arr.ndim != 2:
-            from ._validation import as_float_matrix
+        from ._validation import as_float_matrix
 
-            as_float_matrix(patterns, name="patterns", where="DenseMemory.from_array")
+        where = "DenseMemory.from_array"
+        arr, _ = as_float_matrix(patterns, name="patterns", where=where)
+        if arr.shape[1] == 0:
+            raise InputValueError(f"{where}: `patterns` must have at least one column; got shape {arr.shape}.")
+        if arr is patterns:  # the table keeps its own copy; never alias the caller's buffer
+            arr = arr.copy()
         mem = cls(int(arr.shape[1]), normalize=normalize, beta=beta, **options)
-        mem._add(patterns, ids, where="DenseMemory.from_array")
+        mem._add(arr, ids, where=where)
         return mem
 
     # ------------------------------------------------------------ properties
@@ -233,19 +236,47 @@ class DenseMemory:
         return removed
 
     def positions(self, ids: Any) -> np.ndarray:
-        """Row numbers in :attr:`patterns` of the given ids."""
+        """Row numbers in :attr:`patterns` of the given ids.
+
+        Examples
+        --------
+        >>> import numpy as np, densemem
+        >>> densemem.DenseMemory.from_array(np.eye(3), ids=["a", "b", "c"]).positions(["c", "a"]).tolist()
+        [2, 0]
+        """
         return self._table.positions(ids, where="DenseMemory.positions")
 
     # ------------------------------------------------------------------ disk
     def save(self, path: Any, *, overwrite: bool = True) -> None:
-        """Write the memory to a store folder (atomic; see :mod:`densemem.storage`)."""
+        """Write the memory to a store folder (atomic; see :mod:`densemem.storage`).
+
+        Examples
+        --------
+        >>> import numpy as np, densemem, tempfile, os
+        >>> folder = os.path.join(tempfile.mkdtemp(), "store")
+        >>> densemem.DenseMemory.from_array(np.eye(3)).save(folder)
+        >>> len(densemem.DenseMemory.load(folder))
+        3
+        """
         from .storage import save_memory
 
         save_memory(self, path, overwrite=overwrite)
 
     @classmethod
     def load(cls, path: Any, *, mmap: bool = False, verify: bool = True) -> "DenseMemory":
-        """Read a store folder written by :meth:`save` (never unpickles)."""
+        """Read a store folder written by :meth:`save` (never unpickles).
+
+        ``mmap=True`` maps the pattern file read-only instead of reading it;
+        ``verify=False`` skips the checksums (fast path for large mapped stores).
+
+        Examples
+        --------
+        >>> import numpy as np, densemem, tempfile, os
+        >>> folder = os.path.join(tempfile.mkdtemp(), "store")
+        >>> densemem.DenseMemory.from_array(np.eye(2), ids=["x", "y"]).save(folder)
+        >>> densemem.DenseMemory.load(folder, mmap=True).ids.tolist()
+        ['x', 'y']
+        """
         from .storage import load_memory
 
         return load_memory(path, mmap=mmap, verify=verify)
@@ -292,7 +323,7 @@ class DenseMemory:
         queries : array-like of shape (n_queries, dim) or (dim,)
             Start states. A 1-D query gives results without the query axis.
         beta : float, optional
-            Inverse temperature (default: the memory's). Large beta returns the
+            Inverse temperature; None uses the memory's :attr:`beta`. Large beta returns the
             best-matching stored pattern; small beta blends many.
         steps : int, default 1
             Most updates to do. With ``steps > 1`` a query stops once its state
@@ -309,8 +340,8 @@ class DenseMemory:
               is at most ``tol_mass``, then the query falls back to "exact".
             - "index": softmax over the candidates of the index made by
               :meth:`build_index` (approximate, no bound).
-            - "auto": "certified" for the queries where the bound can hold at
-              all (``2 beta M |q| >= ln((N - k) / tol_mass)``, since scores lie
+            - "auto": "exact" below 2048 stored rows; otherwise "certified"
+              for the queries where the bound can hold at all (``2 beta M |q| >= ln((N - k) / tol_mass)``, since scores lie
               in ``[-M|q|, M|q|]``), "exact" for the others. Certified
               queries start at ``max(k, 16)`` candidates; one whose first
               bound exceeds ``1e4 * tol_mass`` goes to "exact" without

@@ -275,6 +275,13 @@ def test_corruption_models(rng: np.random.Generator) -> None:
     rivals = np.roll(rows, 1)
     mx = corrupt(x, rows, corruption="mix", level=0.3, rng=rng, rivals=rivals)
     np.testing.assert_allclose(mx, 0.7 * x + 0.3 * x[rivals], atol=1e-6)
+    # The sweep's "mix" queries use the nearest rival found by the exact separation.
+    mem = densemem.DenseMemory.from_array(x)
+    rep = tu.sweep_beta(mem, corruption="mix", level=0.45, betas=[1e4], n_queries=30)
+    sep = tu.separation(mem)
+    mixed_src = rep.source_ids
+    assert (rep.accuracy[0] == 1.0) and set(rep.top_ids[0, :, 1]) <= set(range(30))
+    assert all(rep.top_ids[0, i, 1] == sep.rival_ids[s] for i, s in enumerate(mixed_src))
     assert (x == before).all()  # inputs are never modified
 
 

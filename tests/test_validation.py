@@ -118,7 +118,7 @@ def test_zero_row_cannot_be_normalised() -> None:
 # ------------------------------------------------------------------------- queries
 def test_wrong_number_of_columns_in_queries(mem: DenseMemory) -> None:
     with pytest.raises(
-        InputValueError, match=lit("DenseMemory.retrieve: queries have 3 features but the memory stores 4-dimensional patterns.")
+        InputValueError, match=lit("DenseMemory.retrieve: `queries` have 3 features but the memory stores 4-dimensional patterns.")
     ):
         mem.retrieve(np.ones((2, 3)), method="exact")
 
@@ -300,7 +300,7 @@ def test_ids_of_float_dtype() -> None:
 
 def test_ids_mixing_int_and_str_in_one_call() -> None:
     # [1, "a"] is mixed input; it must not silently become the str ids "1" and "a".
-    with pytest.raises(InputTypeError, match=lit("`ids` must be integers or strings (not mixed)")):
+    with pytest.raises(InputTypeError, match=lit("DenseMemory.add: `ids` must be all integers or all strings; got a mix of int, str.")):
         DenseMemory(2).add(np.eye(2), ids=[1, "a"])
 
 
