@@ -2,10 +2,19 @@
 
 Store real-valued embeddings and retrieve them with the continuous (modern)
 Hopfield update: softmax attention over the stored patterns, a log-sum-exp
-energy and an inverse temperature beta.
+energy and an inverse temperature beta. Beside it: classic and dense binary
+memories, beta tuning, near-duplicate grouping, capacity experiments, a store
+folder format and readers for embedding files.
+
+The job modules keep their report and option classes:
+``densemem.tuning``, ``densemem.duplicates``, ``densemem.capacity``,
+``densemem.storage``, ``densemem.readers``.
 """
 
+from .binary import BinaryMemory, BinaryRetrieval, DenseBinaryMemory
+from .capacity import capacity_curve, estimate_capacity, robustness_curve
 from .dense import DenseMemory
+from .duplicates import DuplicatePlan, find_duplicates
 from .errors import (
     DenseMemError,
     DenseMemWarning,
@@ -16,7 +25,10 @@ from .errors import (
     StoreFormatError,
     UnknownIdError,
 )
+from .readers import Embeddings, read_embeddings
 from .results import NearestResult, RetrievalResult
+from .storage import load_memory, save_memory
+from .tuning import choose_beta, predict_beta, separation, sweep_beta, tune_beta
 
 __version__ = "0.1.0"
 
@@ -25,6 +37,23 @@ __all__ = [
     "DenseMemory",
     "RetrievalResult",
     "NearestResult",
+    "BinaryMemory",
+    "DenseBinaryMemory",
+    "BinaryRetrieval",
+    "separation",
+    "predict_beta",
+    "sweep_beta",
+    "choose_beta",
+    "tune_beta",
+    "find_duplicates",
+    "DuplicatePlan",
+    "estimate_capacity",
+    "capacity_curve",
+    "robustness_curve",
+    "save_memory",
+    "load_memory",
+    "read_embeddings",
+    "Embeddings",
     "DenseMemError",
     "DenseMemWarning",
     "IndexStaleError",

@@ -62,7 +62,17 @@ class Embeddings:
         return f"Embeddings(n_rows={n}, dim={d}, ids={ids}, kind={self.kind!r}, source={self.source!r})"
 
     def to_dict(self) -> dict[str, Any]:
-        """Summary (not the arrays): rows, dim, id dtype, source, kind, columns."""
+        """Summary (not the arrays): rows, dim, id dtype, source, kind, columns.
+
+        Examples
+        --------
+        >>> import numpy as np, tempfile, os
+        >>> from densemem import read_embeddings
+        >>> path = os.path.join(tempfile.mkdtemp(), "e.npy")
+        >>> np.save(path, np.eye(3, dtype=np.float32))
+        >>> read_embeddings(path).to_dict()["n_rows"]
+        3
+        """
         return {
             "n_rows": int(self.vectors.shape[0]),
             "dim": int(self.vectors.shape[1]),
