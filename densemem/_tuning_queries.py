@@ -7,7 +7,7 @@ Three corruption models, each with one strength ``level``:
 * ``"mask"``: a random fraction ``level`` of the coordinates set to 0 (a mask
   that would zero every non-zero coordinate of a row is not applied to it).
 * ``"mix"``: ``(1 - level) x + level x_r`` with ``x_r`` the pattern's nearest
-  rival by inner product (from :func:`densemem.tuning.separation`); ``level``
+  rival by inner product (faiss top-2, as in :func:`densemem.tuning.separation`); ``level``
   below 0.5 keeps the source the larger part.
 """
 
@@ -31,7 +31,8 @@ def corrupt(
 ) -> np.ndarray:
     """Corrupted copies of ``patterns[rows]`` (float32, a new array).
 
-    ``rivals`` (row number of each pattern's nearest rival) is needed for "mix".
+    ``rivals`` (row number of the nearest rival of each ``patterns[rows]``,
+    aligned with ``rows``) is needed for "mix".
     """
     x = patterns[rows].astype(np.float64)
     n, d = x.shape
@@ -45,5 +46,5 @@ def corrupt(
         out[emptied] = x[emptied]
     else:
         assert corruption == "mix" and rivals is not None
-        out = (1.0 - level) * x + level * patterns[rivals[rows]].astype(np.float64)
+        out = (1.0 - level) * x + level * patterns[rivals].astype(np.float64)
     return out.astype(np.float32)

@@ -15,7 +15,7 @@ import numpy as np
 from ._tuning_kernel import weight_stats
 from ._tuning_queries import CORRUPTIONS, corrupt
 from ._tuning_reports import BetaChoice, SweepReport
-from ._tuning_theory import _check_fraction, _check_memory, separation
+from ._tuning_theory import _check_fraction, _check_memory
 from ._validation import (
     as_rng,
     check_beta,
@@ -87,7 +87,7 @@ def _make_queries(
         rng = as_rng(opts["seed"])
         n = len(memory)
         rows = rng.choice(n, size=n_q, replace=n_q > n)
-        rivals = separation(memory).rival_rows if opts["corruption"] == "mix" else None
+        rivals = _rivals(memory.patterns, rows) if opts["corruption"] == "mix" else None
         q = corrupt(memory.patterns, rows, corruption=opts["corruption"], level=level, rng=rng, rivals=rivals)
         src: np.ndarray | None = memory.ids[rows]
         info = {"queries": "generated", "corruption": opts["corruption"], "level": level, "seed": opts["seed"]}
@@ -104,6 +104,12 @@ def _make_queries(
             )
         q = (q / norms[:, None]).astype(np.float32)
     return q, src, {**info, "n_queries": int(q.shape[0])}
+
+
+def _rivals(x: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    """Row number of the nearest rival (inner product, not the row itself) of each ``x[rows]``."""
+    _, pos = faiss.knn(np.ascontiguousarray(x[rows]), x, 2, metric=faiss.METRIC_INNER_PRODUCT)
+    return np.where(pos[:, 0] != rows, pos[:, 0], pos[:, 1])
 
 
 # ---------------------------------------------------------------- measure
@@ -180,7 +186,7 @@ def sweep_beta(
     steps: int = 1,
     tol: float = 1e-6,
     k: int | None = None,
-    method: str = "exact",
+    method: str = "auto",
     sharp_weight: float = 0.95,
     single_pr: float = 1.5,
     global_frac: float = 0.1,
@@ -205,7 +211,9 @@ def sweep_beta(
         ``(1 - level) x + level x_rival`` with the nearest rival.
     level : float, default 0.1
     steps, tol, k, method
-        Passed to :meth:`DenseMemory.retrieve` (``k``: top items kept per query).
+        Passed to :meth:`DenseMemory.retrieve` (``k``: top items kept per
+        query; ``method`` default "auto", as there). Entropy and
+        participation ratio are always computed exactly over every stored row.
     sharp_weight : float, default 0.95
         Top weight a sharp retrieval needs.
     single_pr, global_frac : float
@@ -312,7 +320,7 @@ def choose_beta(
     n_queries: int = 256,
     steps: int = 1,
     tol: float = 1e-6,
-    method: str = "exact",
+    method: str = "auto",
     seed: Any = 0,
 ) -> BetaChoice:
     """Choose beta by bisection in log beta on a monotone measured quantity.

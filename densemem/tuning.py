@@ -81,7 +81,7 @@ class TuneSpec(BaseModel):
     level: float = Field(0.1, ge=0)
     n_queries: int = Field(256, ge=1)
     steps: int = Field(1, ge=1)
-    method: Literal["exact", "certified", "index", "auto"] = "exact"
+    method: Literal["exact", "certified", "index", "auto"] = "auto"
     seed: int = 0
     sharp_weight: float = Field(0.95, gt=0, le=1)
     single_pr: float = Field(1.5, ge=1)
