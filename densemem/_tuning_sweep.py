@@ -236,7 +236,10 @@ def sweep_beta(
     is below ``single_pr`` (default 1.5: two equal items give 2), else
     **global** when it lies within ``global_frac * s`` of the mean of the
     stored patterns (``s``: RMS distance of the patterns from their mean),
-    else **metastable** (a blend of a subset). The report keeps the per-beta
+    else **metastable** (a blend of a subset). With one step the top-1 item is
+    the best-scoring pattern whatever beta is, so accuracy is flat in beta;
+    the sharp fraction (top weight >= ``sharp_weight`` and top-1 correct)
+    is what rises with beta. The report keeps the per-beta
     means and fractions, and per query the entropy, top list and class.
 
     Examples
