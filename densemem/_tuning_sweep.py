@@ -90,7 +90,8 @@ def _make_queries(
         rivals = _rivals(memory.patterns, rows) if opts["corruption"] == "mix" else None
         q = corrupt(memory.patterns, rows, corruption=opts["corruption"], level=level, rng=rng, rivals=rivals)
         src: np.ndarray | None = memory.ids[rows]
-        info = {"queries": "generated", "corruption": opts["corruption"], "level": level, "seed": opts["seed"]}
+        seed = opts["seed"] if opts["seed"] is None or isinstance(opts["seed"], int) else repr(opts["seed"])
+        info = {"queries": "generated", "corruption": opts["corruption"], "level": level, "seed": seed}
     else:
         q, _ = check_queries(queries, where=where, dim=memory.dim)
         q = q.copy()

@@ -224,6 +224,8 @@ def predict_beta(
     memory = _check_memory(memory, where, minimum=2)
     radius = check_nonneg_float(radius, name="radius", where=where)
     big_m, n = memory.max_norm, len(memory)
+    if big_m == 0:
+        raise InputValueError(f"{where}: every stored pattern is zero; no beta separates them.")
     error_tol = 1e-2 * big_m if error_tol is None else check_nonneg_float(
         error_tol, name="error_tol", where=where, strict=True)
     target_fraction = _check_fraction(target_fraction, "target_fraction", where)

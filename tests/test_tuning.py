@@ -378,6 +378,8 @@ def test_reports_are_json_and_tables(rng: np.random.Generator, tmp_path) -> None
     for head in ("separation (exact", "predicted beta", "beta", "chosen beta (blend)"):
         assert head in table
     assert len(tu.format_report(rep.sweep).splitlines()) == 1 + 6 + 1
+    gen = tu.sweep_beta(mem, betas=[1.0], n_queries=4, seed=np.random.default_rng(3))
+    json.dumps(gen.to_dict(), allow_nan=False)  # a Generator seed is recorded as text
     assert repr(rep.sweep).startswith("SweepReport(betas=array(shape=(6,))")
     png = tu.plot_sweep(rep.sweep, tmp_path / "sweep.png", chosen_beta=rep.choice.beta)
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
@@ -409,6 +411,8 @@ def small() -> densemem.DenseMemory:
          r"separation: needs at least 2 stored patterns; the memory holds 1"),
         (lambda m: tu.separation(m, index="flat"), InputValueError, r"`index` must be one of .*got 'flat'"),
         (lambda m: tu.separation(m, tol=-1.0), InputValueError, r"separation: `tol` must be a finite number >= 0"),
+        (lambda m: tu.predict_beta(densemem.DenseMemory.from_array(np.zeros((3, 2)))), InputValueError,
+         r"predict_beta: every stored pattern is zero"),
         (lambda m: tu.predict_beta(m, radius=-0.1), InputValueError, r"predict_beta: `radius` must be"),
         (lambda m: tu.predict_beta(m, error_tol=0.0), InputValueError, r"predict_beta: `error_tol` must be a finite number > 0"),
         (lambda m: tu.predict_beta(m, target_fraction=1.5), InputValueError, r"`target_fraction` must be a number in \(0, 1\]; got 1.5"),
