@@ -60,6 +60,11 @@ def default_settings(kind: str, n: int, **given: Any) -> IndexSettings:
         if name != "seed":
             check_positive_int(val, name=name, where=where)
     if kind == "ivf":
+        if given.get("nlist", 0) > n:
+            raise InputValueError(
+                f"{where}: `nlist` must be at most the number of stored patterns ({n}) for k-means "
+                f"training; got {given['nlist']}."
+            )
         nlist = given.get("nlist") or max(1, min(int(4 * math.sqrt(max(n, 1))), max(n // 39, 1)))
         nprobe = given.get("nprobe") or min(nlist, max(8, nlist // 32))
         if nprobe > nlist:

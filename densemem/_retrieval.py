@@ -116,7 +116,7 @@ def iterate(
     energy = energy_of(mem, state, beta, method, opts) if return_energy else None
     if "mass_bound" in info_all:
         info_all["state_bound"] = 2.0 * mem.max_norm * info_all["mass_bound"]
-    ids = mem._table.ids[np.maximum(top_i, 0)]
+    ids = mem._table.ids_at(top_i)
     used = method
     if method == "auto":
         certified_any = "fell_back" in info_all and not bool(np.all(info_all["fell_back"]))

@@ -107,6 +107,18 @@ class PatternTable:
             self._next_id = max(self._next_id, int(ids.max()) + 1)
         self.version += 1
 
+    def ids_at(self, pos: np.ndarray) -> np.ndarray:
+        """Ids of row numbers ``pos``; -1 (a missing result) maps to the missing-id marker.
+
+        The marker is -1 for int ids and "" for str ids (see :data:`MISSING_ID`).
+        """
+        out = self._ids[np.maximum(pos, 0)]
+        missing = pos < 0
+        if missing.any():
+            out = out.copy()
+            out[missing] = "" if out.dtype.kind == "U" else -1
+        return out
+
     def positions(self, ids: Any, *, where: str) -> np.ndarray:
         """Row numbers of ``ids`` (raises on an unknown id)."""
         if isinstance(ids, (str, int, np.integer)):

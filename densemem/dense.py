@@ -521,7 +521,9 @@ class DenseMemory:
             (``METRIC_L2``).
         index : bool, default False
             Search the approximate index of :meth:`build_index` instead
-            (inner product only), for like-for-like baselines.
+            (inner product only), for like-for-like baselines. An index may
+            find fewer than k results: the missing ones have id -1 (int ids)
+            or "" (str ids) and the score faiss gives them.
 
         Returns
         -------
@@ -546,7 +548,7 @@ class DenseMemory:
         else:
             fm = faiss.METRIC_INNER_PRODUCT if metric == "ip" else faiss.METRIC_L2
             scores, pos = faiss.knn(q, self._table.x, k, metric=fm)
-        ids = self._table.ids[np.maximum(pos, 0)]
+        ids = self._table.ids_at(pos)
         if was_1d:
             return NearestResult(ids=ids[0], scores=scores[0], metric=metric)
         return NearestResult(ids=ids, scores=scores, metric=metric)

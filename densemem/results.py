@@ -48,6 +48,8 @@ class RetrievalResult(_ResultMixin):
         The retrieved states after the last update.
     top_ids : ndarray of shape (n_queries, k)
         Ids of the heaviest stored items in the last update, heaviest first.
+        With ``method="index"`` an index may return fewer than k candidates:
+        the missing entries have weight 0 and id -1 (int ids) or "" (str ids).
     top_weights : ndarray of shape (n_queries, k), float64
         Their softmax weights.
     energy : ndarray of shape (n_queries,) or None
