@@ -54,7 +54,15 @@ class _Report:
         return f"{type(self).__name__}({body})"
 
     def to_dict(self) -> dict[str, Any]:
-        """Plain-Python, JSON-ready copy (NaN and infinity become ``None``)."""
+        """Plain-Python, JSON-ready copy (NaN and infinity become ``None``).
+
+        Examples
+        --------
+        >>> import json, numpy as np, densemem, densemem.tuning as t
+        >>> mem = densemem.DenseMemory.from_array([[1.0, 0.0], [0.8, 0.6], [0.0, 1.0]])
+        >>> json.loads(json.dumps(t.separation(mem).to_dict()))["rival_ids"]
+        [1, 0, 1]
+        """
         return {f.name: _plain(getattr(self, f.name)) for f in fields(self)}  # type: ignore[arg-type]
 
 
