@@ -228,8 +228,8 @@ class _Session:
             args: tuple[Any, ...], merge: Callable[[Any, Any], Any]) -> Any:
         """One distributed pass: scatter the batch once, a task per shard, a merge tree on the workers."""
         c, tag = self.client, uuid.uuid4().hex[:12]
-        data = c.scatter(batch, broadcast=True, hash=False)
         where = self.placement(len(shards))
+        data = c.scatter(batch, broadcast=True, hash=False)
         futs = [
             c.submit(task, sh, data, *args, key=f"densemem-shard-{i}-{tag}", workers=[where[i]],
                      allow_other_workers=True, retries=self.retries, pure=False)
