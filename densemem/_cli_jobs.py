@@ -137,8 +137,74 @@ def _run_capacity(a: argparse.Namespace) -> tuple[Any, str]:
     return {"rows": rows}, out.table(shown, [[r[k] for k in shown] for r in rows], title="capacity")
 
 
+# ------------------------------------------------------------------ bench
+_BENCH_QUICK = {"n": 2000, "n_queries": 100, "dim": 64, "repeats": 1, "warmup": 0,
+                "ef_search": [16, 64], "nprobe": [4, 16]}
+_BENCH_FLAGS = {"--n-queries": "--queries", "--ks": "--k", "--queries": "--query-file",
+                "--include-binary": "--binary", "--column": "--column"}
+
+
+def add_bench(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
+    p = sub(subs, "bench", "time and score densemem retrieval beside faiss Flat/HNSW/IVF on the same data",
+            "densemem bench --dataset clustered --n 100000 --betas 8 64 --out bench-results")
+    p.add_argument("--dataset", default="clustered",
+                   help="unit, clustered, digits, or an embeddings file (.npy .npz .parquet .csv .tsv)")
+    p.add_argument("--column", help="array/column of the vectors (embeddings files)")
+    p.add_argument("--query-file", help="queries from this file instead of corrupted stored rows")
+    p.add_argument("--query-column", help="array/column of the query vectors")
+    p.add_argument("--n", type=int, help="stored rows (default 10000 for generated data, all for files)")
+    p.add_argument("--dim", type=int, help="dimension of generated data (default 128)")
+    p.add_argument("--queries", type=int, help="number of generated queries (default 1000)")
+    p.add_argument("--corruption", choices=["gaussian", "mask"], help="query corruption (default gaussian)")
+    p.add_argument("--level", type=float, help="noise norm / stored norm, or masked fraction (default 0.5)")
+    p.add_argument("--k", nargs="+", type=int, help="recall@k for these k (default 1 10)")
+    p.add_argument("--betas", nargs="+", type=float, help="inverse temperatures (default 8 64)")
+    p.add_argument("--ef-search", nargs="+", type=int, help="HNSW efSearch values (default 16 64 256)")
+    p.add_argument("--nprobe", nargs="+", type=int, help="IVF nprobe values (default 4 16 64)")
+    p.add_argument("--methods", nargs="+", help="subset of faiss-flat faiss-hnsw faiss-ivf exact certified "
+                   "index-hnsw index-ivf (default all)")
+    p.add_argument("--binary", action="store_true", help="add sign-quantised data and the binary memories")
+    p.add_argument("--binary-models", nargs="+", help="binary memories (default hebbian exponential)")
+    p.add_argument("--repeats", type=int, help="timed calls per row, median kept (default 5)")
+    p.add_argument("--warmup", type=int, help="untimed calls before timing (default 1)")
+    p.add_argument("--batch-size", type=int, help="queries per call (default: all in one call)")
+    p.add_argument("--seed", type=int, help="random seed (default 0)")
+    p.add_argument("--sizes", nargs="+", type=int, help="scaling run over these N")
+    p.add_argument("--scaling", action="store_true", help="scaling run over N = 10k, 100k (1M with --large)")
+    p.add_argument("--large", action="store_true", help="allow N above 200k (adds 1M to --scaling)")
+    p.add_argument("--no-normalize", dest="normalize", action="store_false", help="keep raw norms")
+    p.add_argument("--quick", action="store_true", help="a tiny run (N 1000 and 2000, 100 queries, 1 repeat)")
+    p.add_argument("--out", help="folder for bench.json and the PNG plots")
+    p.add_argument("--no-plots", dest="plots", action="store_false", help="skip the PNG plots")
+    p.add_argument("--overwrite", action="store_true", help="replace bench files already in --out")
+    p.set_defaults(run=_run_bench)
+
+
+def _run_bench(a: argparse.Namespace) -> tuple[Any, str]:
+    from . import benchmark
+
+    names = {"queries": "n_queries", "query_file": "queries", "k": "ks", "binary": "include_binary"}
+    values = {names.get(k, k): v for k, v in vars(a).items() if v is not None}
+    if a.quick:
+        values = {**_BENCH_QUICK, **values}
+        if a.dataset in ("unit", "clustered") and a.n is None and a.sizes is None and not a.scaling:
+            values["sizes"] = [1000, 2000]
+    try:
+        spec = make_spec(benchmark.BenchSpec, values)
+    except SpecError as exc:
+        flag, _, rest = str(exc).partition(" ")
+        raise SpecError(f"{_BENCH_FLAGS.get(flag, flag)} {rest}") from None
+    rep = benchmark.run_benchmark(spec, progress=None if not a.quiet else False)
+    text = rep.table()
+    if a.out is not None:
+        files = rep.write(a.out, plots=a.plots, overwrite=a.overwrite)
+        text += "\n\n" + "\n".join(f"wrote {p}" for p in files.values())
+    return rep.to_dict(), text
+
+
 ADDERS: list[tuple[str, Callable[..., None]]] = [
     ("tuning", add_tune), ("duplicates", add_dedup), ("capacity", add_capacity),
+    ("benchmark", add_bench),
 ]
 
 
