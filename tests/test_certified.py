@@ -27,8 +27,8 @@ summing n weighted rows and dividing by the float32 normaliser adds at most 2 ga
 The true omitted mass is then at most mass_bound * exp(2 Delta) (the bound is computed on the
 perturbed scores and both the omitted sum and the candidate normaliser move by exp(Delta)).
 How much: unit vectors, d=128, beta=60 give Delta ~ 4.7e-4, so the state slack is ~1e-3 M; at
-d=16, |x| ~ 1, beta=1 it is ~2e-6 M. It is a worst-case bound, typically 10-100x above the
-error seen, and it shrinks with beta, where the bound itself is largest.
+d=16, |x| ~ 1, beta=1 it is ~3e-6 M. It is a worst-case bound, typically 10-100x above the
+error seen, and it is smallest at small beta, where the mass bound itself is largest.
 """
 
 from __future__ import annotations
