@@ -134,7 +134,19 @@ def find_duplicates(
     -----
     The attractor beta is the bifurcation point of a pair at the threshold:
     for unit vectors at cosine ``c`` the blended state is stable iff
-    ``beta (1 - c) / 2 < 1`` [1]_ (see :mod:`densemem._dup_attractor`).
+    ``beta (1 - c) / 2 < 1`` [1]_ (see :mod:`densemem._dup_attractor`). The
+    attractor method is soft near the threshold, and many rivals just below
+    it (dense clusters) can pull items into one blended state; it agrees with
+    the graph method on well-separated groups. It costs ``steps`` exact
+    retrievals over all rows (``retrieval="exact"`` until the certified path
+    lands), so it suits tens of thousands of rows, not millions.
+
+    Cost of the graph method: exact search is ``n * n * d``; IVF is one
+    coarse assignment (``n * nlist * d``, shared by adding and searching) plus
+    ``n * nprobe * n / nlist * d`` for the range search; candidate pairs are
+    re-scored in float64. Group statistics cost ``size**2 * d`` per group, so
+    a loose threshold that chains most rows into one component is slow:
+    raise the threshold or use ``no_chaining``.
 
     References
     ----------
