@@ -57,8 +57,7 @@ def default_settings(kind: str, n: int, **given: Any) -> IndexSettings:
             f"{where}: unknown index option(s) {sorted(unknown)}; use {sorted(known)}."
         )
     for name, val in given.items():
-        if name != "seed":
-            check_positive_int(val, name=name, where=where)
+        check_positive_int(val, name=name, where=where, minimum=0 if name == "seed" else 1)
     if kind == "ivf":
         if given.get("nlist", 0) > n:
             raise InputValueError(

@@ -109,6 +109,28 @@ def _block_top(z: np.ndarray, k: int, offset: int) -> tuple[np.ndarray, np.ndarr
     return vals, top_i + offset, row_max.astype(np.float64)
 
 
+def _energy_sum(z: np.ndarray) -> np.ndarray:
+    """sum exp(z) per row of a max-shifted tile (z <= 0), accurate for the energy.
+
+    When a row's z all lie within 1 of its max (small beta * M^2) every exp term
+    rounds near 1 in float32 and ln(l) - ln(n), all the energy depends on, is
+    lost; there l = n + sum expm1(z) keeps it (each term >= -0.63, so nothing
+    cancels). Rows with a wider spread use exp and a positive sum.
+    """
+    n = z.shape[1]
+    narrow = z.min(axis=1) >= -1.0
+    l = np.empty(z.shape[0], dtype=np.float64)
+    if narrow.all():
+        np.expm1(z, out=z)
+        return n + z.sum(axis=1).astype(np.float64)
+    if not narrow.any():
+        np.exp(z, out=z)
+        return z.sum(axis=1).astype(np.float64)
+    l[narrow] = n + np.expm1(z[narrow]).sum(axis=1).astype(np.float64)
+    l[~narrow] = np.exp(z[~narrow]).sum(axis=1).astype(np.float64)
+    return l
+
+
 def block(
     z: np.ndarray,
     rows: np.ndarray,
@@ -144,11 +166,7 @@ def block(
         l = z.sum(axis=1).astype(np.float64)  # float32 pairwise sum: ~1e-7 relative
         acc = z @ rows
     else:
-        # Energy pass: l = n + sum expm1(z - m). When every z is close to m
-        # (small beta * M^2) the exp terms round to 1 in float32 and lse - ln N,
-        # which is all the energy depends on, would be lost; expm1 keeps it.
-        np.expm1(z, out=z)
-        l = z.shape[1] + z.sum(axis=1).astype(np.float64)
+        l = _energy_sum(z)
         acc = None
     return Partial(m=m, l=l, acc=acc, top_z=top_z, top_i=top_i)
 

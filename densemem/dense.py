@@ -398,6 +398,10 @@ class DenseMemory:
         if method == "index":
             self._fresh_index(where=where)
         result = R.iterate(self, q, was_1d, beta, steps, tol, k, method, return_energy, opts)
+        if measure is not False and method != "index":
+            raise InputValueError(f"{where}: `measure` applies to method='index' only; got method={method!r}.")
+        if not isinstance(measure, (bool, int, np.integer)):
+            raise InputValueError(f"{where}: `measure` must be True/False or a number of queries; got {measure!r}.")
         if method == "index" and measure:
             n_sample = 256 if measure is True else check_positive_int(int(measure), name="measure", where=where)
             recall = R.candidate_recall(self, q, opts["n_candidates"], k, n_sample)
@@ -444,8 +448,9 @@ class DenseMemory:
             faiss ``IndexHNSWFlat`` or ``IndexIVFFlat``, by inner product.
         **params
             HNSW: ``M`` (32), ``ef_construction`` (80), ``ef_search`` (64).
-            IVF: ``nlist`` (about 4 sqrt(N)), ``nprobe`` (nlist / 32, at least 8),
-            ``seed`` (0) for training.
+            IVF: ``nlist`` (about 4 sqrt(N), and at most N / 39 so k-means has
+            39 training rows per list, faiss's own minimum advice), ``nprobe``
+            (nlist / 32, at least 8), ``seed`` (0) for the k-means training.
 
         Returns
         -------

@@ -72,8 +72,9 @@ class RetrievalResult(_ResultMixin):
     fell_back : ndarray of shape (n_queries,), bool, or None
         Certified path: queries answered by the exact path instead.
     candidate_recall : float or None
-        Index path with ``measure=True``: fraction of the exact top-k found by
-        the index, over a sample of queries.
+        Index path with ``measure=True``: fraction of faiss's exact top-kc
+        (kc = the candidates fetched, ``max(n_candidates, k)``) that the index
+        found, averaged over a sample of queries.
     """
 
     states: np.ndarray
