@@ -43,7 +43,7 @@ def _unit(rng: np.random.Generator, n: int, d: int) -> np.ndarray:
 
 
 def _clustered(rng: np.random.Generator, n: int, d: int) -> np.ndarray:
-    n_clusters = max(4, int(round(np.sqrt(n) / 2)))
+    n_clusters = max(4, round(float(np.sqrt(n)) / 2))
     weights = rng.permutation(1.0 / np.arange(1, n_clusters + 1) ** 0.8)
     weights /= weights.sum()
     common = rng.standard_normal(d)

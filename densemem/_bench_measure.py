@@ -3,7 +3,9 @@
 * recall@k: mean over queries of ``|returned top-k & true top-k| / k`` (common
   practice in approximate nearest-neighbour benchmarks; recall@1 is top-1
   agreement). A returned id of -1 (faiss's "no result") never matches.
-* time: the median of ``repeats`` wall times after ``warmup`` untimed calls.
+* time: the median of ``repeats`` wall times after ``warmup`` untimed calls;
+  a row with a baseline is timed alternately with it (call, baseline call, ...),
+  so both medians see the same machine load.
 * memory: one extra call watched twice: tracemalloc's peak (Python and NumPy
   allocations) and the process RSS peak over the RSS before the call, read
   from /proc (Linux: writing "5" to /proc/self/clear_refs resets the peak
@@ -16,13 +18,14 @@ import os
 import platform
 import time
 import tracemalloc
-from typing import Any, Callable
+from collections.abc import Callable
+from typing import Any
 
 import numpy as np
 
 from .errors import InputTypeError, InputValueError
 
-__all__ = ["recall_at_k", "time_calls", "memory_peaks", "machine_facts", "median"]
+__all__ = ["machine_facts", "median", "memory_peaks", "paired_times", "recall_at_k", "time_calls"]
 
 _MIB = 2.0**20
 
@@ -95,6 +98,25 @@ def time_calls(fn: Callable[[], Any], repeats: int, warmup: int) -> tuple[list[f
         out = fn()
         times.append(max(time.perf_counter() - t0, 1e-9))
     return times, out
+
+
+def paired_times(fn: Callable[[], Any], base: Callable[[], Any], repeats: int,
+                 warmup: int) -> tuple[list[float], list[float], Any]:
+    """Times of ``fn`` and of its baseline ``base`` called alternately (both see the same load)."""
+    out = None
+    for _ in range(warmup):
+        out = fn()
+        base()
+    times, base_times = [], []
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        out = fn()
+        t1 = time.perf_counter()
+        base()
+        t2 = time.perf_counter()
+        times.append(max(t1 - t0, 1e-9))
+        base_times.append(max(t2 - t1, 1e-9))
+    return times, base_times, out
 
 
 def _status_kib(field: str) -> float | None:

@@ -2,7 +2,8 @@
 
 Private. Every row is timed the same way (``time_calls``: median after warm-up),
 watched once more for memory (``memory_peaks``), scored against faiss
-``IndexFlatIP`` exact top-k, and set beside its faiss baseline from this run.
+``IndexFlatIP`` exact top-k, and set beside its faiss baseline from this run
+(timed alternately with the row, so both see the same machine load).
 The densemem index-backed rows search the very faiss HNSW/IVF index of their
 baseline row (attached through the memory's index seam), so the ratio compares
 the same candidates with and without the softmax on top.
@@ -11,18 +12,19 @@ the same candidates with and without the softmax on top.
 from __future__ import annotations
 
 import time
-from typing import Any, Callable
+from collections.abc import Callable
+from typing import Any
 
 import faiss
 import numpy as np
 
 from ._bench_data import BenchData, packed, sign_codes
-from ._bench_measure import median, memory_peaks, recall_at_k, time_calls
+from ._bench_measure import median, memory_peaks, paired_times, recall_at_k, time_calls
 from ._bench_spec import BenchRecord, BenchSpec
 from ._index import IndexSettings, default_settings
 from .errors import InputValueError
 
-__all__ = ["run_rows", "count_rows"]
+__all__ = ["count_rows", "run_rows"]
 
 _FLOAT64_SAMPLE = 64  # queries checked against a float64 NumPy softmax (the exact rows)
 _BINARY_CHUNK_MIB = 64.0
@@ -64,7 +66,7 @@ class _Run:
         self.kmax = max(self.ks)
         self.batch = min(spec.batch_size or self.nq, self.nq)
         self.records: list[BenchRecord] = []
-        self.baselines: dict[str, tuple[str, float]] = {}
+        self.baselines: dict[str, tuple[str, Callable[[], Any]]] = {}
         self.refs: dict[float, np.ndarray] = {}
         self.truth: np.ndarray | None = None
         self._mem: tuple[Any, float, float] | None = None
@@ -90,12 +92,16 @@ class _Run:
             build: tuple[float, float], quality: Callable[[Any], dict[str, Any]], beta: float | None = None,
             baseline: str | None = None, register: str | None = None) -> None:
         self.tick(f"N={self.n} {method} {label}")
-        times, py, rss, out = self.timed(call)
-        t = median(times)
         extra: dict[str, Any] = {}
         if baseline is not None and baseline in self.baselines:
-            base_label, base_t = self.baselines[baseline]
+            base_label, base_call = self.baselines[baseline]
+            times, base_times, _ = paired_times(call, base_call, self.spec.repeats, self.spec.warmup)
+            py, rss, out = memory_peaks(call)
+            t, base_t = median(times), median(base_times)
             extra = {"baseline": base_label, "baseline_time_s": base_t, "time_ratio": t / base_t}
+        else:
+            times, py, rss, out = self.timed(call)
+            t = median(times)
         rec = BenchRecord(
             dataset=self.name, n=self.n, dim=self.dim, n_queries=self.nq, batch_size=self.batch,
             library=library, method=method, label=label, params=params, beta=beta,
@@ -105,7 +111,7 @@ class _Run:
         )
         self.records.append(rec)
         if register is not None:
-            self.baselines[register] = (label, t)
+            self.baselines[register] = (label, call)
 
     def recalls(self, ids: np.ndarray) -> dict[int, float]:
         assert self.truth is not None

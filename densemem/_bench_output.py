@@ -8,8 +8,9 @@ on log-log axes (scaling runs only). matplotlib is optional.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from pathlib import Path
-from typing import Any, Sequence
+from typing import Any
 
 from ._bench_spec import BenchRecord
 from .errors import MissingExtraError
@@ -80,7 +81,7 @@ def plot_recall_speed(records: Sequence[BenchRecord], path: Path, k: int) -> Pat
     fig, ax = plt.subplots(figsize=(9, 5.5))
     for j, (name, group) in enumerate(_series(rows).items()):
         style = "s--" if group[0].library == "faiss" else "o-"
-        ax.plot([r.queries_per_s for r in group], [r.recall[k] for r in group], style, color=f"C{j % 10}",
+        ax.plot([r.queries_per_s for r in group], [r.recall[k] for r in group], style, color=plt.cm.tab20(j % 20),
                 label=name, ms=5)
     ax.set_xscale("log")
     ax.set_xlabel("queries per second (log scale; median of repeats)")
@@ -105,7 +106,7 @@ def plot_scaling(records: Sequence[BenchRecord], path: Path) -> Path:
         group = sorted(group, key=lambda r: r.n)
         style = "--" if group[0].library == "faiss" else "-"
         ax.plot([r.n for r in group], [r.time_s for r in group], style, marker="o", ms=4,
-                color=f"C{j % 10}", label=name)
+                color=plt.cm.tab20(j % 20), label=name)
     ax.set_xscale("log")
     ax.set_yscale("log")
     ax.set_xlabel("stored rows N (log scale)")

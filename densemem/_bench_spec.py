@@ -18,17 +18,17 @@ from typing import Annotated, Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 __all__ = [
-    "BenchSpec",
-    "BenchRecord",
-    "MachineFacts",
-    "BenchResults",
-    "DENSE_METHODS",
     "BINARY_MODELS",
-    "SCHEMA",
-    "SCALING_SIZES",
-    "LARGE_SIZE",
-    "LARGE_LIMIT",
+    "DENSE_METHODS",
     "GENERATED",
+    "LARGE_LIMIT",
+    "LARGE_SIZE",
+    "SCALING_SIZES",
+    "SCHEMA",
+    "BenchRecord",
+    "BenchResults",
+    "BenchSpec",
+    "MachineFacts",
 ]
 
 SCHEMA = "densemem-bench/1"
@@ -131,10 +131,10 @@ class BenchSpec(_Model):
         return None if v is None else _unique_sorted(v, "sizes")
 
     @model_validator(mode="after")
-    def _consistent(self) -> "BenchSpec":
+    def _consistent(self) -> BenchSpec:
         if self.corruption == "mask" and self.level >= 1.0:
             raise ValueError(f"`level` is the masked fraction for corruption='mask' and must be < 1; got {self.level}")
-        big = [s for s in self.run_sizes() if s > LARGE_LIMIT]
+        big = [s for s in self.run_sizes() if s is not None and s > LARGE_LIMIT]
         if big and not self.large:
             raise ValueError(f"sizes above {LARGE_LIMIT:,} ({big}) need large=True (they take minutes and GBs)")
         return self
@@ -182,7 +182,9 @@ class BenchRecord(_Model):
     beta (``state_reference`` says which). Speed: ``time_s`` is the median of
     ``times_s`` (one call over all queries, in batches of ``batch_size``, after
     ``warmup`` calls); ``time_ratio = time_s / baseline_time_s``, the baseline
-    being the faiss row named in ``baseline`` from the same run.
+    being the faiss method named in ``baseline``, timed in the same run
+    alternately with this row (so its median can differ a little from that
+    faiss row's own ``time_s``).
     """
 
     dataset: str
@@ -214,7 +216,7 @@ class BenchRecord(_Model):
     warmup: Annotated[int, Field(ge=0)]
 
     @model_validator(mode="after")
-    def _arithmetic(self) -> "BenchRecord":
+    def _arithmetic(self) -> BenchRecord:
         if not self.recall:
             raise ValueError("`recall` must hold at least recall@1")
         if len(self.times_s) != self.repeats:

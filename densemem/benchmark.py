@@ -30,9 +30,10 @@ from __future__ import annotations
 import datetime as _dt
 import json
 import sys
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 from pydantic import ValidationError
 
@@ -44,15 +45,15 @@ from ._bench_spec import BenchRecord, BenchResults, BenchSpec, MachineFacts
 from .errors import InputTypeError, InputValueError
 
 __all__ = [
-    "run_benchmark",
-    "BenchSpec",
-    "BenchReport",
     "BenchRecord",
+    "BenchReport",
     "BenchResults",
+    "BenchSpec",
     "MachineFacts",
-    "recall_at_k",
     "load_results",
     "plot_benchmark",
+    "recall_at_k",
+    "run_benchmark",
 ]
 
 
