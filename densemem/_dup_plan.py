@@ -135,7 +135,16 @@ class DuplicatePlan:
         return self.n_groups
 
     def group(self, g: int) -> DuplicateGroup:
-        """Group number ``g`` as a :class:`DuplicateGroup`."""
+        """Group number ``g`` as a :class:`DuplicateGroup`.
+
+        Examples
+        --------
+        >>> import numpy as np, densemem
+        >>> x = np.array([[1.0, 0.0], [1.0, 0.001], [0.0, 1.0]])
+        >>> plan = densemem.find_duplicates(x, threshold=0.99)
+        >>> plan.group(0).ids.tolist()
+        [0, 1]
+        """
         if not isinstance(g, (int, np.integer)) or isinstance(g, bool):
             raise InputTypeError(f"DuplicatePlan.group: `g` must be an integer; got {type(g).__name__}.")
         if not 0 <= int(g) < self.n_groups:
@@ -165,7 +174,16 @@ class DuplicatePlan:
         )
 
     def summary(self) -> dict[str, Any]:
-        """Scalars and settings (no per-member arrays), JSON-ready."""
+        """Scalars and settings (no per-member arrays), JSON-ready.
+
+        Examples
+        --------
+        >>> import numpy as np, densemem
+        >>> x = np.array([[1.0, 0.0], [1.0, 0.001], [0.0, 1.0]])
+        >>> plan = densemem.find_duplicates(x, threshold=0.99)
+        >>> plan.summary()["n_groups"]
+        1
+        """
         return {
             "threshold": self.threshold,
             "method": self.method,
@@ -183,7 +201,16 @@ class DuplicatePlan:
         }
 
     def to_dict(self) -> dict[str, Any]:
-        """Plain-Python (JSON-ready) copy of every field."""
+        """Plain-Python (JSON-ready) copy of every field.
+
+        Examples
+        --------
+        >>> import numpy as np, densemem
+        >>> x = np.array([[1.0, 0.0], [1.0, 0.001], [0.0, 1.0]])
+        >>> plan = densemem.find_duplicates(x, threshold=0.99)
+        >>> plan.to_dict()["threshold"]
+        0.99
+        """
         return {f.name: _plain_deep(getattr(self, f.name)) for f in fields(self)}
 
     # ----------------------------------------------------------- files

@@ -51,7 +51,7 @@ def find_duplicates(
     target_recall: float = 0.995,
     beta: float | None = None,
     max_steps: int = 300,
-    retrieval: Literal["exact", "auto", "certified"] = "exact",
+    retrieval: Literal["exact", "auto", "certified"] = "auto",
     work_mib: float = 64.0,
     return_pairs: bool = False,
     progress: bool | None = None,
@@ -138,8 +138,8 @@ def find_duplicates(
     attractor method is soft near the threshold, and many rivals just below
     it (dense clusters) can pull items into one blended state; it agrees with
     the graph method on well-separated groups. It costs ``steps`` exact
-    retrievals over all rows (``retrieval="exact"`` until the certified path
-    lands), so it suits tens of thousands of rows, not millions.
+    retrievals over all rows (``retrieval="auto"``: certified where its bound
+    can hold, exact otherwise), so it suits tens of thousands of rows, not millions.
 
     Cost of the graph method: exact search is ``n * n * d``; IVF is one
     coarse assignment (``n * nlist * d``, shared by adding and searching) plus
@@ -295,7 +295,7 @@ class DedupSpec(BaseModel):
     target_recall: float = Field(0.995, gt=0.0, le=1.0)
     beta: float | None = Field(None, gt=0.0, allow_inf_nan=False)
     max_steps: int = Field(300, ge=1)
-    retrieval: Literal["exact", "auto", "certified"] = "exact"
+    retrieval: Literal["exact", "auto", "certified"] = "auto"
     work_mib: float = Field(64.0, gt=0.0, allow_inf_nan=False)
     seed: int = 0
 
