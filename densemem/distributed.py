@@ -93,6 +93,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from . import _shard_ops as S
 from ._candidates import CertifiedOptions
+from ._tiles import DEFAULT_TILE_MIB
 from ._validation import check_nonneg_float, check_positive_int
 from .errors import InputTypeError, InputValueError, MissingExtraError
 from .results import NearestResult, RetrievalResult
@@ -337,7 +338,7 @@ def retrieve(
         sm = _store(store, where)
         args = S.check_retrieve(
             sm._layout(), queries, beta, sm.beta, steps=steps, tol=tol, k=k, method=method,
-            return_energy=return_energy, tol_mass=tol_mass, k_max=k_max, tile_mib=16.0, where=where,
+            return_energy=return_energy, tol_mass=tol_mass, k_max=k_max, tile_mib=DEFAULT_TILE_MIB, where=where,
         )
         shards = _shards(sm, bool(verify), where)
 

@@ -53,6 +53,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from . import _shard_ops as S
 from ._table import PatternTable
+from ._tiles import DEFAULT_TILE_MIB
 from ._validation import check_ids, check_patterns, check_positive_int
 from .errors import InputTypeError, InputValueError, StoreFormatError
 from .results import NearestResult, RetrievalResult
@@ -401,7 +402,7 @@ class ShardedMemory:
         where = "ShardedMemory.retrieve"
         args = S.check_retrieve(
             self._layout(), queries, beta, self.beta, steps=steps, tol=tol, k=k, method=method,
-            return_energy=return_energy, tol_mass=tol_mass, k_max=k_max, tile_mib=16.0, where=where,
+            return_energy=return_energy, tol_mass=tol_mass, k_max=k_max, tile_mib=DEFAULT_TILE_MIB, where=where,
         )
         mems = self._memories(where)
 
