@@ -26,11 +26,11 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _common import RESULTS, machine_facts, noisy_queries, unit_rows  # noqa: E402
+from _common import RESULTS, machine_facts, noisy_queries, unit_rows
 
-import densemem  # noqa: E402
-from densemem import distributed as D  # noqa: E402
-from densemem.sharding import shard_memory  # noqa: E402
+import densemem
+from densemem import distributed as D
+from densemem.sharding import shard_memory
 
 
 def main(argv: list[str] | None = None) -> dict:

@@ -42,8 +42,9 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import Any, Callable, Sequence
+from typing import Any
 
 import faiss
 import numpy as np
@@ -52,7 +53,13 @@ from . import _partial as P
 from ._candidates import CertifiedOptions, bound_can_hold, certified_reduce
 from ._exact import exact_reduce
 from ._retrieval import AUTO_GIVE_UP, AUTO_K_START, auto_split
-from ._validation import check_beta, check_k, check_nonneg_float, check_positive_int, check_queries
+from ._validation import (
+    check_beta,
+    check_k,
+    check_nonneg_float,
+    check_positive_int,
+    check_queries,
+)
 from .errors import InputValueError
 from .results import NearestResult, RetrievalResult
 
@@ -308,7 +315,7 @@ def check_nearest(layout: Layout, queries: Any, k: Any, metric: Any, *, where: s
     return q, was_1d, k
 
 
-def run_retrieve(run_pass: "PassFn", layout: Layout, a: RetrieveArgs) -> RetrievalResult:
+def run_retrieve(run_pass: PassFn, layout: Layout, a: RetrieveArgs) -> RetrievalResult:
     """:func:`iterate` with validated arguments."""
     return iterate(
         run_pass, layout, a.q, a.was_1d, a.beta, steps=a.steps, tol=a.tol, k=a.k, method=a.method,

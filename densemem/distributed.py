@@ -86,7 +86,8 @@ import os
 import threading
 import time
 import uuid
-from typing import Any, Callable, Literal
+from collections.abc import Callable
+from typing import Any, Literal
 
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field
@@ -98,7 +99,7 @@ from ._validation import check_nonneg_float, check_positive_int
 from .errors import InputTypeError, InputValueError, MissingExtraError
 from .results import NearestResult, RetrievalResult
 
-__all__ = ["retrieve", "nearest", "ClusterSpec"]
+__all__ = ["ClusterSpec", "nearest", "retrieve"]
 
 _CACHE: dict[str, tuple[str, Any]] = {}  # per worker process: folder -> (checksum, memory)
 _LOCKS: dict[str, threading.Lock] = {}
@@ -139,7 +140,7 @@ def _worker_threads() -> int:
 
 def _shard(folder: str, checksum: str, number: int, verify: bool, where: str) -> Any:
     """This process's copy of a shard: loaded (memory-mapped) once per checksum."""
-    from .sharding import load_shard
+    from ._shard_store import load_shard
 
     with _GUARD:
         lock = _LOCKS.setdefault(folder, threading.Lock())
@@ -204,10 +205,10 @@ class _Session:
                 f"like 'tcp://host:8786'; got {type(client).__name__}."
             )
 
-    def __enter__(self) -> "_Session":
+    def __enter__(self) -> _Session:
         return self
 
-    def __exit__(self, *exc: Any) -> None:
+    def __exit__(self, *exc: object) -> None:
         if self.owned:
             self.client.close()
 

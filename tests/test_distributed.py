@@ -17,7 +17,13 @@ import faiss
 import numpy as np
 import pytest
 
-from densemem import DenseMemory, InputTypeError, InputValueError, MissingExtraError, StoreFormatError
+from densemem import (
+    DenseMemory,
+    InputTypeError,
+    InputValueError,
+    MissingExtraError,
+    StoreFormatError,
+)
 from densemem import distributed as D
 from densemem.sharding import shard_memory
 
