@@ -14,7 +14,7 @@ The job modules keep their report and option classes:
 from .binary import BinaryMemory, BinaryRetrieval, DenseBinaryMemory
 from .capacity import capacity_curve, estimate_capacity, robustness_curve
 from .dense import DenseMemory
-from .duplicates import DuplicatePlan, find_duplicates
+from .duplicates import DuplicateGroup, DuplicatePlan, find_duplicates
 from .errors import (
     DenseMemError,
     DenseMemWarning,
@@ -47,6 +47,7 @@ __all__ = [
     "tune_beta",
     "find_duplicates",
     "DuplicatePlan",
+    "DuplicateGroup",
     "estimate_capacity",
     "capacity_curve",
     "robustness_curve",

@@ -31,6 +31,7 @@ PUBLIC = [
     "tune_beta",
     "find_duplicates",
     "DuplicatePlan",
+    "DuplicateGroup",
     "estimate_capacity",
     "capacity_curve",
     "robustness_curve",
