@@ -9,7 +9,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
 
 __all__ = [
     "BuildSpec",
@@ -39,6 +39,8 @@ class BuildSpec(_Spec):
     beta: float = Field(1.0, gt=0, allow_inf_nan=False)
     index: Literal["hnsw", "ivf"] | None = None
     overwrite: bool = False
+    shards: int | None = Field(None, ge=1)
+    shard_by: Literal["round_robin", "contiguous"] = "round_robin"
 
 
 class InfoSpec(_Spec):
@@ -56,6 +58,16 @@ class _QuerySpec(_Spec):
     k: int | None = Field(None, ge=1)
     mmap: bool = False
     chunk: int = Field(4096, ge=1)
+    scheduler: str | None = Field(None, pattern=r"^(tcp|tls|inproc|ws|wss|ucx)://\S+$")
+
+    @field_validator("scheduler", mode="before")
+    @classmethod
+    def _address(cls, v: Any) -> Any:
+        if v is not None and "://" not in str(v):
+            raise ValueError("must be a Dask scheduler address such as tcp://host:8786")
+        return v
+    retries: int = Field(2, ge=0)
+    timeout: float | None = Field(None, gt=0, allow_inf_nan=False)
 
 
 class RetrieveSpec(_QuerySpec):
@@ -102,5 +114,5 @@ def make_spec(model: type[BaseModel], values: dict[str, Any], *, positional: tup
         name = str(err["loc"][0]) if err["loc"] else "?"
         msg = err["msg"]
         msg = msg[0].lower() + msg[1:] if msg else msg
-        msg = msg.replace("input should be", "must be")
+        msg = msg.replace("input should be", "must be").replace("value error, ", "")
         raise SpecError(f"{_flag(name, set(positional))} {msg}; got {err.get('input')!r}.") from None

@@ -65,6 +65,10 @@ def _query_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("-k", "--k", type=int, help="stored items to list per query (default 10, or all when fewer)")
     p.add_argument("--mmap", action="store_true", help="memory-map the store instead of reading it")
     p.add_argument("--chunk", type=int, default=4096, help="queries per library call (default 4096)")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="sharded store: run on this Dask scheduler, e.g. tcp://host:8786 (needs densemem[dist])")
+    p.add_argument("--retries", type=int, default=2, help="with --scheduler: Dask retries per shard task (default 2)")
+    p.add_argument("--timeout", type=float, help="with --scheduler: give up after this many seconds")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -91,6 +95,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--beta", type=float, default=1.0, help="default inverse temperature (default 1.0)")
     p.add_argument("--index", choices=["hnsw", "ivf"], help="also build and store a candidate index")
     p.add_argument("--overwrite", action="store_true", help="replace an existing store at STORE")
+    p.add_argument("--shards", type=int, help="split into this many shard folders (a sharded store)")
+    p.add_argument("--shard-by", choices=["round_robin", "contiguous"], default="round_robin",
+                   help="how rows go to shards (default round_robin)")
     p.set_defaults(run=_run_build)
 
     p = _sub(subs, "info", "describe a store folder and check its files", "densemem info archive-store --json")
@@ -141,6 +148,18 @@ def _run_build(a: argparse.Namespace) -> Result:
     s = make_spec(BuildSpec, vars(a), positional=("input", "store"))
     emb = read_embeddings(s.input, column=s.column, id_column=s.id_column)
     mem = DenseMemory.from_array(emb.vectors, emb.ids, normalize=s.normalize, beta=s.beta)
+    if s.shards is not None:
+        if s.index:
+            raise SpecError("--index cannot be combined with --shards (shards use exact or certified retrieval).")
+        from .sharding import shard_memory
+
+        shard_memory(mem, s.store, s.shards, by=s.shard_by, overwrite=s.overwrite)
+        data = {"store": str(s.store), "source": emb.to_dict(), "count": len(mem), "dim": mem.dim,
+                "normalize": mem.normalize, "beta": mem.beta, "shards": s.shards, "shard_by": s.shard_by}
+        text = out.table(["store", "patterns", "dim", "normalize", "beta", "shards"],
+                         [[str(s.store), len(mem), mem.dim, mem.normalize, mem.beta, s.shards]],
+                         title=f"built from {emb.source} ({emb.kind})")
+        return data, text
     index = mem.build_index(s.index) if s.index else None
     mem.save(s.store, overwrite=s.overwrite)
     data = {"store": str(s.store), "source": emb.to_dict(), "count": len(mem), "dim": mem.dim,
@@ -155,6 +174,12 @@ def _run_info(a: argparse.Namespace) -> Result:
     from .storage import describe_store
 
     s = make_spec(InfoSpec, vars(a), positional=("store",))
+    if _is_sharded(s.store):
+        from .sharding import open_sharded
+
+        sinfo = open_sharded(s.store, verify=s.verify).describe().to_dict()
+        rows = [[k, v] for k, v in sinfo.items() if not isinstance(v, (list, dict))]
+        return sinfo, out.table(["field", "value"], rows, title=f"sharded store {s.store}")
     info = describe_store(s.store, verify=s.verify)
     rows = [[name, e.get("bytes"), e.get("sha256", "")[:16]] for name, e in sorted(info.files.items())]
     head = out.table(
@@ -166,14 +191,53 @@ def _run_info(a: argparse.Namespace) -> Result:
     return info.to_dict(), head + "\n\n" + out.table(["file", "bytes", "sha256 (first 16)"], rows)
 
 
-def _load_queries(s: Any) -> tuple[Any, np.ndarray, list[Any]]:
+def _is_sharded(store: Any) -> bool:
+    from ._shard_store import TOP_MANIFEST
+
+    return (Path(store) / TOP_MANIFEST).is_file()
+
+
+class _Cluster:
+    """A sharded store run on a Dask scheduler: the two calls the commands use."""
+
+    def __init__(self, s: Any) -> None:
+        self.s = s
+
+    def retrieve(self, q: np.ndarray, beta: Any, **kw: Any) -> Any:
+        from . import distributed
+
+        return distributed.retrieve(self.s.store, q, beta, client=self.s.scheduler,
+                                    retries=self.s.retries, timeout=self.s.timeout, **kw)
+
+    def nearest(self, q: np.ndarray, k: Any, **kw: Any) -> Any:
+        from . import distributed
+
+        return distributed.nearest(self.s.store, q, k, client=self.s.scheduler,
+                                   retries=self.s.retries, timeout=self.s.timeout, **kw)
+
+
+def _open_store(s: Any) -> tuple[Any, float]:
+    """(memory-like, default beta): a store, a sharded store, or a sharded store on a cluster."""
     from .dense import DenseMemory
+
+    if _is_sharded(s.store):
+        from .sharding import open_sharded
+
+        sharded = open_sharded(s.store)
+        return (_Cluster(s) if s.scheduler else sharded), sharded.beta
+    if s.scheduler:
+        raise SpecError(f"--scheduler needs a sharded store (built with --shards); {str(s.store)!r} is a single store.")
+    mem = DenseMemory.load(s.store, mmap=s.mmap)
+    return mem, mem.beta
+
+
+def _load_queries(s: Any) -> tuple[Any, np.ndarray, list[Any], float]:
     from .readers import read_embeddings
 
-    mem = DenseMemory.load(s.store, mmap=s.mmap)
+    mem, default_beta = _open_store(s)
     emb = read_embeddings(s.queries, column=s.column, id_column=s.id_column)
     names = emb.ids.tolist() if emb.ids is not None else list(range(emb.vectors.shape[0]))
-    return mem, emb.vectors, names
+    return mem, emb.vectors, names, default_beta
 
 
 def _chunks(q: np.ndarray, s: Any, a: argparse.Namespace, desc: str) -> Any:
@@ -185,7 +249,7 @@ def _run_retrieve(a: argparse.Namespace) -> Result:
     s = make_spec(RetrieveSpec, vars(a), positional=("store", "queries"))
     if s.states_out is not None and (s.states_out.exists() or s.states_out.suffix != ".npy"):
         raise SpecError(f"--states-out must name a new .npy file; got {str(s.states_out)!r}.")
-    mem, q, names = _load_queries(s)
+    mem, q, names, default_beta = _load_queries(s)
     parts = [mem.retrieve(q[i:i + s.chunk], s.beta, steps=s.steps, tol=s.tol, k=s.k, method=s.method)
              for i in _chunks(q, s, a, "retrieve")]
     states = np.concatenate([r.states for r in parts])
@@ -199,7 +263,7 @@ def _run_retrieve(a: argparse.Namespace) -> Result:
             recs.append({"query": name, "top_ids": r.top_ids[j], "top_weights": r.top_weights[j],
                          "energy": energy, "converged": bool(r.converged[j]), "steps": r.steps})
             rows.append([name, _tops(r.top_ids[j], r.top_weights[j]), energy, bool(r.converged[j])])
-    beta = mem.beta if s.beta is None else s.beta
+    beta = default_beta if s.beta is None else s.beta
     data = {"store": str(s.store), "beta": beta, "method": parts[0].method, "queries": recs,
             "states_out": None if s.states_out is None else str(s.states_out)}
     text = out.table(["query", "top ids (weight)", "energy", "converged"], rows,
@@ -214,7 +278,9 @@ def _tops(ids: np.ndarray, weights: np.ndarray, show: int = 3) -> str:
 
 def _run_nearest(a: argparse.Namespace) -> Result:
     s = make_spec(NearestSpec, vars(a), positional=("store", "queries"))
-    mem, q, names = _load_queries(s)
+    mem, q, names, _ = _load_queries(s)
+    if s.index and _is_sharded(s.store):
+        raise SpecError("--index is not available on a sharded store; shards use faiss exact search.")
     kw = {"index": True} if s.index else {}
     parts = [mem.nearest(q[i:i + s.chunk], s.k, metric=s.metric, **kw) for i in _chunks(q, s, a, "nearest")]
     ids = np.concatenate([r.ids for r in parts])

@@ -250,7 +250,7 @@ class _Session:
     def _tree(self, futs: list[Any], merge: Callable[[Any, Any], Any], made: list[Any], tag: str) -> Any:
         """Merge partials two at a time as they finish; a failed shard raises at once."""
         ready: list[Any] = []
-        done = self.dd.as_completed(futs, timeout=self._left())
+        done = self.dd.as_completed(futs, timeout=self._left(), loop=self.client.loop)
         n = 0
         for fut in done:
             if fut.status == "error":

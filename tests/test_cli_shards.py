@@ -1,0 +1,77 @@
+"""``densemem build --shards`` and ``--scheduler``: the CLI over sharded stores.
+
+Reference: the single-store CLI run on the same data (itself checked against scipy in
+test_cli.py), and a faiss IndexFlatIP top-1 (exact search). Shards merge exactly
+(CHECKS.md entry 11), so answers must agree.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import faiss
+import numpy as np
+import pytest
+
+
+def _cli(*args: str, cwd: Path) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "densemem", *args], cwd=cwd, capture_output=True, text=True, timeout=240)
+
+
+@pytest.fixture(scope="module")
+def data(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    d = tmp_path_factory.mktemp("shardcli")
+    rng = np.random.default_rng(7)
+    x = rng.standard_normal((3001, 24)).astype(np.float32)
+    np.save(d / "x.npy", x)
+    np.save(d / "q.npy", x[:6] + 0.05 * rng.standard_normal((6, 24)).astype(np.float32))
+    assert _cli("build", "x.npy", "one", "--normalize", "--beta", "25", cwd=d).returncode == 0
+    r = _cli("build", "x.npy", "sh", "--normalize", "--beta", "25", "--shards", "3", cwd=d)
+    assert r.returncode == 0, r.stderr
+    return d
+
+
+def test_sharded_build_info_and_retrieve_equal_single_store(data: Path) -> None:
+    info = _cli("info", "sh", "--json", cwd=data)
+    assert info.returncode == 0, info.stderr
+    assert json.loads(info.stdout)["n_shards"] == 3
+    one = json.loads(_cli("retrieve", "one", "q.npy", "-k", "4", "--json", cwd=data).stdout)
+    sh = json.loads(_cli("retrieve", "sh", "q.npy", "-k", "4", "--json", cwd=data).stdout)
+    for a, b in zip(one["queries"], sh["queries"]):
+        assert a["top_ids"] == b["top_ids"]
+        np.testing.assert_allclose(a["top_weights"], b["top_weights"], rtol=1e-4, atol=1e-7)
+    # faiss exact search on the normalised rows names the same top-1 (beta 25 is sharp here).
+    x = np.load(data / "x.npy")
+    q = np.load(data / "q.npy")
+    xn = x / np.linalg.norm(x, axis=1, keepdims=True)
+    qn = q / np.linalg.norm(q, axis=1, keepdims=True)
+    _, top = faiss.knn(qn, xn, 1, metric=faiss.METRIC_INNER_PRODUCT)
+    assert [rec["top_ids"][0] for rec in sh["queries"]] == top[:, 0].tolist()
+
+
+def test_scheduler_run_equals_local(data: Path) -> None:
+    dist = pytest.importorskip("distributed")
+    with dist.LocalCluster(n_workers=1, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
+        r = _cli("nearest", "sh", "q.npy", "-k", "3", "--json", "--scheduler", cluster.scheduler_address, cwd=data)
+    assert r.returncode == 0, r.stderr
+    local = json.loads(_cli("nearest", "sh", "q.npy", "-k", "3", "--json", cwd=data).stdout)
+    assert [q["ids"] for q in json.loads(r.stdout)["queries"]] == [q["ids"] for q in local["queries"]]
+
+
+@pytest.mark.parametrize(
+    "args, message",
+    [
+        (("retrieve", "sh", "q.npy", "--scheduler", "nowhere"), "--scheduler must be a Dask scheduler address"),
+        (("retrieve", "one", "q.npy", "--scheduler", "tcp://127.0.0.1:1"), "--scheduler needs a sharded store"),
+        (("build", "x.npy", "bad", "--shards", "0"), "--shards must be greater than or equal to 1"),
+        (("build", "x.npy", "bad", "--shards", "2", "--index", "hnsw"), "--index cannot be combined with --shards"),
+    ],
+)
+def test_sharded_usage_errors_exit_2_with_one_line(data: Path, args: tuple, message: str) -> None:
+    r = _cli(*args, cwd=data)
+    assert r.returncode == 2, (r.returncode, r.stderr)
+    assert message in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
