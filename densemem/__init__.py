@@ -27,6 +27,7 @@ from .errors import (
 )
 from .readers import Embeddings, read_embeddings
 from .results import NearestResult, RetrievalResult
+from .sharding import ShardedMemory, open_sharded, shard_memory
 from .storage import load_memory, save_memory
 from .tuning import choose_beta, predict_beta, separation, sweep_beta, tune_beta
 
@@ -54,6 +55,9 @@ __all__ = [
     "save_memory",
     "load_memory",
     "read_embeddings",
+    "shard_memory",
+    "open_sharded",
+    "ShardedMemory",
     "Embeddings",
     "DenseMemError",
     "DenseMemWarning",
