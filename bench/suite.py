@@ -6,7 +6,7 @@
 
 Invented data (a seeded Gaussian mixture shaped like embeddings; --dataset for the
 others). Rows: faiss Flat (ground truth), HNSW per efSearch, IVF per nprobe; densemem
-exact, certified and index-backed retrieval (on the same HNSW/IVF index) per beta; with
+exact, certified, auto and index-backed retrieval (on the same HNSW/IVF index) per beta; with
 --binary, sign codes in faiss IndexBinaryFlat and the binary memories. Each row: recall@1
 and recall@10 against faiss Flat, the state error against exact retrieval, the median
 time after one warm-up, queries/s, the ratio to its faiss baseline from this run, build
@@ -29,7 +29,7 @@ RESULTS = Path(__file__).resolve().parent / "results"
 def _ratios(rep: BenchReport) -> str:
     n_max = max(r.n for r in rep.records)
     keep = [r for r in rep.records if r.n == n_max and r.time_ratio is not None
-            and (r.method in ("exact", "certified") or "ef=64" in r.label or "nprobe=16" in r.label
+            and (r.method in ("exact", "certified", "auto") or "ef=64" in r.label or "nprobe=16" in r.label
                  or r.method.startswith("binary-"))]
     return "; ".join(f"{r.method} {r.label} / {r.baseline}: {r.time_ratio:.2f}" for r in keep)
 

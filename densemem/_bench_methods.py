@@ -295,7 +295,7 @@ def count_rows(spec: BenchSpec, n: int) -> int:
     nlist = spec.nlist or default_settings("ivf", n).nlist
     n_probe = len({min(p, nlist) for p in spec.nprobe})
     nb, ne = len(spec.betas), len(spec.ef_search)
-    rows = 1 + nb * (("exact" in planned) + ("certified" in planned))
+    rows = 1 + nb * sum(m in planned for m in ("exact", "certified", "auto"))
     rows += ne * (("faiss-hnsw" in planned) + nb * ("index-hnsw" in planned))
     rows += n_probe * (("faiss-ivf" in planned) + nb * ("index-ivf" in planned))
     return rows + ((1 + len(spec.binary_models)) if spec.include_binary else 0)
@@ -306,7 +306,7 @@ def run_rows(spec: BenchSpec, data: BenchData, tick: Callable[[str], None]) -> l
     run = _Run(spec, data, tick)
     planned = spec.planned_methods()
     _flat(run)
-    for method in ("exact", "certified"):
+    for method in ("exact", "certified", "auto"):
         if method in planned:
             _dense(run, method)
     if "faiss-hnsw" in planned:

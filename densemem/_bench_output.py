@@ -25,11 +25,11 @@ def _f(v: Any, spec: str) -> str:
 def format_table(records: Sequence[BenchRecord], ks: Sequence[int], title: str = "") -> str:
     """Fixed-width text table of ``records``, one block per N."""
     heads = ["method", "setting"] + [f"recall@{k}" for k in ks] + [
-        "state err", "time ms", "queries/s", "x base", "baseline", "build s", "py MiB", "RSS MiB"]
+        "state err", "fell back", "time ms", "queries/s", "x base", "baseline", "build s", "py MiB", "RSS MiB"]
     rows = []
     for r in records:
         rows.append([r.method, r.label] + [_f(r.recall.get(k), ".4f") for k in ks] + [
-            _f(r.state_error_max, ".2e"), f"{r.time_s * 1e3:.1f}", f"{r.queries_per_s:,.0f}",
+            _f(r.state_error_max, ".2e"), _f(r.fell_back, ".2f"), f"{r.time_s * 1e3:.1f}", f"{r.queries_per_s:,.0f}",
             _f(r.time_ratio, ".2f"), r.baseline or "-", f"{r.build_s:.2f}", f"{r.peak_python_mib:.1f}",
             f"{r.peak_rss_mib:.1f}"])
     widths = [max(len(h), *(len(row[j]) for row in rows)) if rows else len(h) for j, h in enumerate(heads)]

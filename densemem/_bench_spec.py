@@ -34,7 +34,9 @@ __all__ = [
 SCHEMA = "densemem-bench/1"
 GENERATED = ("unit", "clustered")
 #: Method families besides the binary ones: faiss baselines and densemem retrieval paths.
-DENSE_METHODS = ("faiss-flat", "faiss-hnsw", "faiss-ivf", "exact", "certified", "index-hnsw", "index-ivf")
+DENSE_METHODS = (
+    "faiss-flat", "faiss-hnsw", "faiss-ivf", "exact", "certified", "auto", "index-hnsw", "index-ivf",
+)
 BINARY_MODELS = ("hebbian", "storkey", "pseudo_inverse", "polynomial", "exponential")
 #: Every ``method`` a record may carry.
 RECORD_METHODS = DENSE_METHODS + ("faiss-binary-flat",) + tuple(f"binary-{m}" for m in BINARY_MODELS)
@@ -75,7 +77,8 @@ class BenchSpec(_Model):
 
     Methods: faiss baselines ("faiss-flat", "faiss-hnsw" per ``ef_search``,
     "faiss-ivf" per ``nprobe``) and densemem retrieval ("exact", "certified",
-    "index-hnsw", "index-ivf", each per ``betas``). A densemem method brings
+    "auto" (the default path of ``retrieve``), "index-hnsw", "index-ivf", each
+    per ``betas``). A densemem method brings
     its faiss baseline along. ``include_binary`` adds sign-quantised data (signs
     of the rows minus their mean) with
     faiss ``IndexBinaryFlat`` and the ``binary_models``.

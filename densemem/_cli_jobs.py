@@ -162,7 +162,7 @@ def add_bench(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
     p.add_argument("--ef-search", nargs="+", type=int, help="HNSW efSearch values (default 16 64 256)")
     p.add_argument("--nprobe", nargs="+", type=int, help="IVF nprobe values (default 4 16 64)")
     p.add_argument("--methods", nargs="+", help="subset of faiss-flat faiss-hnsw faiss-ivf exact certified "
-                   "index-hnsw index-ivf (default all)")
+                   "auto index-hnsw index-ivf (default all)")
     p.add_argument("--binary", action="store_true", help="add sign-quantised data and the binary memories")
     p.add_argument("--binary-models", nargs="+", help="binary memories (default hebbian exponential)")
     p.add_argument("--repeats", type=int, help="timed calls per row, median kept (default 5)")

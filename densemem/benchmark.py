@@ -10,7 +10,7 @@ table, writes a JSON document (:class:`BenchResults`, schema
 ``"densemem-bench/1"``) and draws PNG plots.
 
 Methods: faiss Flat (the ground truth), HNSW (per ``ef_search``) and IVF (per
-``nprobe``); densemem "exact", "certified" and index-backed retrieval over the
+``nprobe``); densemem "exact", "certified", "auto" and index-backed retrieval over the
 same HNSW/IVF index (per ``beta``); with ``include_binary``, sign-quantised
 data in faiss ``IndexBinaryFlat`` and the binary memories.
 

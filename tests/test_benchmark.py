@@ -135,8 +135,9 @@ def test_quality_of_each_densemem_row(tiny: BenchReport) -> None:
     for r in tiny.records:
         if r.method == "exact":  # against a float64 NumPy softmax (derived reference)
             assert r.state_error_max < 1e-5 and r.recall[10] == 1.0
-        if r.method == "certified" and r.beta == 64:
-            # certified: omitted mass <= tol_mass = 1e-6, so the state is within 2 M tol_mass of exact
+        if r.method in ("certified", "auto"):
+            # certified (and auto, which is certified or exact per query): omitted softmax mass
+            # <= tol_mass = 1e-6, so the state is within 2 M tol_mass of exact (derived bound)
             assert r.state_error_max < 1e-5
         if r.library == "densemem":
             assert r.baseline is not None and r.time_ratio == pytest.approx(r.time_s / r.baseline_time_s)
@@ -161,7 +162,7 @@ def test_tiny_run_end_to_end(tmp_path) -> None:
                         binary_models=["hebbian"])
     assert sorted({r.n for r in rep.records}) == [1000, 2000]
     text = rep.table()
-    for word in ("recall@1", "recall@10", "queries/s", "x base", "faiss-flat", "exact", "certified",
+    for word in ("recall@1", "recall@10", "queries/s", "x base", "faiss-flat", "exact", "certified", "auto",
                  "index-hnsw", "index-ivf", "binary-hebbian", "N=2,000"):
         assert word in text
     files = rep.write(tmp_path)
