@@ -38,7 +38,8 @@ def _unit(rng: np.random.Generator, n: int, d: int) -> np.ndarray:
     x = np.empty((n, d), dtype=np.float32)
     for a in range(0, n, _CHUNK):
         b = min(n, a + _CHUNK)
-        x[a:b] = rng.standard_normal((b - a, d), dtype=np.float32)
+        g = rng.standard_normal((b - a, d), dtype=np.float32)
+        x[a:b] = g / np.linalg.norm(g, axis=1, keepdims=True)
     return x
 
 

@@ -104,16 +104,18 @@ def test_records_validate_and_bad_records_fail(tiny: BenchReport) -> None:
     rec = next(r for r in tiny.records if r.method == "exact").model_dump()
     BenchRecord(**rec)
     bad = [
-        {"recall": {1: 1.5, 10: 1.0}},  # a recall above 1
-        {"queries_per_s": rec["queries_per_s"] * 2},  # speed that does not match the time
-        {"time_ratio": rec["time_ratio"] * 1.5},  # a ratio that does not match the baseline time
-        {"baseline": None},  # a ratio without its baseline
-        {"time_s": rec["time_s"] * 3},  # not the median of times_s
-        {"method": "faiss-hnsw"},  # densemem row claiming a faiss method
-        {"unknown": 1},
+        ({"recall": {1: 1.5, 10: 1.0}}, "less than or equal to 1"),  # a recall above 1
+        ({"recall": {}}, "`recall` must hold at least recall@1"),
+        ({"times_s": rec["times_s"] * 2}, "`times_s` holds 2 times but repeats=1"),
+        ({"queries_per_s": rec["queries_per_s"] * 2}, "`queries_per_s` must equal n_queries / time_s"),
+        ({"time_ratio": rec["time_ratio"] * 1.5}, "`time_ratio` must equal time_s / baseline_time_s"),
+        ({"baseline": None}, "come together or not at all"),  # a ratio without its baseline
+        ({"time_s": rec["time_s"] * 3}, "is not the median of `times_s`"),
+        ({"method": "faiss-hnsw"}, "is a faiss method, not densemem"),
+        ({"unknown": 1}, "Extra inputs are not permitted"),
     ]
-    for change in bad:
-        with pytest.raises(ValidationError):
+    for change, message in bad:
+        with pytest.raises(ValidationError, match=message):
             BenchRecord(**{**rec, **change})
     broken = tiny.to_dict()
     broken["records"][0]["recall"]["1"] = -0.1
@@ -153,6 +155,20 @@ def test_float64_reference_matches_scipy_softmax(rng: np.random.Generator) -> No
     x64, q64 = x.astype(np.float64), q.astype(np.float64)
     ref = softmax(7.0 * q64 @ x64.T, axis=1) @ x64  # scipy.special.softmax reference (CHECKS.md 13)
     np.testing.assert_allclose(float64_states(x, q, 7.0, chunk=64), ref, rtol=1e-10, atol=1e-12)
+
+
+def test_query_corruption_models() -> None:
+    from densemem._bench_data import load_data
+
+    # mask: a fraction `level` of coordinates zeroed (Binomial(200 * 64, 0.3): sd 0.004)
+    data = load_data(BenchSpec(dataset="unit", n=500, dim=64, n_queries=200, corruption="mask", level=0.3), 500, 0)
+    assert 0.27 < float(np.mean(data.q == 0)) < 0.33
+    # gaussian: noise norm about level * ||x||; the source row found by faiss exact search
+    spec = BenchSpec(dataset="unit", n=500, dim=64, n_queries=200, level=0.5, normalize=False)
+    data = load_data(spec, 500, 0)
+    _, src = faiss.knn(data.q, data.x, 1, metric=faiss.METRIC_L2)
+    rel = np.linalg.norm(data.q - data.x[src[:, 0]], axis=1) / np.linalg.norm(data.x[src[:, 0]], axis=1)
+    assert abs(float(np.median(rel)) - 0.5) < 0.03
 
 
 # ------------------------------------------------------------------ end to end
