@@ -59,6 +59,7 @@ from ._validation import (
     check_nonneg_float,
     check_positive_int,
     check_queries,
+    unit_rows,
 )
 from .errors import InputValueError
 from .results import NearestResult, RetrievalResult
@@ -255,11 +256,7 @@ def prepare_queries(queries: Any, layout: Layout, *, where: str) -> tuple[np.nda
         raise InputValueError(f"{where}: the sharded memory is empty; add patterns first.")
     q, was_1d = check_queries(queries, where=where, dim=layout.dim)
     if layout.normalize:
-        norms = np.linalg.norm(q, axis=1)
-        zero = np.flatnonzero(norms == 0)
-        if zero.size:
-            raise InputValueError(f"{where}: query row {int(zero[0])} has zero norm and cannot be normalised.")
-        q = (q / norms[:, None]).astype(np.float32)
+        q = unit_rows(q, where=where, what="query")
     return q, was_1d
 
 

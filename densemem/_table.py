@@ -10,7 +10,7 @@ from typing import Any
 
 import numpy as np
 
-from ._validation import check_ids, check_patterns, unknown_id_error
+from ._validation import check_ids, check_patterns, unit_rows, unknown_id_error
 from .errors import InputTypeError, InputValueError
 
 __all__ = ["PatternTable"]
@@ -62,14 +62,7 @@ class PatternTable:
         """Validate new rows and ids against the table; change nothing."""
         x = check_patterns(patterns, where=where, dim=self.dim)
         if self.normalize:
-            norms = np.linalg.norm(x, axis=1)
-            zero = np.flatnonzero(norms == 0)
-            if zero.size:
-                raise InputValueError(
-                    f"{where}: `patterns` row {int(zero[0])} has zero norm and cannot be "
-                    "normalised (normalize=True); drop it first."
-                )
-            x = x / norms[:, None]
+            x = unit_rows(x, where=where, what="`patterns`")
         n = x.shape[0]
         if ids is None:
             if self._ids.dtype.kind == "U" and len(self):

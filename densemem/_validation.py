@@ -15,6 +15,8 @@ import numpy as np
 from .errors import InputTypeError, InputValueError, UnknownIdError
 
 __all__ = [
+    "unit_rows",
+    "check_score_range",
     "as_float_matrix",
     "check_patterns",
     "check_queries",
@@ -194,6 +196,35 @@ def check_ids(ids: Any, *, n: int, where: str, name: str = "ids") -> np.ndarray:
         dup = uniq[counts > 1][0].item()
         raise InputValueError(f"{where}: `{name}` repeats the id {dup!r}; ids must be unique.")
     return arr
+
+
+def unit_rows(x: np.ndarray, *, where: str, what: str) -> np.ndarray:
+    """L2-normalise float32 rows (norms in float64, so huge entries do not overflow).
+
+    ``what`` names the rows in the error, e.g. "query" or "`patterns`".
+    """
+    norms = np.sqrt(np.einsum("ij,ij->i", x.astype(np.float64), x.astype(np.float64)))
+    zero = np.flatnonzero(norms == 0)
+    if zero.size:
+        raise InputValueError(
+            f"{where}: {what} row {int(zero[0])} has zero norm and cannot be normalised (normalize=True); "
+            "drop it first."
+        )
+    return (x / norms[:, None]).astype(np.float32)
+
+
+_SCORE_LIMIT = 1e37  # float32 scores overflow near 3.4e38; keep a margin for sums
+
+
+def check_score_range(beta: float, query_norm: float, max_norm: float, *, where: str) -> None:
+    """Refuse a beta whose scores beta * |q| * M would overflow float32."""
+    top = beta * query_norm * max_norm
+    if not np.isfinite(top) or top > _SCORE_LIMIT:
+        limit = _SCORE_LIMIT / max(query_norm * max_norm, np.finfo(np.float64).tiny)
+        raise InputValueError(
+            f"{where}: `beta` = {beta:g} times the largest query norm ({query_norm:.3g}) and stored norm "
+            f"({max_norm:.3g}) exceeds the float32 score range; use beta <= {limit:.3g}."
+        )
 
 
 def unknown_id_error(where: str, missing: Any) -> UnknownIdError:

@@ -20,14 +20,27 @@ from ._validation import (
     check_nonneg_float,
     check_positive_int,
     check_queries,
+    check_score_range,
+    unit_rows,
 )
-from .errors import DenseMemWarning, IndexStaleError, InputValueError
+from .errors import DenseMemWarning, IndexStaleError, InputTypeError, InputValueError
 from .results import NearestResult, RetrievalResult
 
 __all__ = ["DenseMemory"]
 
 Method = Literal["auto", "exact", "certified", "index"]
 _METHODS = ("auto", "exact", "certified", "index")
+
+
+def _check_fraction(tol_mass: Any, *, where: str) -> float:
+    v = check_nonneg_float(tol_mass, name="tol_mass", where=where, strict=True)
+    if v >= 1:
+        raise InputValueError(f"{where}: `tol_mass` must be a fraction in (0, 1); got {tol_mass!r}.")
+    return v
+
+
+def _max_row_norm(x: np.ndarray) -> float:
+    return float(np.sqrt(np.max(np.einsum("ij,ij->i", x.astype(np.float64), x.astype(np.float64)))))
 
 
 class DenseMemory:
@@ -125,6 +138,10 @@ class DenseMemory:
             raise InputValueError(f"{where}: `patterns` must have at least one column; got shape {arr.shape}.")
         if arr is patterns:  # the table keeps its own copy; never alias the caller's buffer
             arr = arr.copy()
+        allowed = {"tile_mib", "n_threads"}
+        unknown = sorted(set(options) - allowed)
+        if unknown:
+            raise InputTypeError(f"{where}: unknown option(s) {unknown}; use normalize, beta, tile_mib or n_threads.")
         mem = cls(int(arr.shape[1]), normalize=normalize, beta=beta, **options)
         mem._add(arr, ids, where=where)
         return mem
@@ -287,13 +304,7 @@ class DenseMemory:
             raise InputValueError(f"{where}: the memory is empty; add patterns first.")
         q, was_1d = check_queries(queries, where=where, dim=self.dim)
         if self.normalize:
-            norms = np.linalg.norm(q, axis=1)
-            zero = np.flatnonzero(norms == 0)
-            if zero.size:
-                raise InputValueError(
-                    f"{where}: query row {int(zero[0])} has zero norm and cannot be normalised."
-                )
-            q = (q / norms[:, None]).astype(np.float32)
+            q = unit_rows(q, where=where, what="query")
         return q, was_1d
 
     def _reduce(
@@ -383,11 +394,12 @@ class DenseMemory:
         steps = check_positive_int(steps, name="steps", where=where)
         tol = check_nonneg_float(tol, name="tol", where=where)
         k = min(10, len(self)) if k is None else check_k(k, n=len(self), where=where)
+        check_score_range(beta, _max_row_norm(q), self.max_norm, where=where)
         if method not in _METHODS:
             raise InputValueError(f"{where}: unknown `method` {method!r}; use one of {', '.join(_METHODS)}.")
         opts: dict[str, Any] = {
             "certified": CertifiedOptions(
-                tol_mass=check_nonneg_float(tol_mass, name="tol_mass", where=where, strict=True),
+                tol_mass=_check_fraction(tol_mass, where=where),
                 k_max=check_positive_int(k_max, name="k_max", where=where),
                 tile_mib=self.tile_mib,
             ),
@@ -401,7 +413,7 @@ class DenseMemory:
         if measure is not False and method != "index":
             raise InputValueError(f"{where}: `measure` applies to method='index' only; got method={method!r}.")
         if not isinstance(measure, (bool, int, np.integer)):
-            raise InputValueError(f"{where}: `measure` must be True/False or a number of queries; got {measure!r}.")
+            raise InputTypeError(f"{where}: `measure` must be True/False or a number of queries; got {measure!r}.")
         if method == "index" and measure:
             n_sample = 256 if measure is True else check_positive_int(int(measure), name="measure", where=where)
             recall = R.candidate_recall(self, q, opts["n_candidates"], k, n_sample)
@@ -435,6 +447,7 @@ class DenseMemory:
             raise InputValueError(f"{where}: the memory is empty; add patterns first.")
         s, was_1d = check_queries(states, where=where, dim=self.dim, name="states")
         beta = self._beta if beta is None else check_beta(beta, where=where)
+        check_score_range(beta, _max_row_norm(s), self.max_norm, where=where)
         e = R.energy_of(self, s, beta, "exact", {})
         return float(e[0]) if was_1d else e
 

@@ -164,7 +164,7 @@ def test_string_query(mem: DenseMemory) -> None:
 
 def test_zero_query_cannot_be_normalised() -> None:
     m = DenseMemory.from_array(np.eye(2), normalize=True)
-    with pytest.raises(InputValueError, match=lit("DenseMemory.retrieve: query row 1 has zero norm and cannot be normalised.")):
+    with pytest.raises(InputValueError, match=lit("DenseMemory.retrieve: query row 1 has zero norm and cannot be normalised (normalize=True); drop it first.")):
         m.retrieve([[1.0, 0.0], [0.0, 0.0]], method="exact")
 
 
@@ -340,3 +340,47 @@ def test_remove_same_id_twice(smem: DenseMemory) -> None:
 def test_positions_unknown_id(mem: DenseMemory) -> None:
     with pytest.raises(UnknownIdError, match=lit("DenseMemory.positions: unknown id 99;")):
         mem.positions([1, 99])
+
+
+def test_beta_too_large_for_float32_scores() -> None:
+    # float32 overflows near 3.4e38 (IEEE 754 single precision, common practice): a beta whose
+    # scores beta * |q| * M pass 1e37 is refused instead of returning NaN.
+    m = DenseMemory.from_array(np.eye(3))
+    for call in (lambda: m.retrieve([1.0, 0.0, 0.0], beta=1e300), lambda: m.energy([1.0, 0.0, 0.0], beta=1e300)):
+        with pytest.raises(InputValueError, match=r"`beta` = 1e\+300 times the largest query norm \(1\) and stored norm \(1\) exceeds the float32 score range; use beta <= 1e\+37\."):
+            call()
+
+
+def test_normalize_huge_rows_are_not_zeroed() -> None:
+    # Norms of rows with entries near 1e20 overflow in float32 (max 3.4e38, common practice);
+    # they are computed in float64, so normalising keeps the direction (reference: numpy float64).
+    x = np.array([[3e20, 4e20], [1.0, 0.0]])
+    m = DenseMemory.from_array(x, normalize=True)
+    np.testing.assert_allclose(m.patterns[0], [0.6, 0.8], rtol=1e-6)
+    res = m.retrieve([[4e20, 3e20]], beta=50.0, k=2, method="exact")
+    np.testing.assert_allclose(np.linalg.norm(res.states[0]), 1.0, rtol=1e-3)
+
+
+def test_tol_mass_must_be_a_fraction() -> None:
+    m = DenseMemory.from_array(np.eye(3))
+    with pytest.raises(InputValueError, match=lit("DenseMemory.retrieve: `tol_mass` must be a fraction in (0, 1); got 2.")):
+        m.retrieve([1.0, 0.0, 0.0], tol_mass=2)
+
+
+def test_from_array_unknown_option() -> None:
+    with pytest.raises(InputTypeError, match=lit("DenseMemory.from_array: unknown option(s) ['foo']; use normalize, beta, tile_mib or n_threads.")):
+        DenseMemory.from_array(np.eye(2), foo=1)
+
+
+def test_measure_must_be_bool_or_int() -> None:
+    m = DenseMemory.from_array(np.eye(3))
+    m.build_index("hnsw", M=4)
+    with pytest.raises(InputTypeError, match=lit("DenseMemory.retrieve: `measure` must be True/False or a number of queries; got 'yes'.")):
+        m.retrieve([1.0, 0.0, 0.0], method="index", measure="yes")
+    with pytest.raises(InputValueError, match=lit("DenseMemory.retrieve: `measure` applies to method='index' only; got method='exact'.")):
+        m.retrieve([1.0, 0.0, 0.0], method="exact", measure=True)
+
+
+def test_from_array_zero_columns() -> None:
+    with pytest.raises(InputValueError, match=lit("DenseMemory.from_array: `patterns` must have at least one column; got shape (3, 0).")):
+        DenseMemory.from_array(np.zeros((3, 0)))
