@@ -11,6 +11,7 @@ The job modules keep their report and option classes:
 ``densemem.storage``, ``densemem.readers``.
 """
 
+from .benchmark import BenchReport, BenchSpec, recall_at_k, run_benchmark
 from .binary import BinaryMemory, BinaryRetrieval, DenseBinaryMemory
 from .capacity import capacity_curve, estimate_capacity, robustness_curve
 from .dense import DenseMemory
@@ -49,6 +50,10 @@ __all__ = [
     "find_duplicates",
     "DuplicatePlan",
     "DuplicateGroup",
+    "run_benchmark",
+    "BenchSpec",
+    "BenchReport",
+    "recall_at_k",
     "estimate_capacity",
     "capacity_curve",
     "robustness_curve",
