@@ -27,6 +27,21 @@ def median_time(fn: Callable[[], Any], repeats: int = 5, warmup: int = 1) -> flo
     return float(np.median(times))
 
 
+def paired_times(fn: Callable[[], Any], base: Callable[[], Any], repeats: int = 5) -> tuple[float, float]:
+    """Medians of ``fn`` and ``base`` timed back to back in each repeat (after one warm-up each)."""
+    fn()
+    base()
+    a, b = [], []
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        base()
+        b.append(time.perf_counter() - t0)
+        t0 = time.perf_counter()
+        fn()
+        a.append(time.perf_counter() - t0)
+    return float(np.median(a)), float(np.median(b))
+
+
 def peak_python_mib(fn: Callable[[], Any]) -> float:
     """Peak memory (MiB) traced by tracemalloc while ``fn`` runs (NumPy buffers included)."""
     tracemalloc.start()
