@@ -145,7 +145,9 @@ def _check_sphere_maps_into_itself(mem: densemem.DenseMemory, x: np.ndarray, rng
 
 
 def test_predicted_beta_is_conservative_random(rng: np.random.Generator) -> None:
-    # CHECKS.md entry 8 (from memory) + entry 7 (derived): at or above the predicted beta the
+    # CHECKS.md entry 8, the well-separated condition (from memory), with the separation
+    # Delta_i of entry 7 (definition from memory; entry 7's one-step bound is derived): at or
+    # above the predicted beta the
     # update maps the ball of radius 1/(beta N M) around x_i into itself; checked with exact
     # one-step retrieval from points on the ball's surface (random and towards the rival).
     x = unit_rows(rng, 60, 16)
@@ -160,8 +162,10 @@ def test_predicted_beta_is_conservative_digits(digits_unit: np.ndarray, rng: np.
 
 @pytest.mark.parametrize("data", ["random", "digits"])
 def test_one_step_bound_beta_is_conservative(data: str, rng: np.random.Generator, digits_unit: np.ndarray) -> None:
-    # CHECKS.md entry 7 (derived): ||f(xi) - x_i|| <= 2 M (N-1) exp(-beta (Delta_i - 2 M r)) for
-    # ||xi - x_i|| <= r, so at beta_bound the exact one-step error is within error_tol.
+    # CHECKS.md entry 7: the one-step bound (derived) ||f(xi) - x_i|| <= 2 M (N-1)
+    # exp(-beta (Delta_i - 2 M r)) for ||xi - x_i|| <= r, with the separation Delta_i defined
+    # as in Ramsauer et al. 2021 (definition from memory); at beta_bound the exact one-step
+    # error is within error_tol.
     x = unit_rows(rng, 80, 16) if data == "random" else np.ascontiguousarray(digits_unit[:200])
     radius = 0.02 if data == "random" else 1e-3
     mem = densemem.DenseMemory.from_array(x)
