@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 import sys
 
 import faiss
@@ -460,6 +461,16 @@ def small() -> densemem.DenseMemory:
 def test_errors(small: densemem.DenseMemory, call, error, match) -> None:
     with pytest.raises(error, match=match):
         call(small)
+
+
+@pytest.mark.parametrize("bad", ["flat", "HNSW", ["ivf"], 3])
+def test_separation_index_choice_error(small: densemem.DenseMemory, bad) -> None:
+    # the `index` choice check of _tuning_theory.separation: the full message, any bad value
+    want = r"^separation: `index` must be one of None, 'exact', 'hnsw', 'ivf'; got " + re.escape(repr(bad)) + r"\.$"
+    with pytest.raises(InputValueError, match=want):
+        tu.separation(small, index=bad)
+    with pytest.raises(InputValueError, match=r"`index` must be one of None, 'exact', 'hnsw', 'ivf'"):
+        tu.predict_beta(small, index=bad)  # forwarded to separation unchanged
 
 
 def test_plot_without_matplotlib(small: densemem.DenseMemory, monkeypatch, tmp_path) -> None:
