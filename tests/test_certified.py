@@ -36,6 +36,8 @@ from __future__ import annotations
 import faiss
 import numpy as np
 import pytest
+from _helpers import noisy_unit_copies
+from _helpers import unit_rows_f32 as _unit
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy.special import logsumexp, softmax
@@ -93,20 +95,6 @@ def faiss_top(x: np.ndarray, q: np.ndarray, k: int) -> tuple[np.ndarray, np.ndar
     index = faiss.IndexFlatIP(x.shape[1])
     index.add(np.ascontiguousarray(x, dtype=np.float32))
     return index.search(np.ascontiguousarray(q, dtype=np.float32), k)
-
-
-def _unit(a: np.ndarray) -> np.ndarray:
-    return (a / np.linalg.norm(a, axis=1, keepdims=True)).astype(np.float32)
-
-
-def noisy_unit_copies(rng: np.random.Generator, x: np.ndarray, rows: np.ndarray, cos: np.ndarray) -> np.ndarray:
-    """Unit queries at cosine ``cos`` to the unit stored rows ``x[rows]`` (invented test data)."""
-    target = x[rows].astype(np.float64)
-    g = rng.standard_normal(target.shape)
-    g -= np.sum(g * target, axis=1, keepdims=True) * target
-    g /= np.linalg.norm(g, axis=1, keepdims=True)
-    c = np.asarray(cos, np.float64).reshape(-1, 1)
-    return (c * target + np.sqrt(1.0 - c * c) * g).astype(np.float32)
 
 
 def check_certified_against_reference(mem: DenseMemory, x: np.ndarray, q: np.ndarray, beta: float, res, *,

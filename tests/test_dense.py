@@ -13,6 +13,7 @@ from __future__ import annotations
 import faiss
 import numpy as np
 import pytest
+from _helpers import unit_rows_f32 as _unit
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.special import logsumexp, softmax
@@ -46,10 +47,6 @@ def ref_energy(x: np.ndarray, states: np.ndarray, beta: float) -> np.ndarray:
 
 def _rand(rng: np.random.Generator, *shape: int, scale: float = 1.0) -> np.ndarray:
     return (scale * rng.standard_normal(shape)).astype(np.float32)
-
-
-def _unit(a: np.ndarray) -> np.ndarray:
-    return (a / np.linalg.norm(a, axis=1, keepdims=True)).astype(np.float32)
 
 
 def _assert_states_close(got: np.ndarray, want: np.ndarray, m: float, rtol: float = RTOL) -> None:
@@ -137,7 +134,8 @@ def _check_large_beta_top1(x: np.ndarray, q: np.ndarray, method: str) -> None:
 @pytest.mark.parametrize("method", METHODS)
 def test_large_beta_picks_faiss_top1_on_digits(digits_unit: np.ndarray, method: str) -> None:
     # Open data: scikit-learn's bundled digits, L2-normalised (CHECKS.md 25); reference:
-    # faiss IndexFlatIP (CHECKS.md 13); theorem: CHECKS.md 6/7 (derived).
+    # faiss IndexFlatIP (CHECKS.md 13); theorem: CHECKS.md 6 and entry 7's one-step bound
+    # (derived; the separation it uses is defined from memory).
     rng = np.random.default_rng(0)
     x = np.ascontiguousarray(digits_unit, dtype=np.float32)
     picks = rng.choice(x.shape[0], size=200, replace=False)
@@ -153,7 +151,8 @@ def unit_100k() -> np.ndarray:
 
 @pytest.mark.parametrize("method", METHODS)
 def test_large_beta_picks_faiss_top1_on_100k_unit_vectors(unit_100k: np.ndarray, method: str) -> None:
-    # Reference: faiss IndexFlatIP (CHECKS.md 13); theorem: CHECKS.md 6/7 (derived).
+    # Reference: faiss IndexFlatIP (CHECKS.md 13); theorem: CHECKS.md 6 and entry 7's one-step bound
+    # (derived; the separation it uses is defined from memory).
     # Noise of norm ~2 makes many queries' winner differ from the pattern they came from.
     rng = np.random.default_rng(1)
     x = unit_100k
@@ -574,8 +573,10 @@ def test_one_dimensional_query_shape_rule() -> None:
 
 
 def test_steps_converge_on_well_separated_data() -> None:
-    # Derived (CHECKS.md 7/8): orthonormal patterns have separation 1; at beta = 20 the
-    # fixed point near x_i is within 2 M (N-1) exp(-beta (1 - 2 |xi - x_i|)) of x_i.
+    # CHECKS.md 7/8: the separation Delta_i (entry 7) and the well-separated condition that
+    # promises convergence (entry 8) are from memory; entry 7's one-step bound is derived.
+    # Orthonormal patterns have Delta_i = 1 (M = 1, N = 5), so at beta = 20 the bound puts
+    # the fixed point near x_i within 2 M (N-1) exp(-beta (1 - 2 |xi - x_i|)) of x_i.
     rng = np.random.default_rng(16)
     x = np.eye(8, dtype=np.float32)[:5]
     picks = rng.integers(0, 5, size=6)

@@ -14,6 +14,8 @@ import warnings
 import faiss
 import numpy as np
 import pytest
+from _helpers import noisy_unit_copies
+from _helpers import unit_rows_f32 as _unit
 from scipy.special import softmax
 
 from densemem import DenseMemory
@@ -21,20 +23,6 @@ from densemem.errors import DenseMemWarning, IndexStaleError, InputTypeError, In
 
 
 # ----------------------------------------------------------------------------- helpers
-def _unit(a: np.ndarray) -> np.ndarray:
-    return (a / np.linalg.norm(a, axis=1, keepdims=True)).astype(np.float32)
-
-
-def noisy_unit_copies(rng: np.random.Generator, x: np.ndarray, rows: np.ndarray, cos: np.ndarray) -> np.ndarray:
-    """Unit queries at cosine ``cos`` to the unit stored rows ``x[rows]`` (invented test data)."""
-    target = x[rows].astype(np.float64)
-    g = rng.standard_normal(target.shape)
-    g -= np.sum(g * target, axis=1, keepdims=True) * target
-    g /= np.linalg.norm(g, axis=1, keepdims=True)
-    c = np.asarray(cos, np.float64).reshape(-1, 1)
-    return (c * target + np.sqrt(1.0 - c * c) * g).astype(np.float32)
-
-
 def flat_ip_search(x: np.ndarray, q: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
     """faiss IndexFlatIP exact inner-product search (CHECKS.md 13)."""
     index = faiss.IndexFlatIP(x.shape[1])
