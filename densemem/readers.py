@@ -16,8 +16,11 @@ Examples
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import os
+import zipfile
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -108,8 +111,10 @@ def read_embeddings(path: Any, *, column: str | None = None, id_column: str | in
     Raises
     ------
     InputValueError
-        Missing file, unknown suffix, ambiguous or unknown column, ragged or
-        null vectors, NaN/inf, non-numeric cells, repeated ids.
+        Missing file, unknown suffix, a file that is not valid in its format
+        (corrupt .npy/.npz/.parquet, CSV that is not UTF-8), object (pickled)
+        arrays, ambiguous or unknown column, ragged or null vectors, NaN/inf,
+        non-numeric cells, repeated ids.
     MissingExtraError
         A ``.parquet`` file without pyarrow installed.
 
@@ -138,53 +143,116 @@ def read_embeddings(path: Any, *, column: str | None = None, id_column: str | in
         raise InputValueError(f"{_WHERE}: `column` applies to .npz and .parquet files; got {column!r} for a .{kind} file.")
     reader = {"npy": _read_npy, "npz": _read_npz, "parquet": _read_parquet, "csv": _read_text, "tsv": _read_text}[kind]
     vectors, ids, col, idcol = reader(p, column, id_column)
-    x, _ = as_float_matrix(vectors, name=f"vectors in {p.name}", where=_WHERE)
+    with _about(f"the vector data in {p.name!r}"):
+        x, _ = as_float_matrix(vectors, name=_SUBJECT, where=_WHERE)
     if ids is not None:
-        ids = check_ids(ids, n=x.shape[0], where=_WHERE, name=f"ids in {p.name} ({idcol})")
+        with _about(f"the id column {idcol!r} in {p.name!r}"):
+            ids = check_ids(ids, n=x.shape[0], where=_WHERE, name=_SUBJECT)
     return Embeddings(vectors=x, ids=ids, source=str(p), kind=kind, column=col, id_column=idcol)
+
+
+_SUBJECT = "subject"
+
+
+@contextlib.contextmanager
+def _about(subject: str) -> Iterator[None]:
+    """Re-word the shared checks' "`subject` must ..." as "the vector data in 'x.npy' must ..."."""
+    try:
+        yield
+    except (InputValueError, InputTypeError) as exc:
+        if f"`{_SUBJECT}`" not in str(exc):
+            raise
+        raise type(exc)(str(exc).replace(f"`{_SUBJECT}`", subject, 1)) from None
+
+
+_NPY_MAGIC = b"\x93NUMPY"
+
+
+def _npy_header(fh: Any) -> tuple[tuple[int, ...], np.dtype]:
+    """Shape and dtype from a .npy header; ValueError when it is not one."""
+    fmt = np.lib.format
+    version = fmt.read_magic(fh)
+    reader = fmt.read_array_header_1_0 if version == (1, 0) else fmt.read_array_header_2_0
+    shape, _, dtype = reader(fh)
+    return shape, dtype
 
 
 def _read_npy(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, Any]:
     if id_column is not None:
         raise InputValueError(f"{_WHERE}: a .npy file holds one array, so `id_column` does not apply; got {id_column!r}.")
+    with open(p, "rb") as fh:
+        if fh.read(len(_NPY_MAGIC)) != _NPY_MAGIC:
+            raise InputValueError(
+                f"{_WHERE}: {str(p)!r} is not a valid .npy file (it does not start with the .npy magic string)."
+            )
+        fh.seek(0)
+        try:
+            _, dtype = _npy_header(fh)
+        except ValueError as exc:
+            raise InputValueError(f"{_WHERE}: {str(p)!r} is not a valid .npy file ({exc}).") from None
+    if dtype.hasobject:
+        raise InputValueError(
+            f"{_WHERE}: {str(p)!r} holds an object array (pickled Python objects), which densemem does not "
+            "unpickle; save the vectors as a numeric 2-D array."
+        )
     try:
         arr = np.load(p, allow_pickle=False)
-    except ValueError as exc:
-        raise InputValueError(f"{_WHERE}: {str(p)!r} is not a numeric .npy array ({exc}).") from None
+    except (ValueError, OSError, EOFError) as exc:
+        raise InputValueError(f"{_WHERE}: {str(p)!r} is not a valid .npy file ({exc}).") from None
     return arr, None, None, None
 
 
 def _read_npz(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, Any]:
+    if not zipfile.is_zipfile(p):
+        raise InputValueError(f"{_WHERE}: {str(p)!r} is not a valid .npz file (it is not a zip archive).")
     try:
         with np.load(p, allow_pickle=False) as z:
             names = list(z.files)
+            members = set(z.zip.namelist())
+            headers = {n: _member_header(p, z, n) for n in names if n + ".npy" in members}
             if column is None:
-                two_d = [n for n in names if _ndim_of(z, n) == 2]
-                if len(two_d) != 1:
-                    raise InputValueError(
-                        f"{_WHERE}: {p.name} holds arrays {names}; pass `column` (--column) to choose the vectors."
-                    )
-                column = two_d[0]
+                column = _only_matrix(p, names, headers)
             for name in (column, id_column):
-                if name is not None and name not in names:
-                    raise InputValueError(f"{_WHERE}: {p.name} has no array {name!r}; it holds {names}.")
+                if name is not None and name not in headers:
+                    raise InputValueError(f"{_WHERE}: {p.name} has no array {name!r}; it holds {list(headers)}.")
+                if name is not None and headers[name][1].hasobject:
+                    raise _object_member(p, [name])
             vectors = z[column]
             ids = z[id_column] if id_column is not None else None
-    except ValueError as exc:
+    except (ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
         if isinstance(exc, InputValueError):
             raise
-        raise InputValueError(f"{_WHERE}: cannot read {str(p)!r} without unpickling ({exc}).") from None
+        raise InputValueError(f"{_WHERE}: {str(p)!r} is not a valid .npz file ({exc}).") from None
     return vectors, ids, column, id_column
 
 
-def _ndim_of(z: Any, name: str) -> int:
-    """Number of dimensions of an npz member from its header alone."""
-    fmt = np.lib.format
-    with z.zip.open(name + ".npy") as fh:
-        version = fmt.read_magic(fh)
-        reader = fmt.read_array_header_1_0 if version == (1, 0) else fmt.read_array_header_2_0
-        shape, _, _ = reader(fh)
-    return len(shape)
+def _only_matrix(p: Path, names: list[str], headers: dict[str, Any]) -> str:
+    """The one numeric 2-D member, else a message saying why none can be chosen."""
+    arrays = [n for n in names if n in headers]
+    two_d = [n for n in arrays if len(headers[n][0]) == 2 and not headers[n][1].hasobject]
+    if len(two_d) == 1:
+        return two_d[0]
+    objects = [n for n in arrays if headers[n][1].hasobject]
+    if not two_d and objects:
+        raise _object_member(p, objects)
+    raise InputValueError(f"{_WHERE}: {p.name} holds arrays {arrays}; pass `column` (--column) to choose the vectors.")
+
+
+def _object_member(p: Path, names: list[str]) -> InputValueError:
+    what = f"an object array {names[0]!r}" if len(names) == 1 else f"object arrays {names}"
+    return InputValueError(
+        f"{_WHERE}: {p.name} holds {what} (pickled Python objects), which densemem does not unpickle; "
+        "save the vectors (and ids) as numeric or string arrays."
+    )
+
+
+def _member_header(p: Path, z: Any, name: str) -> tuple[tuple[int, ...], np.dtype]:
+    """Shape and dtype of an npz member from its header alone."""
+    try:
+        with z.zip.open(name + ".npy") as fh:
+            return _npy_header(fh)
+    except (ValueError, EOFError) as exc:
+        raise InputValueError(f"{_WHERE}: {str(p)!r} is not a valid .npz file (member {name!r}: {exc}).") from None
 
 
 def _pyarrow() -> Any:
@@ -201,7 +269,10 @@ def _pyarrow() -> Any:
 
 def _read_parquet(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, Any]:
     pa, pc, pq = _pyarrow()
-    schema = pq.read_schema(p)
+    try:
+        schema = pq.read_schema(p)
+    except (pa.ArrowException, OSError) as exc:
+        raise _not_parquet(p, exc) from None
     names = schema.names
     if column is None:
         lists = [f.name for f in schema if pa.types.is_list(f.type) or pa.types.is_fixed_size_list(f.type)
@@ -215,7 +286,10 @@ def _read_parquet(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, 
     for name in (column, id_column):
         if name is not None and name not in names:
             raise InputValueError(f"{_WHERE}: {p.name} has no column {name!r}; it has {names}.")
-    table = pq.read_table(p, columns=[c for c in (column, id_column) if c is not None])
+    try:
+        table = pq.read_table(p, columns=[c for c in (column, id_column) if c is not None])
+    except (pa.ArrowException, OSError) as exc:
+        raise _not_parquet(p, exc) from None
     col = table.column(column).combine_chunks()
     vectors = _list_column_to_matrix(col, pa, pc, f"{p.name} column {column!r}")
     ids = None
@@ -225,6 +299,10 @@ def _read_parquet(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, 
             raise InputValueError(f"{_WHERE}: {p.name} column {id_column!r} has {idcol.null_count} missing ids.")
         ids = np.asarray(idcol.to_pylist())
     return vectors, ids, column, id_column
+
+
+def _not_parquet(p: Path, exc: Exception) -> InputValueError:
+    return InputValueError(f"{_WHERE}: {str(p)!r} is not a readable parquet file ({exc}).")
 
 
 def _list_column_to_matrix(col: Any, pa: Any, pc: Any, label: str) -> np.ndarray:
@@ -260,8 +338,14 @@ def _is_number(cell: str) -> bool:
 
 def _read_text(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, Any]:
     delim = "\t" if p.suffix.lower() == ".tsv" else ","
-    with open(p, newline="", encoding="utf-8") as fh:
-        rows = [r for r in csv.reader(fh, delimiter=delim) if r and any(c.strip() for c in r)]
+    try:
+        with open(p, newline="", encoding="utf-8") as fh:
+            rows = [r for r in csv.reader(fh, delimiter=delim) if r and any(c.strip() for c in r)]
+    except UnicodeDecodeError as exc:
+        bad = exc.object[exc.start : exc.start + 1].hex()
+        raise InputValueError(
+            f"{_WHERE}: {str(p)!r} is not UTF-8 text (cannot decode byte 0x{bad}); save it as UTF-8."
+        ) from None
     if not rows:
         raise InputValueError(f"{_WHERE}: {str(p)!r} has no rows.")
     header = _detect_header(rows)

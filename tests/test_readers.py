@@ -51,14 +51,59 @@ def test_npz_named_and_ambiguous(tmp_path, small):
 
 def test_npz_object_member_not_unpickled(tmp_path, small):
     np.savez(tmp_path / "o.npz", vectors=small, ids=np.array([object()] * 50, dtype=object))
-    with pytest.raises(InputValueError, match="cannot read .* without unpickling"):
+    with pytest.raises(InputValueError, match=r"o.npz holds an object array 'ids' \(pickled Python objects\)"):
         read_embeddings(tmp_path / "o.npz", id_column="ids")
+    assert read_embeddings(tmp_path / "o.npz").column == "vectors"  # the object member is never loaded
+
+
+@pytest.mark.parametrize("shape", [(3,), (2, 2)])
+def test_npz_holding_only_an_object_array(tmp_path, shape):
+    # a single object member: say so, rather than "pass `column`" or "pickled data"
+    np.savez(tmp_path / "one.npz", v=np.full(shape, None, dtype=object))
+    with pytest.raises(InputValueError, match=r"^read_embeddings: one.npz holds an object array 'v' "
+                                              r"\(pickled Python objects\), which densemem does not unpickle"):
+        read_embeddings(tmp_path / "one.npz")
 
 
 def test_npy_object_array_refused(tmp_path):
     np.save(tmp_path / "o.npy", np.array([[1, "a"]], dtype=object), allow_pickle=True)
-    with pytest.raises(InputValueError, match="is not a numeric .npy array"):
+    with pytest.raises(InputValueError, match=r"'.*o.npy' holds an object array \(pickled Python objects\)"):
         read_embeddings(tmp_path / "o.npy")
+
+
+@pytest.mark.parametrize("suffix", [".npy", ".npz"])
+def test_garbage_numpy_files_are_named_invalid(tmp_path, suffix):
+    # bytes that are no .npy (magic string "\x93NUMPY", the numpy format spec) and no zip
+    path = tmp_path / ("g" + suffix)
+    path.write_bytes(b"not an array at all " * 8)
+    with pytest.raises(InputValueError, match=rf"^read_embeddings: '.*g\{suffix}' is not a valid \{suffix} file"):
+        read_embeddings(path)
+
+
+def test_truncated_numpy_files_are_named_invalid(tmp_path, small):
+    np.save(tmp_path / "v.npy", small)
+    (tmp_path / "t.npy").write_bytes((tmp_path / "v.npy").read_bytes()[:60])  # header cut short
+    with pytest.raises(InputValueError, match=r"'.*t.npy' is not a valid .npy file \(.*header"):
+        read_embeddings(tmp_path / "t.npy")
+    import zipfile
+
+    np.savez(tmp_path / "z.npz", v=small)
+    with zipfile.ZipFile(tmp_path / "z.npz", "a") as z:
+        z.writestr("junk.npy", b"nope")  # a member that is no .npy array
+    with pytest.raises(InputValueError, match=r"'.*z.npz' is not a valid .npz file \(member 'junk'"):
+        read_embeddings(tmp_path / "z.npz")
+
+
+def test_vector_check_messages_name_the_file(tmp_path):
+    np.save(tmp_path / "s.npy", np.array([["a", "b"]]))
+    with pytest.raises(InputTypeError, match=r"^read_embeddings: the vector data in 's.npy' must hold real numbers"):
+        read_embeddings(tmp_path / "s.npy")
+    np.save(tmp_path / "one.npy", np.arange(3.0))
+    with pytest.raises(InputValueError, match=r"the vector data in 'one.npy' must be 2-D"):
+        read_embeddings(tmp_path / "one.npy")
+    _write_csv(tmp_path / "d.csv", [["k", "a"], ["7", "1"], ["7", "2"]])
+    with pytest.raises(InputValueError, match=r"^read_embeddings: the id column 'k' in 'd.csv' repeats the id"):
+        read_embeddings(tmp_path / "d.csv", id_column="k")
 
 
 @pytest.mark.parametrize("fixed", [True, False])
@@ -94,6 +139,22 @@ def test_parquet_errors(tmp_path, small):
     pq.write_table(pa.table({"a": [1.0], "l": [[1.0]]}), tmp_path / "scalar.parquet")
     with pytest.raises(InputValueError, match="must be a list or fixed-size list of numbers; got double"):
         read_embeddings(tmp_path / "scalar.parquet", column="a")
+
+
+def test_corrupt_parquet_is_an_input_error(tmp_path, small):
+    path = tmp_path / "x.parquet"
+    path.write_bytes(b"PAR1 but not really a parquet file")
+    with pytest.raises(InputValueError, match=r"^read_embeddings: '.*x.parquet' is not a readable parquet file \("):
+        read_embeddings(path)
+    table = pa.table({"v": pa.array([[1.0, 2.0]] * 20, pa.list_(pa.float64()))})
+    pq.write_table(table, tmp_path / "cut.parquet")
+    data = (tmp_path / "cut.parquet").read_bytes()
+    footer = int.from_bytes(data[-8:-4], "little")  # parquet format: footer length, then "PAR1"
+    body = len(data) - footer - 12
+    (tmp_path / "cut.parquet").write_bytes(data[:4] + b"\xff" * body + data[-footer - 8:])  # pages wiped
+    assert pq.read_schema(tmp_path / "cut.parquet").names == ["v"]  # the schema still reads
+    with pytest.raises(InputValueError, match=r"'.*cut.parquet' is not a readable parquet file"):
+        read_embeddings(tmp_path / "cut.parquet")
 
 
 def test_parquet_without_pyarrow(tmp_path, monkeypatch):
@@ -151,6 +212,15 @@ def test_csv_errors(tmp_path):
     _write_csv(tmp_path / "d.csv", [["k", "a"], ["7", "1"], ["7", "2"]])
     with pytest.raises(InputValueError, match=r"repeats the id (np.int64\()?7"):
         read_embeddings(tmp_path / "d.csv", id_column="k")
+
+
+@pytest.mark.parametrize("suffix", [".csv", ".tsv"])
+def test_text_that_is_not_utf8(tmp_path, suffix):
+    path = tmp_path / ("latin" + suffix)
+    path.write_bytes("name,a\nZoë,1\n".encode("latin-1"))
+    with pytest.raises(InputValueError, match=rf"^read_embeddings: '.*latin\{suffix}' is not UTF-8 text "
+                                              r"\(cannot decode byte 0xeb\)"):
+        read_embeddings(path)
 
 
 def test_path_errors(tmp_path):
