@@ -88,8 +88,8 @@ def main(argv=None):
         max_patterns=65536, **common), a.repeats)
     hsmall = capacity_curve(["hebbian"], small, mode="sync", steps=1, **common)
     curve = CapacityCurve.combine(binary, pinv, expo, soft)
-    curve.write_csv(a.out / "capacity_curves.csv")
-    curve.write_json(a.out / "capacity_curves.json")
+    curve.write_csv(a.out / "capacity_curves.csv", overwrite=True)  # a re-run replaces its results
+    curve.write_json(a.out / "capacity_curves.json", overwrite=True)
     png = plot_capacity(CapacityCurve.combine(curve, hsmall), a.out / "capacity_curves.png")
 
     robust, timings["robustness"] = _timed(lambda: [

@@ -168,6 +168,7 @@ class Setup:
     mode: str
     max_probes: int
     seed: int
+    where: str = "estimate_capacity"  # the public function, for errors raised during trials
 
 
 def _stream(setup: Setup, trial: int, stream: int) -> np.random.Generator:
@@ -261,7 +262,7 @@ def run_trial(model: Model, setup: Setup, k: int, trial: int) -> np.ndarray:
         ok = np.asarray(model.fn(k, _stream(setup, trial, 0)))  # type: ignore[misc]
         if ok.ndim != 1 or ok.dtype != bool:
             raise InputTypeError(
-                "estimate_capacity: a callable `model` must return a 1-D bool array (one "
+                f"{setup.where}: a callable `model` must return a 1-D bool array (one "
                 f"success per probe); got {ok.dtype} of shape {ok.shape}."
             )
         return ok

@@ -6,12 +6,17 @@ Re-exported by :mod:`densemem.capacity`.
 from __future__ import annotations
 
 import csv
+import io
 import json
+import os
+import secrets
 from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+
+from densemem.errors import InputTypeError, InputValueError
 
 TABLE_COLUMNS = (
     "model", "dim", "capacity", "rate", "ci_low", "ci_high", "first_fail", "fail_rate",
@@ -27,6 +32,68 @@ def _plain(value: Any) -> Any:
     if isinstance(value, tuple):
         return [_plain(v) for v in value]
     return value
+
+
+def check_output_path(path: Any, *, overwrite: Any, name: str, where: str) -> Path:
+    """`path` as a Path in an existing folder; an existing file only with ``overwrite=True``."""
+    if not isinstance(path, (str, os.PathLike)):
+        raise InputTypeError(f"{where}: `{name}` must be a str or os.PathLike; got {type(path).__name__}.")
+    if not isinstance(overwrite, bool):
+        raise InputTypeError(f"{where}: `overwrite` must be True or False; got {overwrite!r}.")
+    p = Path(os.fspath(path))
+    if not p.parent.is_dir():
+        raise InputValueError(f"{where}: the folder of `{name}` does not exist: {str(p.parent)!r}.")
+    if p.is_dir():
+        raise InputValueError(f"{where}: `{name}` names a folder, not a file: {str(p)!r}.")
+    if p.exists() and not overwrite:
+        raise InputValueError(f"{where}: {str(p)!r} exists; pass overwrite=True to replace it.")
+    return p
+
+
+def write_atomic(path: Path, text: str, *, overwrite: bool, where: str) -> Path:
+    """Write `text` to a temp file beside `path`, fsync it, then move it into place.
+
+    Without `overwrite` the move is a hard link, which fails if `path` appeared meanwhile
+    (falls back to a checked rename where the file system has no hard links).
+    """
+    tmp = path.parent / f".{path.name}.tmp-{os.getpid()}-{secrets.token_hex(4)}"
+    try:
+        with open(tmp, "x", encoding="utf-8", newline="") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        if overwrite:
+            os.replace(tmp, path)
+        else:
+            _move_new(tmp, path, where)
+    finally:
+        tmp.unlink(missing_ok=True)
+    _fsync_dir(path.parent)
+    return path
+
+
+def _move_new(tmp: Path, path: Path, where: str) -> None:
+    try:
+        os.link(tmp, path)
+    except FileExistsError:
+        raise InputValueError(f"{where}: {str(path)!r} exists; pass overwrite=True to replace it.") from None
+    except OSError:  # no hard links here (some network / FAT file systems)
+        if path.exists():
+            raise InputValueError(f"{where}: {str(path)!r} exists; pass overwrite=True to replace it.") from None
+        os.replace(tmp, path)
+
+
+def _fsync_dir(folder: Path) -> None:
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:  # e.g. Windows cannot open folders
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
 
 
 class _Plain:
@@ -122,21 +189,48 @@ class CapacityCurve(_Plain):
         """The table: one dict per (model, dim), in measurement order."""
         return [r.row() for r in self.reports]
 
-    def write_csv(self, path: Any) -> Path:
-        """Write the table as CSV (header = ``TABLE_COLUMNS``); returns the path."""
-        path = Path(path)
-        with path.open("w", newline="") as fh:
-            w = csv.DictWriter(fh, fieldnames=list(TABLE_COLUMNS))
-            w.writeheader()
-            w.writerows(self.rows())
-        return path
+    def write_csv(self, path: Any, *, overwrite: bool = False) -> Path:
+        """Write the table as CSV (header = ``TABLE_COLUMNS``); returns the path.
 
-    def write_json(self, path: Any) -> Path:
-        """Write the table and every report in full as JSON; returns the path."""
-        path = Path(path)
+        The file is written atomically (a temp file in the same folder, fsync, rename), so
+        a reader never sees half a table. An existing file is refused unless `overwrite`.
+
+        Examples
+        --------
+        >>> import os, tempfile
+        >>> from densemem.capacity import capacity_curve
+        >>> curve = capacity_curve(["hebbian"], [16], n_trials=1, min_probes=8)
+        >>> out = curve.write_csv(os.path.join(tempfile.mkdtemp(), "c.csv"))
+        >>> out.read_text().splitlines()[0].split(",")[:3]
+        ['model', 'dim', 'capacity']
+        """
+        where = "CapacityCurve.write_csv"
+        p = check_output_path(path, overwrite=overwrite, name="path", where=where)
+        buf = io.StringIO()
+        w = csv.DictWriter(buf, fieldnames=list(TABLE_COLUMNS))
+        w.writeheader()
+        w.writerows(self.rows())
+        return write_atomic(p, buf.getvalue(), overwrite=overwrite, where=where)
+
+    def write_json(self, path: Any, *, overwrite: bool = False) -> Path:
+        """Write the table and every report in full as JSON; returns the path.
+
+        Atomic and refusing to replace an existing file unless `overwrite`, as
+        :meth:`write_csv`.
+
+        Examples
+        --------
+        >>> import json, os, tempfile
+        >>> from densemem.capacity import capacity_curve
+        >>> curve = capacity_curve(["hebbian"], [16], n_trials=1, min_probes=8)
+        >>> out = curve.write_json(os.path.join(tempfile.mkdtemp(), "c.json"))
+        >>> sorted(json.loads(out.read_text()))
+        ['reports', 'rows']
+        """
+        where = "CapacityCurve.write_json"
+        p = check_output_path(path, overwrite=overwrite, name="path", where=where)
         body = {"rows": self.rows(), "reports": [r.to_dict() for r in self.reports]}
-        path.write_text(json.dumps(body, indent=2))
-        return path
+        return write_atomic(p, json.dumps(body, indent=2), overwrite=overwrite, where=where)
 
     @classmethod
     def combine(cls, *curves: CapacityCurve) -> CapacityCurve:

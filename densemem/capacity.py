@@ -36,10 +36,14 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator
 from densemem import _capacity_checks as ck
 from densemem import _capacity_models as cm
 from densemem._capacity_plot import plot_curve
-from densemem._capacity_report import CapacityCurve, CapacityReport, RobustnessReport
-from densemem._capacity_search import DECISIONS, interval, search_capacity
-from densemem._validation import check_nonneg_float, check_positive_int
-from densemem.errors import InputValueError
+from densemem._capacity_report import (
+    CapacityCurve,
+    CapacityReport,
+    RobustnessReport,
+    check_output_path,
+)
+from densemem._capacity_search import interval, search_capacity
+from densemem.errors import InputTypeError, InputValueError
 
 __all__ = [
     "CapacityCurve",
@@ -141,24 +145,23 @@ def estimate_capacity(
     >>> rep.capacity > 1, rep.counts[:3]
     (True, (1, 2, 4))
     """
-    where = "estimate_capacity"
-    m, setup = ck.setup(where, model, dim, patterns, corruption, None, success, eps, steps, mode,
-                      max_probes, seed, ci, confidence)
-    delta = check_nonneg_float(delta, name="delta", where=where, strict=True)
-    if delta >= 1:
-        raise InputValueError(f"{where}: `delta` must be in (0, 1); got {delta!r}.")
-    n_trials = check_positive_int(n_trials, name="n_trials", where=where)
-    min_probes = check_positive_int(min_probes, name="min_probes", where=where)
-    max_n = check_positive_int(max_patterns, name="max_patterns", where=where)
-    if setup.source.limit is not None:
-        max_n = min(max_n, setup.source.limit)
-    ck.choice(decide, "decide", DECISIONS, where)
-    rel_tol = check_nonneg_float(rel_tol, name="rel_tol", where=where)
-    bar = ck.progress_bar(progress, None, f"capacity {m.label} d={setup.source.dim}", where)
+    plan = ck.capacity_plan(
+        "estimate_capacity", model, dim, patterns=patterns, corruption=corruption, success=success,
+        eps=eps, delta=delta, n_trials=n_trials, min_probes=min_probes, max_probes=max_probes,
+        seed=seed, max_patterns=max_patterns, steps=steps, mode=mode, ci=ci, confidence=confidence,
+        decide=decide, rel_tol=rel_tol, progress=progress)
+    return _search(plan)
+
+
+def _search(plan: ck.CapacityPlan) -> CapacityReport:
+    """Run one checked capacity search (doubling, then bisection) and build its report."""
+    m, setup, conf = plan.model, plan.setup, plan.confidence
+    bar = ck.progress_bar(plan.progress, None, f"capacity {m.label} d={setup.source.dim}",
+                          setup.where)
     trials: list[int] = []
 
     def evaluate(k: int) -> tuple[int, int]:
-        t = cm.trials_at(k, n_trials, min_probes, setup.max_probes)
+        t = cm.trials_at(k, plan.n_trials, plan.min_probes, setup.max_probes)
         trials.append(t)
         return cm.pooled(m, setup, k, t)
 
@@ -168,12 +171,12 @@ def estimate_capacity(
             bar.set_postfix(n=k, passed=ok)
 
     try:
-        tr = search_capacity(evaluate, target=1.0 - delta, max_n=max_n, confidence=confidence,
-                             ci=ci, decide=decide, rel_tol=rel_tol, on_step=step)
+        tr = search_capacity(evaluate, target=1.0 - plan.delta, max_n=plan.max_n, confidence=conf,
+                             ci=plan.ci, decide=plan.decide, rel_tol=plan.rel_tol, on_step=step)
     finally:
         if bar is not None:
             bar.close()
-    cis = [interval(k, n, confidence, ci) for k, n in zip(tr.successes, tr.totals)]
+    cis = [interval(k, n, conf, plan.ci) for k, n in zip(tr.successes, tr.totals)]
     return CapacityReport(
         model=m.label, dim=setup.source.dim, capacity=tr.capacity, first_fail=tr.first_fail,
         capped=tr.first_fail is None, counts=tuple(tr.counts), successes=tuple(tr.successes),
@@ -181,8 +184,8 @@ def estimate_capacity(
         rates=tuple(k / n if n else 0.0 for k, n in zip(tr.successes, tr.totals)),
         ci_low=tuple(c[0] for c in cis), ci_high=tuple(c[1] for c in cis),
         patterns=setup.source.kind, corruption=ck.corruption_tag(setup.corruption),
-        success=setup.success, eps=setup.eps, delta=delta, confidence=confidence, ci=ci,
-        decide=decide, n_trials=n_trials, seed=setup.seed)
+        success=setup.success, eps=setup.eps, delta=plan.delta, confidence=conf, ci=plan.ci,
+        decide=plan.decide, n_trials=plan.n_trials, seed=setup.seed)
 
 
 def capacity_curve(
@@ -191,6 +194,7 @@ def capacity_curve(
     *,
     csv_path: Any = None,
     json_path: Any = None,
+    overwrite: bool = False,
     progress: bool | None = None,
     **options: Any,
 ) -> CapacityCurve:
@@ -198,10 +202,14 @@ def capacity_curve(
 
     Parameters
     ----------
-    models : sequence of model descriptions (as for :func:`estimate_capacity`)
-    dims : sequence of int
+    models : 1-D sequence or array of model descriptions (as for :func:`estimate_capacity`)
+    dims : 1-D sequence or integer array, e.g. ``[16, 32]`` or ``np.arange(16, 65, 16)``
     csv_path, json_path : path, optional
-        Where to write the table (JSON also holds every report in full).
+        Where to write the table (JSON also holds every report in full); each is written
+        atomically (temp file in the same folder, then renamed).
+    overwrite : bool, default False
+        Replace existing `csv_path` / `json_path` files; otherwise they must not exist (this
+        is checked before any trial runs).
     progress : bool or None
         One tqdm bar over the (model, dim) pairs.
     **options
@@ -211,36 +219,55 @@ def capacity_curve(
     -------
     CapacityCurve
 
+    Raises
+    ------
+    InputValueError, InputTypeError
+        Empty or non-1-D `models`/`dims`, an unknown option, an existing output file, or any
+        argument :func:`estimate_capacity` refuses (reported as ``capacity_curve: ...``).
+
     Examples
     --------
-    >>> curve = capacity_curve(["hebbian"], [16, 32], n_trials=2, min_probes=16)
+    >>> import numpy as np
+    >>> curve = capacity_curve(["hebbian"], np.array([16, 32]), n_trials=2, min_probes=16)
     >>> [row["dim"] for row in curve.rows()]
     [16, 32]
     """
     where = "capacity_curve"
-    if isinstance(models, (str, bytes)) or not isinstance(models, Sequence) or not models:
-        raise InputValueError(f"{where}: `models` must be a non-empty list of models; got {models!r}.")
-    if isinstance(dims, (str, bytes)) or not isinstance(dims, Sequence) or not dims:
-        raise InputValueError(f"{where}: `dims` must be a non-empty list of integers; got {dims!r}.")
-    if "progress" in options or "dim" in options or "model" in options:
-        raise InputValueError(f"{where}: pass `model`/`dim` through `models`/`dims`.")
-    bar = ck.progress_bar(progress, len(models) * len(dims), "capacity curve", where)
+    plans = _curve_plans(where, models, dims, options)
+    paths = [(p, w) for p, w in ((csv_path, "csv_path"), (json_path, "json_path")) if p is not None]
+    for path, name in paths:
+        check_output_path(path, overwrite=overwrite, name=name, where=where)
+    bar = ck.progress_bar(progress, len(plans), "capacity curve", where)
     reports = []
     try:
-        for model in models:
-            for d in dims:
-                reports.append(estimate_capacity(model, d, progress=False, **options))
-                if bar is not None:
-                    bar.update(1)
+        for plan in plans:
+            reports.append(_search(plan))
+            if bar is not None:
+                bar.update(1)
     finally:
         if bar is not None:
             bar.close()
     curve = CapacityCurve(tuple(reports))
     if csv_path is not None:
-        curve.write_csv(csv_path)
+        curve.write_csv(csv_path, overwrite=overwrite)
     if json_path is not None:
-        curve.write_json(json_path)
+        curve.write_json(json_path, overwrite=overwrite)
     return curve
+
+
+def _curve_plans(where: str, models: Any, dims: Any, options: dict[str, Any]) -> list[ck.CapacityPlan]:
+    """Check every (model, dim) pair up front, so a bad one fails before any trial runs."""
+    model_list = ck.one_d(models, "models", where, "models")
+    dim_list = ck.int_items(dims, "dims", where)
+    if "dim" in options or "model" in options:
+        raise InputValueError(f"{where}: pass `model`/`dim` through `models`/`dims`.")
+    unknown = sorted(set(options) - ck.CAPACITY_OPTIONS)
+    if unknown:
+        raise InputTypeError(
+            f"{where}: unknown option(s) {', '.join(unknown)}; estimate_capacity takes "
+            f"{', '.join(sorted(ck.CAPACITY_OPTIONS - {'progress'}))}.")
+    return [ck.capacity_plan(where, m, d, **{**options, "progress": False})
+            for m in model_list for d in dim_list]
 
 
 def plot_capacity(table: CapacityCurve, path: Any, *, title: str | None = None) -> Path:
@@ -292,8 +319,19 @@ def robustness_curve(
 ) -> RobustnessReport:
     """Success rate against corruption or damage level at a fixed load of `n_patterns`.
 
+    The same trials (seed, trial) are used at every level, so the curve is smooth.
+
     Parameters
     ----------
+    model : str, tuple or callable
+        As for :func:`estimate_capacity`.
+    dim : int or None
+        Units / dimensions (None: the width of a `patterns` array).
+    n_patterns : int >= 1
+        Patterns stored in every trial (at most the rows of a `patterns` array).
+    levels : 1-D sequence or array of numbers, default (0, 0.05, 0.1, 0.15, 0.2, 0.3, 0.4)
+        The corruption or damage levels, e.g. ``np.linspace(0, 0.4, 9)``. Fractions in
+        [0, 1], except the sigma of ``kind="gauss"`` (>= 0).
     kind : {"flip", "gauss", "mask", "damage_units", "zero_weights", "zero_coords"}
         flip / gauss / mask: probe corruption at each level (as in estimate_capacity).
         damage_units: that fraction of units is deleted (their weights zeroed; they keep the
@@ -301,15 +339,39 @@ def robustness_curve(
         BinaryMemory rules only, via BinaryMemory.damaged). zero_coords: that fraction of
         coordinates of every stored pattern is zeroed (softmax model only); success is judged
         against the undamaged pattern.
-    corruption : optional
-        Probe corruption applied at every level of a damage sweep (None for kind in flip /
-        gauss / mask, where the level is the corruption).
-    Other parameters as for :func:`estimate_capacity`; the same trials (seed, trial) are
-    used at every level, so the curve is smooth.
+    corruption : None, ("flip", fraction), ("mask", fraction) or ("gauss", sigma)
+        Probe corruption applied at every level of a damage sweep (must be None for kind in
+        flip / gauss / mask, where the level is the corruption).
+    patterns : {"pm1", "unit", "gaussian"} or array_like of shape (n_rows, dim)
+        As for :func:`estimate_capacity`; never modified.
+    success : {"fixed_point", "overlap", "top1"}, default "fixed_point"
+        The retrieval criterion, as for :func:`estimate_capacity`.
+    eps : float >= 0, optional
+        Tolerance of the criterion (defaults as for :func:`estimate_capacity`).
+    n_trials, min_probes, max_probes : int >= 1
+        At least `n_trials` trials, raised so >= `min_probes` probes are judged; each trial
+        probes at most `max_probes` stored patterns.
+    seed : int >= 0 or None
+        Seeds every trial (None: fresh entropy).
+    steps : int >= 1, optional
+        Binary: most sweeps (default 50); continuous: softmax updates (default 1).
+    mode : {"async", "sync"}, default "async"
+        Binary update mode.
+    ci : {"wilson", "clopper_pearson"}, default "wilson"
+        Confidence interval of each rate.
+    confidence : float in (0, 1), default 0.95
+    progress : bool or None
+        tqdm bar over the levels on stderr (None: only when stderr is a terminal).
 
     Returns
     -------
     RobustnessReport
+
+    Raises
+    ------
+    InputValueError, InputTypeError
+        Unknown kind, a kind the model cannot take, bad levels, or any setting
+        :func:`estimate_capacity` would refuse.
 
     Examples
     --------
@@ -317,49 +379,18 @@ def robustness_curve(
     >>> rep.rates[0] >= rep.rates[1]
     True
     """
-    where = "robustness_curve"
-    kind = ck.choice(kind, "kind", ROBUSTNESS_KINDS, where)
-    if kind in cm.CORRUPTIONS and corruption is not None:
-        raise InputValueError(
-            f"{where}: with kind={kind!r} the levels are the corruption; pass corruption=None "
-            f"(got {corruption!r})."
-        )
-    parsed = cm.parse_model(model, where)
-    if kind in ("damage_units", "zero_weights") and parsed.kind not in cm.PAIRWISE:
-        raise InputValueError(
-            f"{where}: kind={kind!r} needs a pairwise binary model ('hebbian', 'storkey', "
-            f"'pseudo_inverse'); got model {parsed.label!r}."
-        )
-    if kind == "zero_coords" and parsed.kind != "softmax":
-        raise InputValueError(
-            f"{where}: kind='zero_coords' needs the continuous ('softmax', beta) model; got "
-            f"{parsed.label!r} (use kind='damage_units' for binary memories)."
-        )
-    if isinstance(levels, (str, bytes)) or not isinstance(levels, Sequence) or not levels:
-        raise InputValueError(f"{where}: `levels` must be a non-empty list of numbers; got {levels!r}.")
-    n_patterns = check_positive_int(n_patterns, name="n_patterns", where=where)
-    n_trials = check_positive_int(n_trials, name="n_trials", where=where)
-    min_probes = check_positive_int(min_probes, name="min_probes", where=where)
-    if kind in cm.CORRUPTIONS:
-        lv = [ck.check_corruption((kind, x), where, name="levels")[1] for x in levels]  # type: ignore[index]
-    else:
-        lv = [check_nonneg_float(x, name="levels", where=where) for x in levels]
-        if max(lv) > 1:
-            raise InputValueError(f"{where}: damage `levels` must be fractions in [0, 1]; got {max(lv)!r}.")
-    m, base = ck.setup(where, model, dim, patterns, corruption, None, success, eps, steps, mode,
-                     max_probes, seed, ci, confidence)
-    if base.source.limit is not None and n_patterns > base.source.limit:
-        raise InputValueError(
-            f"{where}: `n_patterns` is {n_patterns} but the `patterns` array has only "
-            f"{base.source.limit} rows."
-        )
-    t = cm.trials_at(n_patterns, n_trials, min_probes, base.max_probes)
-    bar = ck.progress_bar(progress, len(lv), f"robustness {m.label} {kind}", where)
+    plan = ck.robustness_plan(
+        "robustness_curve", model, dim, n_patterns, levels=levels, kind=kind,
+        corruption=corruption, patterns=patterns, success=success, eps=eps, n_trials=n_trials,
+        min_probes=min_probes, max_probes=max_probes, seed=seed, steps=steps, mode=mode, ci=ci,
+        confidence=confidence, progress=progress)
+    m, base = plan.model, plan.base
+    bar = ck.progress_bar(plan.progress, len(plan.levels), f"robustness {m.label} {plan.kind}",
+                          base.where)
     succ, tot = [], []
     try:
-        for x in lv:
-            setup = _with_level(base, kind, x)
-            k, n = cm.pooled(m, setup, n_patterns, t)
+        for x in plan.levels:
+            k, n = cm.pooled(m, _with_level(base, plan.kind, x), plan.n_patterns, plan.trials)
             succ.append(k)
             tot.append(n)
             if bar is not None:
@@ -367,13 +398,13 @@ def robustness_curve(
     finally:
         if bar is not None:
             bar.close()
-    cis = [interval(k, n, confidence, ci) for k, n in zip(succ, tot)]
+    cis = [interval(k, n, plan.confidence, plan.ci) for k, n in zip(succ, tot)]
     return RobustnessReport(
-        model=m.label, dim=base.source.dim, n_patterns=n_patterns, kind=kind, levels=tuple(lv),
-        rates=tuple(k / n for k, n in zip(succ, tot)), ci_low=tuple(c[0] for c in cis),
-        ci_high=tuple(c[1] for c in cis), successes=tuple(succ), probes=tuple(tot),
-        success=base.success, corruption=ck.corruption_tag(base.corruption),
-        confidence=confidence, ci=ci, n_trials=t, seed=base.seed)
+        model=m.label, dim=base.source.dim, n_patterns=plan.n_patterns, kind=plan.kind,
+        levels=plan.levels, rates=tuple(k / n for k, n in zip(succ, tot)),
+        ci_low=tuple(c[0] for c in cis), ci_high=tuple(c[1] for c in cis), successes=tuple(succ),
+        probes=tuple(tot), success=base.success, corruption=ck.corruption_tag(base.corruption),
+        confidence=plan.confidence, ci=plan.ci, n_trials=plan.trials, seed=base.seed)
 
 
 def _with_level(base: cm.Setup, kind: str, level: float) -> cm.Setup:

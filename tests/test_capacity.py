@@ -378,16 +378,27 @@ def test_estimate_capacity_errors(kwargs, exc, match):
 
 
 @pytest.mark.parametrize("call,match", [
-    (lambda: capacity_curve([], [8]), r"capacity_curve: `models` must be a non-empty list"),
-    (lambda: capacity_curve("hebbian", [8]), r"`models` must be a non-empty list"),
-    (lambda: capacity_curve(["hebbian"], []), r"`dims` must be a non-empty list of integers"),
+    (lambda: capacity_curve([], [8]), r"capacity_curve: `models` must be a non-empty 1-D sequence"),
+    (lambda: capacity_curve("hebbian", [8]), r"`models` must be a non-empty 1-D sequence or array of models"),
+    (lambda: capacity_curve(["hebbian"], []), r"`dims` must be a non-empty 1-D sequence or array of integers"),
+    (lambda: capacity_curve(["hebbian"], np.array([[8, 16]])), r"`dims` must be a non-empty 1-D sequence"),
+    (lambda: capacity_curve(["hebbian"], 8), r"`dims` must be a non-empty 1-D sequence"),
     (lambda: capacity_curve(["hebbian"], [8], dim=3), r"pass `model`/`dim` through"),
+    (lambda: capacity_curve(["hebbian"], [8, 1]), r"^capacity_curve: `dim` must be an integer >= 2; got 1"),
+    (lambda: capacity_curve(["nope"], [8]), r"^capacity_curve: `model` must be"),
+    (lambda: capacity_curve(["hebbian"], [8], delta=2.0), r"^capacity_curve: `delta` must be in \(0, 1\)"),
+    (lambda: capacity_curve([lambda k, rng: np.ones(3)], [8], n_trials=1, min_probes=1),
+     r"^capacity_curve: a callable `model` must return a 1-D bool array"),
     (lambda: robustness_curve("hebbian", 16, 2, kind="melt"), r"robustness_curve: `kind` must"),
     (lambda: robustness_curve("hebbian", 16, 2, corruption=("flip", 0.1)),
      r"with kind='flip' the levels are the corruption"),
     (lambda: robustness_curve("exp", 16, 2, kind="damage_units"), r"needs a pairwise binary"),
     (lambda: robustness_curve("hebbian", 16, 2, kind="zero_coords"), r"needs the continuous"),
-    (lambda: robustness_curve("hebbian", 16, 2, levels=[]), r"`levels` must be a non-empty"),
+    (lambda: robustness_curve("hebbian", 16, 2, levels=[]), r"`levels` must be a non-empty 1-D sequence"),
+    (lambda: robustness_curve("hebbian", 16, 2, levels=np.zeros((2, 2))), r"`levels` must be a non-empty 1-D"),
+    (lambda: robustness_curve("hebbian", 16, 2, levels="0.1"), r"`levels` must be a non-empty 1-D"),
+    (lambda: robustness_curve(lambda k, rng: np.ones(3), 16, 2, levels=[0.1], n_trials=1, min_probes=1),
+     r"^robustness_curve: a callable `model` must return a 1-D bool array"),
     (lambda: robustness_curve("hebbian", 16, 2, kind="damage_units", levels=[2.0]),
      r"damage `levels` must be fractions in \[0, 1\]"),
     (lambda: robustness_curve("hebbian", 16, 2, levels=[1.5]), r"flip fraction must be in"),
@@ -396,8 +407,102 @@ def test_estimate_capacity_errors(kwargs, exc, match):
      r"`n_patterns` is 9 but the `patterns` array has only 4 rows"),
 ])
 def test_curve_and_robustness_errors(call, match):
-    with pytest.raises(InputValueError, match=match):
+    with pytest.raises((InputValueError, InputTypeError), match=match):
         call()
+
+
+@pytest.mark.parametrize("call,match", [
+    (lambda: capacity_curve(["hebbian"], [8, 2.5]),
+     r"^capacity_curve: every entry of `dims` must be an integer; got 2.5 at position 1"),
+    (lambda: capacity_curve(["hebbian"], [True]), r"every entry of `dims` must be an integer; got True"),
+    (lambda: capacity_curve(["hebbian"], [8], n_trails=2), r"^capacity_curve: unknown option\(s\) n_trails; "
+                                                            r"estimate_capacity takes .*n_trials"),
+    (lambda: capacity_curve(["hebbian"], [8], csv_path=3), r"capacity_curve: `csv_path` must be a str"),
+    (lambda: capacity_curve(["hebbian"], [8], csv_path="x.csv", overwrite="yes"),
+     r"capacity_curve: `overwrite` must be True or False; got 'yes'"),
+    (lambda: robustness_curve("hebbian", 16, 2, levels=[0.1, "a"]),
+     r"^robustness_curve: every entry of `levels` must be a number; got 'a' at position 1"),
+    (lambda: robustness_curve("hebbian", 16, 2, levels=[0.1], progress=1),
+     r"^robustness_curve: `progress` must be True, False or None"),
+])
+def test_curve_and_robustness_type_errors(call, match):
+    with pytest.raises(InputTypeError, match=match):
+        call()
+
+
+def test_curve_and_robustness_accept_arrays():
+    # any 1-D sequence or array of numbers: numpy arrays, ranges, tuples, numpy scalars
+    args = dict(n_trials=1, min_probes=8, mode="sync", steps=1)
+    listed = capacity_curve(["hebbian"], [8, 16], **args)
+    for dims in (np.array([8, 16]), range(8, 17, 8), (np.int32(8), np.int64(16))):
+        got = capacity_curve(np.array(["hebbian"]), dims, **args)
+        assert got.rows() == listed.rows()
+    levels = np.linspace(0.0, 0.3, 4)
+    by_array = robustness_curve("hebbian", 32, 3, levels=levels, n_trials=1, min_probes=16)
+    by_list = robustness_curve("hebbian", 32, 3, levels=levels.tolist(), n_trials=1, min_probes=16)
+    assert by_array.levels == tuple(levels.tolist()) and by_array.rates == by_list.rates
+    assert all(type(v) is float for v in by_array.levels)
+
+
+def test_curve_checks_every_pair_before_running(monkeypatch):
+    # a bad dim at the end of the list fails at once, before any search runs
+    import densemem.capacity as capmod
+
+    def boom(plan):
+        raise AssertionError("a search ran before the arguments were checked")
+
+    monkeypatch.setattr(capmod, "_search", boom)
+    with pytest.raises(InputValueError, match=r"capacity_curve: `dim` must be an integer >= 2; got 0"):
+        capacity_curve(["hebbian", "storkey"], [8, 16, 0])
+
+
+def test_curve_files_are_atomic_and_not_overwritten(tmp_path, monkeypatch):
+    curve = capacity_curve(["hebbian"], [8], n_trials=1, min_probes=8)
+    out = curve.write_csv(tmp_path / "c.csv")
+    first = out.read_bytes()
+    with pytest.raises(InputValueError, match=r"^CapacityCurve.write_csv: '.*c.csv' exists; pass overwrite=True"):
+        curve.write_csv(out)
+    assert out.read_bytes() == first  # refused: untouched
+    two = CapacityCurve.combine(curve, curve)
+    assert two.write_csv(out, overwrite=True) == out
+    assert len(list(csv.DictReader(out.open()))) == 2
+    jpath = curve.write_json(tmp_path / "c.json")
+    with pytest.raises(InputValueError, match=r"^CapacityCurve.write_json: '.*c.json' exists; pass overwrite=True"):
+        curve.write_json(jpath)
+    two.write_json(jpath, overwrite=True)
+    assert len(json.loads(jpath.read_text())["rows"]) == 2
+    with pytest.raises(InputValueError, match=r"CapacityCurve.write_csv: the folder of `path` does not exist"):
+        curve.write_csv(tmp_path / "no" / "c.csv")
+    with pytest.raises(InputValueError, match=r"CapacityCurve.write_json: `path` names a folder"):
+        curve.write_json(tmp_path)
+    with pytest.raises(InputTypeError, match=r"CapacityCurve.write_csv: `path` must be a str or os.PathLike"):
+        curve.write_csv(None)
+    # a failure while writing leaves the old file whole and no temp file behind (atomic)
+    import densemem._capacity_report as rep_mod
+
+    def fail_fsync(fd):
+        raise OSError("disk full (simulated)")
+
+    monkeypatch.setattr(rep_mod.os, "fsync", fail_fsync)
+    before = out.read_bytes()
+    with pytest.raises(OSError, match="disk full"):
+        curve.write_csv(out, overwrite=True)
+    assert out.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["c.csv", "c.json"]
+
+
+def test_curve_refuses_existing_outputs_before_running(tmp_path, monkeypatch):
+    import densemem.capacity as capmod
+
+    (tmp_path / "c.json").write_text("{}")
+    monkeypatch.setattr(capmod, "_search", lambda plan: (_ for _ in ()).throw(AssertionError("ran")))
+    with pytest.raises(InputValueError, match=r"^capacity_curve: '.*c.json' exists; pass overwrite=True"):
+        capacity_curve(["hebbian"], [8], csv_path=tmp_path / "c.csv", json_path=tmp_path / "c.json")
+    assert not (tmp_path / "c.csv").exists()
+    monkeypatch.undo()
+    curve = capacity_curve(["hebbian"], [8], n_trials=1, min_probes=8, csv_path=tmp_path / "c.csv",
+                           json_path=tmp_path / "c.json", overwrite=True)
+    assert json.loads((tmp_path / "c.json").read_text())["rows"] == json.loads(json.dumps(curve.rows()))
 
 
 def test_plot_and_spec_errors(tmp_path):
