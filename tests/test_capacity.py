@@ -415,8 +415,8 @@ def test_curve_and_robustness_errors(call, match):
     (lambda: capacity_curve(["hebbian"], [8, 2.5]),
      r"^capacity_curve: every entry of `dims` must be an integer; got 2.5 at position 1"),
     (lambda: capacity_curve(["hebbian"], [True]), r"every entry of `dims` must be an integer; got True"),
-    (lambda: capacity_curve(["hebbian"], [8], n_trails=2), r"^capacity_curve: unknown option\(s\) n_trails; "
-                                                            r"estimate_capacity takes .*n_trials"),
+    (lambda: capacity_curve(["hebbian"], [8], n_trails=2),
+     r"^capacity_curve: unknown option\(s\) n_trails; estimate_capacity takes .*n_trials"),
     (lambda: capacity_curve(["hebbian"], [8], csv_path=3), r"capacity_curve: `csv_path` must be a str"),
     (lambda: capacity_curve(["hebbian"], [8], csv_path="x.csv", overwrite="yes"),
      r"capacity_curve: `overwrite` must be True or False; got 'yes'"),
