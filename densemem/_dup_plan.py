@@ -221,7 +221,10 @@ class DuplicatePlan:
         parquet only when pyarrow is installed), ``groups.json`` (summary,
         groups, excluded zero vectors), ``keep.txt`` and ``drop.txt`` (one id a
         line). Each is written to a temporary file in ``folder``, flushed to
-        disk and renamed into place; no other file is touched.
+        disk and renamed into place. With ``overwrite=True`` a plan file this
+        plan does not write (``groups.parquet`` from an earlier run with
+        pyarrow, when pyarrow is now missing) is removed, so the folder never
+        mixes two plans; no file of any other name is touched.
 
         Returns
         -------
@@ -231,7 +234,8 @@ class DuplicatePlan:
         Raises
         ------
         InputValueError
-            A plan file exists and ``overwrite`` is False, or ``folder`` is a file.
+            A plan file (any of the names above) exists and ``overwrite`` is
+            False, or ``folder`` is a file.
 
         Examples
         --------
@@ -247,7 +251,7 @@ class DuplicatePlan:
         blobs = self._blobs()
         targets = {role: out / PLAN_FILES[role] for role in blobs}
         if not overwrite:
-            there = [str(p) for p in targets.values() if p.exists()]
+            there = [str(out / name) for name in PLAN_FILES.values() if (out / name).exists()]
             if there:
                 raise InputValueError(
                     f"{where}: {there[0]!r} already exists; pass overwrite=True or choose another folder."
@@ -255,6 +259,11 @@ class DuplicatePlan:
         out.mkdir(parents=True, exist_ok=True)
         for role, data in blobs.items():
             _atomic_write(targets[role], data)
+        for role, name in PLAN_FILES.items():  # stale files of an earlier plan, own names only
+            if role not in targets:
+                stale = out / name
+                if stale.is_file() or stale.is_symlink():
+                    stale.unlink()
         _fsync_dir(out)
         return {role: str(p) for role, p in targets.items()}
 

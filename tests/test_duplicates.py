@@ -480,6 +480,39 @@ def test_plan_access_and_write_errors(tmp_path):
     assert f.read_text() == "keep me"
 
 
+def test_rewrite_without_pyarrow_removes_the_stale_parquet(tmp_path, monkeypatch):
+    # a folder written with pyarrow, rewritten (overwrite=True) without it: the old
+    # groups.parquet would describe the old plan, so it goes; files of other names stay
+    old = find_duplicates(X3, 0.9)
+    old.write(tmp_path)
+    (tmp_path / "notes.txt").write_text("mine")
+    (tmp_path / "groups.parquet.bak").write_text("mine too")
+    assert (tmp_path / "groups.parquet").exists()
+    monkeypatch.setitem(sys.modules, "pyarrow", None)  # `import pyarrow` now fails
+    monkeypatch.setitem(sys.modules, "pyarrow.parquet", None)
+    new = find_duplicates(X3, 0.999)
+    with pytest.raises(InputValueError, match=r"DuplicatePlan.write: .*groups.csv' already exists"):
+        new.write(tmp_path)
+    paths = new.write(tmp_path, overwrite=True)
+    assert "groups_parquet" not in paths
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted(
+        ["groups.csv", "groups.json", "keep.txt", "drop.txt", "notes.txt", "groups.parquet.bak"])
+    assert (tmp_path / "notes.txt").read_text() == "mine"
+    doc = json.loads((tmp_path / "groups.json").read_text())  # reference: json module
+    assert doc["summary"]["threshold"] == 0.999
+
+
+def test_stale_parquet_alone_blocks_a_write_without_overwrite(tmp_path, monkeypatch):
+    # an earlier plan's groups.parquet counts as a plan file even when this plan writes none
+    (tmp_path / "groups.parquet").write_bytes(b"old plan")
+    monkeypatch.setitem(sys.modules, "pyarrow", None)
+    with pytest.raises(InputValueError, match=r"DuplicatePlan.write: .*groups.parquet' already exists; "
+                                              r"pass overwrite=True"):
+        find_duplicates(X3, 0.9).write(tmp_path)
+    assert (tmp_path / "groups.parquet").read_bytes() == b"old plan"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["groups.parquet"]
+
+
 def test_spec_errors():
     from pydantic import ValidationError
 
