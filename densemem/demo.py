@@ -24,7 +24,11 @@ Examples
 
 from __future__ import annotations
 
+import contextlib
+import os
+import secrets
 import time
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -224,15 +228,44 @@ def _tune(mem: DenseMemory, plan: Any, out: Path, plots: bool) -> tuple[dict[str
     spec = tuning.TuneSpec(n_betas=10, n_queries=128, level=0.3, target="sharp")
     rep = tuning.tune_beta(kept, spec)
     files: dict[str, str] = {}
-    (out / "tuning.txt").write_text(tuning.format_report(rep) + "\n", encoding="utf-8")
+    _write_text(out / "tuning.txt", tuning.format_report(rep) + "\n")
     files["tuning"] = str(out / "tuning.txt")
     if plots and rep.sweep is not None and _have_matplotlib():
-        tuning.plot_sweep(rep.sweep, out / "beta-sweep.png", predicted_beta=rep.prediction.beta_target_separated,
-                          chosen_beta=rep.choice.beta if rep.choice else None)
+        with _replacing(out / "beta-sweep.png") as tmp:
+            tuning.plot_sweep(rep.sweep, tmp, predicted_beta=rep.prediction.beta_target_separated,
+                              chosen_beta=rep.choice.beta if rep.choice else None)
         files["beta_sweep_png"] = str(out / "beta-sweep.png")
     chosen = rep.choice.beta if rep.choice is not None else None
     return {"n_patterns": len(kept), "chosen_beta": None if chosen is None else round(float(chosen), 3),
             "predicted_beta": float(rep.prediction.beta_target_separated)}, files
+
+
+@contextlib.contextmanager
+def _replacing(path: Path) -> Iterator[Path]:
+    """Yield a temp path beside `path` (same suffix); once written, fsync it and move it
+    into place with os.replace, so a reader sees the old file or the new one, never half."""
+    tmp = path.with_name(f".{path.stem}.tmp-{os.getpid()}-{secrets.token_hex(4)}{path.suffix}")
+    try:
+        yield tmp
+        fd = os.open(tmp, os.O_RDWR)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+def _write_text(path: Path, text: str) -> None:
+    """Write a report text file atomically (temp file in the same folder + os.replace)."""
+    with _replacing(path) as tmp, open(tmp, "x", encoding="utf-8") as fh:
+        fh.write(text)
+
+
+def _save_figure(fig: Any, path: Path) -> None:
+    with _replacing(path) as tmp:
+        fig.savefig(tmp, format="png", dpi=110)
 
 
 def _have_matplotlib() -> bool:
@@ -258,7 +291,7 @@ def _plot_weights(mem: DenseMemory, q: np.ndarray, betas: tuple[float, float], p
     axes[0].set_ylabel("softmax weight")
     fig.suptitle("One faded print (invented data)", fontsize=10)
     fig.tight_layout()
-    fig.savefig(path, dpi=110)
+    _save_figure(fig, path)
     plt.close(fig)
 
 
@@ -282,7 +315,7 @@ def _plot_curve(mem: DenseMemory, arc: Archive, q: np.ndarray, src: np.ndarray, 
     ax.legend(loc="center left", fontsize=8)
     ax.set_title("Sharp versus blended retrieval (invented data)", fontsize=10)
     fig.tight_layout()
-    fig.savefig(path, dpi=110)
+    _save_figure(fig, path)
     plt.close(fig)
 
 
@@ -300,7 +333,8 @@ def run_demo(
     Parameters
     ----------
     out : str or os.PathLike
-        Report folder (created; files the demo writes are replaced, others kept).
+        Report folder (created; files the demo writes are replaced, each atomically: a temp
+        file in the folder, then os.replace; other files are kept).
     n_photos : int, default 4000
         Original photos (rescans and crops are added on top).
     n_queries : int, default 200
@@ -363,7 +397,7 @@ def run_demo(
         sharp_beta=sharp_beta, blended_beta=blended_beta, sharp=sharp, blended=blended, faiss=faiss_stats,
         dedup=dedup, tuning=tuned, files=files, seconds=time.perf_counter() - t0,
     )
-    (out / "summary.md").write_text(_markdown(report), encoding="utf-8")
+    _write_text(out / "summary.md", _markdown(report))
     for _ in steps:
         pass
     return report
