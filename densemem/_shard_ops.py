@@ -55,10 +55,13 @@ from ._exact import exact_reduce
 from ._retrieval import AUTO_GIVE_UP, AUTO_K_START, auto_split
 from ._validation import (
     check_beta,
+    check_fraction,
     check_k,
     check_nonneg_float,
     check_positive_int,
     check_queries,
+    check_score_range,
+    max_row_norm,
     unit_rows,
 )
 from .errors import InputValueError
@@ -286,14 +289,16 @@ def check_retrieve(
             f"{where}: unknown `method` {method!r}; sharded retrieval uses one of {', '.join(SHARD_METHODS)}."
         )
     cert = CertifiedOptions(
-        tol_mass=check_nonneg_float(tol_mass, name="tol_mass", where=where, strict=True),
+        tol_mass=check_fraction(tol_mass, name="tol_mass", where=where),
         k_max=check_positive_int(k_max, name="k_max", where=where),
         tile_mib=tile_mib,
     )
+    beta = default_beta if beta is None else check_beta(beta, where=where)
+    check_score_range(beta, max_row_norm(q), layout.max_norm, where=where)
     return RetrieveArgs(
         q=q,
         was_1d=was_1d,
-        beta=default_beta if beta is None else check_beta(beta, where=where),
+        beta=beta,
         steps=check_positive_int(steps, name="steps", where=where),
         tol=check_nonneg_float(tol, name="tol", where=where),
         k=min(10, layout.count) if k is None else check_k(k, n=layout.count, where=where),

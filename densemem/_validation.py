@@ -17,6 +17,8 @@ from .errors import InputTypeError, InputValueError, UnknownIdError
 __all__ = [
     "unit_rows",
     "check_score_range",
+    "check_fraction",
+    "max_row_norm",
     "as_float_matrix",
     "check_patterns",
     "check_queries",
@@ -225,6 +227,19 @@ def check_score_range(beta: float, query_norm: float, max_norm: float, *, where:
             f"{where}: `beta` = {beta:g} times the largest query norm ({query_norm:.3g}) and stored norm "
             f"({max_norm:.3g}) exceeds the float32 score range; use beta <= {limit:.3g}."
         )
+
+
+def check_fraction(x: Any, *, name: str, where: str) -> float:
+    """Return ``x`` as a float in the open interval (0, 1)."""
+    val = check_nonneg_float(x, name=name, where=where, strict=True)
+    if val >= 1:
+        raise InputValueError(f"{where}: `{name}` must be a fraction in (0, 1); got {x!r}.")
+    return val
+
+
+def max_row_norm(x: np.ndarray) -> float:
+    """Largest L2 norm of the rows of ``x`` (computed in float64)."""
+    return float(np.sqrt(np.max(np.einsum("ij,ij->i", x.astype(np.float64), x.astype(np.float64)))))
 
 
 def unknown_id_error(where: str, missing: Any) -> UnknownIdError:

@@ -16,7 +16,7 @@ import argparse
 import sys
 import traceback
 from pathlib import Path
-from typing import Any, Callable, Sequence
+from typing import Any, Sequence
 
 import numpy as np
 

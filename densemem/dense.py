@@ -16,11 +16,13 @@ from ._table import PatternTable
 from ._tiles import DEFAULT_TILE_MIB, n_threads_default
 from ._validation import (
     check_beta,
+    check_fraction,
     check_k,
     check_nonneg_float,
     check_positive_int,
     check_queries,
     check_score_range,
+    max_row_norm,
     unit_rows,
 )
 from .errors import DenseMemWarning, IndexStaleError, InputTypeError, InputValueError
@@ -30,17 +32,6 @@ __all__ = ["DenseMemory"]
 
 Method = Literal["auto", "exact", "certified", "index"]
 _METHODS = ("auto", "exact", "certified", "index")
-
-
-def _check_fraction(tol_mass: Any, *, where: str) -> float:
-    v = check_nonneg_float(tol_mass, name="tol_mass", where=where, strict=True)
-    if v >= 1:
-        raise InputValueError(f"{where}: `tol_mass` must be a fraction in (0, 1); got {tol_mass!r}.")
-    return v
-
-
-def _max_row_norm(x: np.ndarray) -> float:
-    return float(np.sqrt(np.max(np.einsum("ij,ij->i", x.astype(np.float64), x.astype(np.float64)))))
 
 
 class DenseMemory:
@@ -394,12 +385,12 @@ class DenseMemory:
         steps = check_positive_int(steps, name="steps", where=where)
         tol = check_nonneg_float(tol, name="tol", where=where)
         k = min(10, len(self)) if k is None else check_k(k, n=len(self), where=where)
-        check_score_range(beta, _max_row_norm(q), self.max_norm, where=where)
+        check_score_range(beta, max_row_norm(q), self.max_norm, where=where)
         if method not in _METHODS:
             raise InputValueError(f"{where}: unknown `method` {method!r}; use one of {', '.join(_METHODS)}.")
         opts: dict[str, Any] = {
             "certified": CertifiedOptions(
-                tol_mass=_check_fraction(tol_mass, where=where),
+                tol_mass=check_fraction(tol_mass, name="tol_mass", where=where),
                 k_max=check_positive_int(k_max, name="k_max", where=where),
                 tile_mib=self.tile_mib,
             ),
@@ -447,7 +438,7 @@ class DenseMemory:
             raise InputValueError(f"{where}: the memory is empty; add patterns first.")
         s, was_1d = check_queries(states, where=where, dim=self.dim, name="states")
         beta = self._beta if beta is None else check_beta(beta, where=where)
-        check_score_range(beta, _max_row_norm(s), self.max_norm, where=where)
+        check_score_range(beta, max_row_norm(s), self.max_norm, where=where)
         e = R.energy_of(self, s, beta, "exact", {})
         return float(e[0]) if was_1d else e
 

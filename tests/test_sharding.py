@@ -300,3 +300,15 @@ def test_shard_spec_validates_options():
     assert ShardSpec(n_shards=4).by == "round_robin"
     with pytest.raises(ValueError, match=r"n_shards"):
         ShardSpec(n_shards=0)
+
+
+def test_sharded_retrieve_refuses_what_one_machine_refuses(tmp_path) -> None:
+    # The sharded path validates with the same rules as DenseMemory.retrieve (float32 score
+    # range, IEEE 754 single precision: common practice; tol_mass a fraction).
+    import densemem
+
+    sm = densemem.shard_memory(densemem.DenseMemory.from_array(np.eye(4)), tmp_path / "s", 2)
+    with pytest.raises(densemem.InputValueError, match=r"`beta` = 1e\+300 times the largest query norm"):
+        sm.retrieve([1.0, 0.0, 0.0, 0.0], beta=1e300)
+    with pytest.raises(densemem.InputValueError, match=r"`tol_mass` must be a fraction in \(0, 1\); got 2\."):
+        sm.retrieve([1.0, 0.0, 0.0, 0.0], tol_mass=2)
