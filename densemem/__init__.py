@@ -26,7 +26,7 @@ from .errors import (
     StoreFormatError,
     UnknownIdError,
 )
-from .readers import Embeddings, read_embeddings
+from .readers import EmbeddingTable, read_embeddings
 from .results import NearestResult, RetrievalResult
 from .sharding import ShardedMemory, open_sharded, shard_memory
 from .storage import load_memory, save_memory
@@ -63,7 +63,7 @@ __all__ = [
     "shard_memory",
     "open_sharded",
     "ShardedMemory",
-    "Embeddings",
+    "EmbeddingTable",
     "DenseMemError",
     "DenseMemWarning",
     "IndexStaleError",

@@ -99,7 +99,7 @@ from ._validation import check_nonneg_float, check_positive_int
 from .errors import InputTypeError, InputValueError, MissingExtraError
 from .results import NearestResult, RetrievalResult
 
-__all__ = ["ClusterSpec", "nearest", "retrieve"]
+__all__ = ["SchedulerSpec", "nearest", "retrieve"]
 
 _CACHE: dict[str, tuple[str, Any]] = {}  # per worker process: folder -> (checksum, memory)
 _LOCKS: dict[str, threading.Lock] = {}
@@ -107,7 +107,7 @@ _GUARD = threading.Lock()
 _LOADS: list[str] = []  # folders loaded by this process (for tests and diagnostics)
 
 
-class ClusterSpec(BaseModel):
+class SchedulerSpec(BaseModel):
     """Options of ``densemem retrieve/nearest --scheduler tcp://host:port`` (validated at the CLI boundary)."""
 
     model_config = ConfigDict(frozen=True, extra="forbid")

@@ -1,7 +1,7 @@
 """Read embeddings as people keep them: .npy, .npz, .parquet, .csv and .tsv.
 
 :func:`read_embeddings` picks the reader from the file suffix and returns an
-:class:`Embeddings` record (float32 vectors, optional ids, where they came
+:class:`EmbeddingTable` record (float32 vectors, optional ids, where they came
 from). Files are only opened for reading; nothing is unpickled.
 
 Examples
@@ -30,14 +30,14 @@ import numpy as np
 from ._validation import as_float_matrix, check_ids
 from .errors import InputTypeError, InputValueError, MissingExtraError
 
-__all__ = ["Embeddings", "read_embeddings", "SUFFIXES"]
+__all__ = ["EmbeddingTable", "read_embeddings", "SUFFIXES"]
 
 SUFFIXES = (".npy", ".npz", ".parquet", ".csv", ".tsv")
 _WHERE = "read_embeddings"
 
 
 @dataclass(frozen=True, slots=True, repr=False)
-class Embeddings:
+class EmbeddingTable:
     """Vectors read from a file, with their ids when the file has them.
 
     Attributes
@@ -62,7 +62,7 @@ class Embeddings:
     def __repr__(self) -> str:
         n, d = self.vectors.shape
         ids = "none" if self.ids is None else str(self.ids.dtype)
-        return f"Embeddings(n_rows={n}, dim={d}, ids={ids}, kind={self.kind!r}, source={self.source!r})"
+        return f"EmbeddingTable(n_rows={n}, dim={d}, ids={ids}, kind={self.kind!r}, source={self.source!r})"
 
     def to_dict(self) -> dict[str, Any]:
         """Summary (not the arrays): rows, dim, id dtype, source, kind, columns.
@@ -87,7 +87,7 @@ class Embeddings:
         }
 
 
-def read_embeddings(path: Any, *, column: str | None = None, id_column: str | int | None = None) -> Embeddings:
+def read_embeddings(path: Any, *, column: str | None = None, id_column: str | int | None = None) -> EmbeddingTable:
     """Read embedding vectors (and optional ids) from a file, chosen by suffix.
 
     Parameters
@@ -106,7 +106,7 @@ def read_embeddings(path: Any, *, column: str | None = None, id_column: str | in
 
     Returns
     -------
-    Embeddings
+    EmbeddingTable
 
     Raises
     ------
@@ -148,7 +148,7 @@ def read_embeddings(path: Any, *, column: str | None = None, id_column: str | in
     if ids is not None:
         with _about(f"the id column {idcol!r} in {p.name!r}"):
             ids = check_ids(ids, n=x.shape[0], where=_WHERE, name=_SUBJECT)
-    return Embeddings(vectors=x, ids=ids, source=str(p), kind=kind, column=col, id_column=idcol)
+    return EmbeddingTable(vectors=x, ids=ids, source=str(p), kind=kind, column=col, id_column=idcol)
 
 
 _SUBJECT = "subject"

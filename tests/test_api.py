@@ -45,7 +45,7 @@ PUBLIC = [
     "shard_memory",
     "open_sharded",
     "ShardedMemory",
-    "Embeddings",
+    "EmbeddingTable",
     "DenseMemError",
     "DenseMemWarning",
     "IndexStaleError",

@@ -169,9 +169,9 @@ def test_missing_extra_says_how_to_install(monkeypatch, data):
 
 def test_cluster_spec_validates_options():
     # common practice: pydantic validates CLI options at the boundary
-    assert D.ClusterSpec(scheduler="tcp://10.0.0.5:8786").retries == 2
+    assert D.SchedulerSpec(scheduler="tcp://10.0.0.5:8786").retries == 2
     with pytest.raises(ValueError, match=r"scheduler"):
-        D.ClusterSpec(scheduler="10.0.0.5:8786")
+        D.SchedulerSpec(scheduler="10.0.0.5:8786")
 
 
 def test_killing_a_worker_mid_query_still_gives_the_right_answer(client, tmp_path):

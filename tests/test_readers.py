@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from densemem import InputTypeError, InputValueError, MissingExtraError
-from densemem.readers import Embeddings, read_embeddings
+from densemem.readers import EmbeddingTable, read_embeddings
 
 pa = pytest.importorskip("pyarrow")
 pq = pytest.importorskip("pyarrow.parquet")
@@ -32,7 +32,7 @@ def test_npy(tmp_path, small):
     np.testing.assert_array_equal(emb.vectors, small)
     assert emb.vectors.dtype == np.float32 and emb.ids is None and emb.kind == "npy"
     assert emb.to_dict()["n_rows"] == 50 and "n_rows=50" in repr(emb)
-    assert isinstance(emb, Embeddings)
+    assert isinstance(emb, EmbeddingTable)
 
 
 def test_npz_named_and_ambiguous(tmp_path, small):
