@@ -8,7 +8,7 @@ these functions hold the loop: one pass of a method over the current states
 from __future__ import annotations
 
 import dataclasses
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Callable
 
 import faiss
 import numpy as np
@@ -78,6 +78,57 @@ def auto_split(mem: "DenseMemory", states, beta, k, need_acc, cert, can, exact):
     return part, info
 
 
+@dataclasses.dataclass(slots=True)
+class Steps:
+    """What :func:`run_steps` returns: final states and the last update's answers."""
+
+    states: np.ndarray
+    ids: np.ndarray
+    weights: np.ndarray
+    converged: np.ndarray
+    done: int
+    info: dict[str, Any]
+
+
+OnePass = Callable[[np.ndarray], tuple[np.ndarray, np.ndarray, np.ndarray, dict[str, Any]]]
+
+
+def run_steps(one_pass: OnePass, q: np.ndarray, *, steps: int, tol: float, max_norm: float, k: int) -> Steps:
+    """Repeat ``one_pass`` on the queries still moving, at most ``steps`` times.
+
+    ``one_pass(states)`` returns (new states, top ids, top weights, per-query
+    info arrays). A query stops once its state moves by at most ``tol * M``.
+    Shared by one machine (:func:`iterate`) and sharded stores (``_shard_ops``).
+    """
+    n_q = q.shape[0]
+    state = q.copy()
+    ids_out: np.ndarray | None = None
+    top_w = np.zeros((n_q, k))
+    converged = np.zeros(n_q, dtype=bool)
+    info_all: dict[str, Any] = {}
+    active = np.arange(n_q)
+    scale = max(max_norm, np.finfo(np.float32).tiny)
+    done = 0
+    for _ in range(steps):
+        new, ids, weights, info = one_pass(state[active])
+        if ids_out is None or (ids.dtype.kind == "U" and ids.dtype.itemsize > ids_out.dtype.itemsize):
+            grown = np.full((n_q, k), "" if ids.dtype.kind == "U" else -1, dtype=ids.dtype)
+            if ids_out is not None:
+                grown[:] = ids_out
+            ids_out = grown
+        moved = np.linalg.norm(new - state[active], axis=1)
+        state[active], ids_out[active], top_w[active] = new, ids, weights
+        now = moved <= tol * scale
+        converged[active] = now
+        _store_info(info_all, info, active, n_q)
+        done += 1
+        active = active[~now]
+        if active.size == 0:
+            break
+    assert ids_out is not None
+    return Steps(state, ids_out, top_w, converged, done, info_all)
+
+
 def iterate(
     mem: "DenseMemory",
     q: np.ndarray,
@@ -90,48 +141,32 @@ def iterate(
     return_energy: bool,
     opts: dict[str, Any],
 ) -> RetrievalResult:
-    n_q = q.shape[0]
-    state = q.copy()
-    top_i = np.zeros((n_q, k), np.int64)
-    top_w = np.zeros((n_q, k))
-    converged = np.zeros(n_q, dtype=bool)
-    info_all: dict[str, Any] = {}
-    active = np.arange(n_q)
-    scale = max(mem.max_norm, np.finfo(np.float32).tiny)
-    done = 0
-    for _ in range(steps):
-        fin, info = reduce(mem, state[active], beta, k=k, method=method, need_acc=True, opts=opts)
+    def one_pass(states: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, dict[str, Any]]:
+        fin, info = reduce(mem, states, beta, k=k, method=method, need_acc=True, opts=opts)
         assert fin.states is not None
-        moved = np.linalg.norm(fin.states - state[active], axis=1)
-        state[active] = fin.states
-        top_i[active] = fin.top_i
-        top_w[active] = fin.top_w
-        now = moved <= tol * scale
-        converged[active] = now
-        _store_info(info_all, info, active, n_q)
-        done += 1
-        active = active[~now]
-        if active.size == 0:
-            break
-    energy = energy_of(mem, state, beta, method, opts) if return_energy else None
+        return fin.states, mem._table.ids_at(fin.top_i), fin.top_w, info
+
+    run = run_steps(one_pass, q, steps=steps, tol=tol, max_norm=mem.max_norm, k=k)
+    energy = energy_of(mem, run.states, beta, method, opts) if return_energy else None
+    info_all = run.info
     if "mass_bound" in info_all:
         info_all["state_bound"] = 2.0 * mem.max_norm * info_all["mass_bound"]
-    ids = mem._table.ids_at(top_i)
     used = method
     if method == "auto":
         certified_any = "fell_back" in info_all and not bool(np.all(info_all["fell_back"]))
         used = "certified" if certified_any else "exact"
-    return _shape_result(
+    return shape_result(
         was_1d,
-        states=state,
-        top_ids=ids,
-        top_weights=top_w,
+        states=run.states,
+        top_ids=run.ids,
+        top_weights=run.weights,
         energy=energy,
-        steps=done,
-        converged=converged,
+        steps=run.done,
+        converged=run.converged,
         method=used,
         **info_all,
     )
+
 
 def energy_of(mem: "DenseMemory", states: np.ndarray, beta: float, method: str, opts: dict[str, Any]) -> np.ndarray:
     if "certified" in opts:
@@ -170,7 +205,7 @@ def replace(result: RetrievalResult, **changes: Any) -> RetrievalResult:
     return dataclasses.replace(result, **changes)
 
 
-def _shape_result(was_1d: bool, **fields: Any) -> RetrievalResult:
+def shape_result(was_1d: bool, **fields: Any) -> RetrievalResult:
     if was_1d:
         for key, val in fields.items():
             if isinstance(val, np.ndarray) and val.ndim >= 1:

@@ -52,7 +52,7 @@ import numpy as np
 from . import _partial as P
 from ._candidates import CertifiedOptions, bound_can_hold, certified_reduce
 from ._exact import exact_reduce
-from ._retrieval import AUTO_GIVE_UP, AUTO_K_START, auto_split
+from ._retrieval import AUTO_GIVE_UP, AUTO_K_START, auto_split, run_steps, shape_result
 from ._validation import (
     check_beta,
     check_fraction,
@@ -354,48 +354,30 @@ def iterate(
     return_energy: bool,
 ) -> RetrievalResult:
     """Repeat shard passes until the states stop moving (one pass per step), as one machine does."""
-    n_q = q.shape[0]
-    state = q.copy()
-    ids_out: np.ndarray | None = None
-    top_w = np.zeros((n_q, k))
-    converged = np.zeros(n_q, dtype=bool)
-    info: dict[str, np.ndarray] = {}
     certified = False
-    active = np.arange(n_q)
-    scale = max(layout.max_norm, np.finfo(np.float32).tiny)
-    done = 0
-    for _ in range(steps):
-        sp = run_pass(state[active], k, True, cert)
+
+    def one_pass(states: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, dict[str, Any]]:
+        nonlocal certified
+        sp = run_pass(states, k, True, cert)
         fin, ids = _finish(sp)
         assert fin.states is not None
-        if ids_out is None:
-            ids_out = np.full((n_q, k), id_fill(ids.dtype), dtype=ids.dtype)
-        moved = np.linalg.norm(fin.states - state[active], axis=1)
-        state[active], ids_out[active], top_w[active] = fin.states, ids, fin.top_w
-        now = moved <= tol * scale
-        converged[active] = now
+        info: dict[str, Any] = {}
         if sp.omitted is not None:
             certified = certified or sp.certified
-            _store(info, "mass_bound", active, n_q, _bound(sp))
-            _store(info, "k_used", active, n_q, sp.k_used)
-            _store(info, "fell_back", active, n_q, sp.fell_back)
-        done += 1
-        active = active[~now]
-        if active.size == 0:
-            break
-    energy = energy_of(run_pass, layout, state, beta, cert) if return_energy else None
+            info = {"mass_bound": _bound(sp), "k_used": sp.k_used, "fell_back": sp.fell_back}
+            info = {key: v for key, v in info.items() if v is not None}
+        return fin.states, ids, fin.top_w, info
+
+    run = run_steps(one_pass, q, steps=steps, tol=tol, max_norm=layout.max_norm, k=k)
+    energy = energy_of(run_pass, layout, run.states, beta, cert) if return_energy else None
+    info = run.info
     if "mass_bound" in info:
         info["state_bound"] = 2.0 * layout.max_norm * info["mass_bound"]
     used = method if method != "auto" else ("certified" if certified else "exact")
-    fields: dict[str, Any] = dict(
-        states=state, top_ids=ids_out, top_weights=top_w, energy=energy, steps=done,
-        converged=converged, method=used, **info,
+    return shape_result(
+        was_1d, states=run.states, top_ids=run.ids, top_weights=run.weights, energy=energy,
+        steps=run.done, converged=run.converged, method=used, **info,
     )
-    if was_1d:
-        fields = {key: (v[0] if isinstance(v, np.ndarray) and v.ndim >= 1 else v) for key, v in fields.items()}
-        if fields["energy"] is not None:
-            fields["energy"] = float(fields["energy"])
-    return RetrievalResult(**fields)
 
 
 def _bound(sp: ShardPartial) -> np.ndarray:
@@ -403,14 +385,6 @@ def _bound(sp: ShardPartial) -> np.ndarray:
     assert sp.omitted is not None
     with np.errstate(divide="ignore", invalid="ignore"):
         return np.where(sp.part.l > 0, sp.omitted / sp.part.l, 0.0)
-
-
-def _store(acc: dict[str, np.ndarray], key: str, active: np.ndarray, n_q: int, val: np.ndarray | None) -> None:
-    if val is None:
-        return
-    if key not in acc:
-        acc[key] = np.zeros(n_q, dtype=val.dtype)
-    acc[key][active] = val
 
 
 def energy_of(run_pass: PassFn, layout: Layout, states: np.ndarray, beta: float, cert: CertifiedOptions) -> np.ndarray:
