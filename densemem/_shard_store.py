@@ -17,7 +17,14 @@ import numpy as np
 
 from ._table import PatternTable
 from .errors import InputTypeError, InputValueError, StoreFormatError
-from .storage import MANIFEST, _fsync_dir, _sha256, load_memory, save_memory
+from .storage import (
+    MANIFEST,
+    _fsync_dir,
+    _sha256,
+    load_memory,
+    read_json_manifest,
+    save_memory,
+)
 
 SHARDS_FORMAT_NAME = "densemem-shards"
 SHARDS_FORMAT_VERSION = 1
@@ -155,20 +162,10 @@ def _swap_in(tmp: Path, p: Path) -> None:
 
 def _read_top(p: Path, where: str) -> dict[str, Any]:
     mpath = p / TOP_MANIFEST
-    try:
-        with open(mpath, encoding="utf-8") as fh:
-            man = json.load(fh)
-    except FileNotFoundError:
-        raise StoreFormatError(f"{where}: there is no sharded store at {str(p)!r} ({TOP_MANIFEST} is missing).") from None
-    except (ValueError, UnicodeDecodeError) as exc:
-        raise StoreFormatError(f"{where}: {str(mpath)!r} is not valid JSON ({exc}).") from None
-    if not isinstance(man, dict) or man.get("format") != SHARDS_FORMAT_NAME:
-        raise StoreFormatError(f"{where}: {str(mpath)!r} is not a {SHARDS_FORMAT_NAME} manifest.")
-    if man.get("format_version") != SHARDS_FORMAT_VERSION:
-        raise StoreFormatError(
-            f"{where}: {str(mpath)!r} has format_version {man.get('format_version')!r}; "
-            f"this densemem reads version {SHARDS_FORMAT_VERSION}."
-        )
+    man = read_json_manifest(
+        mpath, name=SHARDS_FORMAT_NAME, version=SHARDS_FORMAT_VERSION, where=where,
+        missing=f"there is no sharded store at {str(p)!r} ({TOP_MANIFEST} is missing).",
+    )
     shards = man.get("shards")
     keys = {"folder", "count", "max_norm", "manifest_sha256"}
     if not isinstance(shards, list) or not shards or not all(isinstance(s, dict) and keys <= s.keys() for s in shards):

@@ -275,22 +275,34 @@ def _check_target(p: Path, overwrite: bool, where: str) -> None:
 
 
 # -------------------------------------------------------------------- reading
-def _read_manifest(folder: Path, where: str) -> dict[str, Any]:
-    mpath = folder / MANIFEST
+def read_json_manifest(mpath: Path, *, name: str, version: int, missing: str, where: str) -> dict[str, Any]:
+    """Read a manifest file and check its format name and version (shared with shard stores).
+
+    ``missing`` is the message used when the file does not exist.
+    """
     try:
         with open(mpath, encoding="utf-8") as fh:
             man = json.load(fh)
     except FileNotFoundError:
-        raise StoreFormatError(f"{where}: the store has no {MANIFEST} ({str(mpath)!r} is missing).") from None
+        raise StoreFormatError(f"{where}: {missing}") from None
     except (ValueError, UnicodeDecodeError) as exc:
         raise StoreFormatError(f"{where}: {str(mpath)!r} is not valid JSON ({exc}).") from None
-    if not isinstance(man, dict) or man.get("format") != FORMAT_NAME:
-        raise StoreFormatError(f"{where}: {str(mpath)!r} is not a {FORMAT_NAME} manifest.")
-    if man.get("format_version") != FORMAT_VERSION:
+    if not isinstance(man, dict) or man.get("format") != name:
+        raise StoreFormatError(f"{where}: {str(mpath)!r} is not a {name} manifest.")
+    if man.get("format_version") != version:
         raise StoreFormatError(
             f"{where}: {str(mpath)!r} has format_version {man.get('format_version')!r}; "
-            f"this densemem reads version {FORMAT_VERSION}."
+            f"this densemem reads version {version}."
         )
+    return man
+
+
+def _read_manifest(folder: Path, where: str) -> dict[str, Any]:
+    mpath = folder / MANIFEST
+    man = read_json_manifest(
+        mpath, name=FORMAT_NAME, version=FORMAT_VERSION, where=where,
+        missing=f"the store has no {MANIFEST} ({str(mpath)!r} is missing).",
+    )
     needed = {"dim": int, "count": int, "normalize": bool, "beta": float, "id_kind": str, "files": dict}
     for key, kind in needed.items():
         val = man.get(key)
