@@ -3,7 +3,7 @@
 Data: random unit vectors (N x d) and noisy copies of stored rows as queries, seeded.
 One side: ``DenseMemory.retrieve(method="exact")`` in this process with every core.
 Other side: the same memory split into 2 shards (``shard_memory``), retrieved with
-``densemem.distributed.retrieve`` on a LocalCluster of 2 worker processes x 1 thread.
+``densemem.sharding.retrieve`` on a LocalCluster of 2 worker processes x 1 thread.
 Both do one update (k=10, no energy pass). Reported: median wall time over repeats,
 queries per second, agreement (identical top ids, largest state difference), and last the
 throughput ratio distributed / single process (target >= 0.8).

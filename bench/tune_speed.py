@@ -29,7 +29,7 @@ import _common as C  # noqa: E402
 
 import densemem  # noqa: E402
 import densemem.tuning as tu  # noqa: E402
-from densemem._tuning_kernel import weight_stats  # noqa: E402
+from densemem.core.weight_stats import weight_stats  # noqa: E402
 
 
 def main(argv: list[str] | None = None) -> dict:

@@ -8,12 +8,12 @@ from typing import Any, Literal
 import faiss
 import numpy as np
 
-from . import _partial as P
-from . import _retrieval as R
-from ._candidates import CertifiedOptions
-from ._index import CandidateIndex, default_settings
-from ._table import PatternTable
-from ._tiles import DEFAULT_TILE_MIB, n_threads_default
+from .core import partial as P
+from .core import steps as R
+from .core.candidates import CertifiedOptions
+from .core.index import CandidateIndex, default_settings
+from .core.table import PatternTable
+from .core.tiles import DEFAULT_TILE_MIB, n_threads_default
 from ._validation import (
     check_beta,
     check_fraction,
@@ -256,7 +256,7 @@ class DenseMemory:
 
     # ------------------------------------------------------------------ disk
     def save(self, path: Any, *, overwrite: bool = True) -> None:
-        """Write the memory to a store folder (atomic; see :mod:`densemem.storage`).
+        """Write the memory to a store folder (atomic; see :mod:`densemem.store`).
 
         Examples
         --------
@@ -266,7 +266,7 @@ class DenseMemory:
         >>> len(densemem.DenseMemory.load(folder))
         3
         """
-        from .storage import save_memory
+        from .store._folder import save_memory
 
         save_memory(self, path, overwrite=overwrite)
 
@@ -285,7 +285,7 @@ class DenseMemory:
         >>> densemem.DenseMemory.load(folder, mmap=True).ids.tolist()
         ['x', 'y']
         """
-        from .storage import load_memory
+        from .store._folder import load_memory
 
         return load_memory(path, mmap=mmap, verify=verify)
 
@@ -501,7 +501,7 @@ class DenseMemory:
 
     def _restore_index(self, meta: dict[str, Any], index: Any) -> None:
         """Attach an index read from a store folder (checked against the rows)."""
-        from ._index import IndexSettings
+        from .core.index import IndexSettings
 
         if int(meta.get("n_rows", -1)) != len(self) or int(index.ntotal) != len(self):
             raise IndexStaleError(

@@ -12,7 +12,7 @@ import sys
 import numpy as np
 
 import densemem
-from densemem.demo import make_archive
+from densemem.cli.demo import make_archive
 from densemem.duplicates import find_duplicates
 
 

@@ -1,7 +1,7 @@
 """Retrieve and blend: faded prints against the invented Harrowmere Valley archive.
 
 Invented data: the archive is fictional and its scan embeddings are generated
-(see densemem.demo). Large beta returns the print's photo; small beta returns
+(see densemem.cli.demo). Large beta returns the print's photo; small beta returns
 a blend of the photo's theme.
 
     python examples/retrieve_and_blend.py            # 4000 photos
@@ -13,7 +13,7 @@ import sys
 import numpy as np
 
 import densemem
-from densemem.demo import THEMES, faded_prints, make_archive
+from densemem.cli.demo import THEMES, faded_prints, make_archive
 
 
 def main(n_photos: int = 4000) -> None:

@@ -10,7 +10,7 @@ the smallest beta that retrieves noisy copies sharply.
 import sys
 
 import densemem
-from densemem.demo import make_archive
+from densemem.cli.demo import make_archive
 from densemem.tuning import TuneSpec, format_report, tune_beta
 
 

@@ -1,0 +1,120 @@
+"""Text table and PNG plots of benchmark records (private).
+
+The table puts each time right after its quality figures and each densemem
+time beside the faiss baseline of the same run, as ``time / baseline time``.
+Plots: recall@k against queries/s (largest N of the run), and time against N
+on log-log axes (scaling runs only). matplotlib is optional.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+from ._spec import BenchRecord
+from ..errors import MissingExtraError
+
+__all__ = ["format_table", "plot_recall_speed", "plot_scaling"]
+
+
+def _f(v: Any, spec: str) -> str:
+    return "-" if v is None else format(v, spec)
+
+
+def format_table(records: Sequence[BenchRecord], ks: Sequence[int], title: str = "") -> str:
+    """Fixed-width text table of ``records``, one block per N."""
+    heads = ["method", "setting"] + [f"recall@{k}" for k in ks] + [
+        "state err", "fell back", "time ms", "queries/s", "x base", "baseline", "build s", "py MiB", "RSS MiB"]
+    rows = []
+    for r in records:
+        rows.append([r.method, r.label] + [_f(r.recall.get(k), ".4f") for k in ks] + [
+            _f(r.state_error_max, ".2e"), _f(r.fell_back, ".2f"), f"{r.time_s * 1e3:.1f}", f"{r.queries_per_s:,.0f}",
+            _f(r.time_ratio, ".2f"), r.baseline or "-", f"{r.build_s:.2f}", f"{r.peak_python_mib:.1f}",
+            f"{r.peak_rss_mib:.1f}"])
+    widths = [max(len(h), *(len(row[j]) for row in rows)) if rows else len(h) for j, h in enumerate(heads)]
+    left = {0, 1, len(heads) - 4}
+
+    def line(cells: Sequence[str]) -> str:
+        return "  ".join(c.ljust(w) if j in left else c.rjust(w) for j, (c, w) in enumerate(zip(cells, widths))).rstrip()
+
+    out = [title] if title else []
+    last_n = None
+    for r, row in zip(records, rows):
+        if r.n != last_n:
+            if last_n is not None:
+                out.append("")
+            out += [f"N={r.n:,}  d={r.dim}  queries={r.n_queries} (batch {r.batch_size})  dataset={r.dataset}",
+                    line(heads), line(["-" * w for w in widths])]
+            last_n = r.n
+        out.append(line(row))
+    return "\n".join(out)
+
+
+def _pyplot() -> Any:
+    try:
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+    except ImportError:
+        raise MissingExtraError(
+            "plot_benchmark: drawing needs matplotlib; install it with: pip install densemem[plot]"
+        ) from None
+    return plt
+
+
+def _series(records: Sequence[BenchRecord]) -> dict[str, list[BenchRecord]]:
+    """Rows grouped into curves: one per method and beta (settings along the curve)."""
+    groups: dict[str, list[BenchRecord]] = {}
+    for r in records:
+        key = r.method + ("" if r.beta is None else f" beta={r.beta:g}")
+        groups.setdefault(key, []).append(r)
+    return groups
+
+
+def plot_recall_speed(records: Sequence[BenchRecord], path: Path, k: int) -> Path:
+    """recall@k (y) against queries/s (x, log) for the largest N in ``records``."""
+    plt = _pyplot()
+    n_max = max(r.n for r in records)
+    rows = [r for r in records if r.n == n_max and k in r.recall]
+    fig, ax = plt.subplots(figsize=(9, 5.5))
+    for j, (name, group) in enumerate(_series(rows).items()):
+        style = "s--" if group[0].library == "faiss" else "o-"
+        ax.plot([r.queries_per_s for r in group], [r.recall[k] for r in group], style, color=plt.cm.tab20(j % 20),
+                label=name, ms=5)
+    ax.set_xscale("log")
+    ax.set_xlabel("queries per second (log scale; median of repeats)")
+    ax.set_ylabel(f"recall@{k} (against faiss IndexFlatIP)")
+    ax.set_title(f"recall@{k} against speed, N={n_max:,}, d={rows[0].dim}, {rows[0].dataset}")
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
+    fig.tight_layout()
+    fig.savefig(path, dpi=120)
+    plt.close(fig)
+    return path
+
+
+def plot_scaling(records: Sequence[BenchRecord], path: Path) -> Path:
+    """Time of one batch call (y, log) against N (x, log), one line per method and setting."""
+    plt = _pyplot()
+    curves: dict[str, list[BenchRecord]] = {}
+    for r in records:
+        curves.setdefault(f"{r.method} {r.label}", []).append(r)
+    fig, ax = plt.subplots(figsize=(10, 6))
+    for j, (name, group) in enumerate(curves.items()):
+        group = sorted(group, key=lambda r: r.n)
+        style = "--" if group[0].library == "faiss" else "-"
+        ax.plot([r.n for r in group], [r.time_s for r in group], style, marker="o", ms=4,
+                color=plt.cm.tab20(j % 20), label=name)
+    ax.set_xscale("log")
+    ax.set_yscale("log")
+    ax.set_xlabel("stored rows N (log scale)")
+    ax.set_ylabel(f"seconds for {records[0].n_queries} queries (log scale)")
+    ax.set_title("retrieval time against N")
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(fontsize=6, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0, ncol=1)
+    fig.tight_layout()
+    fig.savefig(path, dpi=120)
+    plt.close(fig)
+    return path

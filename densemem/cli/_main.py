@@ -1,0 +1,339 @@
+"""The ``densemem`` command: parse -> spec -> library call -> print.
+
+Every subcommand takes ``--json`` (machine-readable output on stdout),
+``--quiet`` (no progress bars) and ``--debug`` (tracebacks). Exit codes: 0 ok,
+1 failure (bad file, damaged store, ...), 2 usage (bad option or value).
+
+Examples
+--------
+>>> from densemem.cli import main
+>>> main(["info", "--help"])  # doctest: +SKIP
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import traceback
+from pathlib import Path
+from typing import Any, Sequence
+
+import numpy as np
+
+from . import _output as out
+from ._specs import BuildSpec, DemoSpec, InfoSpec, NearestSpec, RetrieveSpec, SpecError, make_spec
+from ..errors import DenseMemError
+
+__all__ = ["main", "build_parser"]
+
+PROG = "densemem"
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with a one-line usage error (exit 2) instead of the usage block."""
+
+    def error(self, message: str) -> None:  # type: ignore[override]
+        sys.stderr.write(f"{self.prog}: error: {message} (see {self.prog} --help)\n")
+        raise SystemExit(2)
+
+
+def _common() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(add_help=False)
+    g = p.add_argument_group("output")
+    g.add_argument("--json", action="store_true", help="print the result as JSON on stdout")
+    g.add_argument("-q", "--quiet", action="store_true", help="no progress bars on stderr")
+    g.add_argument("--debug", action="store_true", help="show a traceback when something fails")
+    return p
+
+
+def _sub(subs: Any, name: str, help_: str, example: str) -> argparse.ArgumentParser:
+    return subs.add_parser(
+        name,
+        help=help_,
+        description=help_,
+        epilog=f"example:\n  {example}",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        parents=[_common()],
+    )
+
+
+def _query_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("store", help="store folder written by `densemem build`")
+    p.add_argument("queries", help="query vectors: .npy, .npz, .parquet, .csv or .tsv")
+    p.add_argument("--column", help="array (.npz) or column (.parquet) holding the query vectors")
+    p.add_argument("--id-column", help="array or column holding query names (shown in the output)")
+    p.add_argument("-k", "--k", type=int, help="stored items to list per query (default 10, or all when fewer)")
+    p.add_argument("--mmap", action="store_true", help="memory-map the store instead of reading it")
+    p.add_argument("--chunk", type=int, default=4096, help="queries per library call (default 4096)")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="sharded store: run on this Dask scheduler, e.g. tcp://host:8786 (needs densemem[dist])")
+    p.add_argument("--retries", type=int, default=2, help="with --scheduler: Dask retries per shard task (default 2)")
+    p.add_argument("--timeout", type=float, help="with --scheduler: give up after this many seconds")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of the ``densemem`` command (every subcommand)."""
+    from .._version import __version__
+    parser = _Parser(
+        prog=PROG,
+        description="Dense associative memory retrieval from the shell.",
+        epilog="example:\n  densemem build vectors.npy store/ && densemem retrieve store/ queries.npy --beta 8",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    parser.add_argument("--version", action="version", version=f"densemem {__version__}")
+    subs = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    subs.required = True
+
+    p = _sub(subs, "build", "read an embeddings file and write a store folder",
+             "densemem build photos.parquet archive-store --id-column photo --normalize --beta 12")
+    p.add_argument("input", help="embeddings: .npy, .npz, .parquet, .csv or .tsv")
+    p.add_argument("store", help="store folder to write (its parent must exist)")
+    p.add_argument("--column", help="array (.npz) or column (.parquet) holding the vectors")
+    p.add_argument("--id-column", help="array / column / csv header (or 0-based number) holding ids")
+    p.add_argument("--normalize", action="store_true", help="L2-normalise patterns and queries (cosine geometry)")
+    p.add_argument("--beta", type=float, default=1.0, help="default inverse temperature (default 1.0)")
+    p.add_argument("--index", choices=["hnsw", "ivf"], help="also build and store a candidate index")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing store at STORE")
+    p.add_argument("--shards", type=int, help="split into this many shard folders (a sharded store)")
+    p.add_argument("--shard-by", choices=["round_robin", "contiguous"], default="round_robin",
+                   help="how rows go to shards (default round_robin)")
+    p.set_defaults(run=_run_build)
+
+    p = _sub(subs, "info", "describe a store folder and check its files", "densemem info archive-store --json")
+    p.add_argument("store", help="store folder")
+    p.add_argument("--no-verify", dest="verify", action="store_false", help="skip the sha256 checks")
+    p.set_defaults(run=_run_info)
+
+    p = _sub(subs, "retrieve", "retrieve stored patterns by the softmax update",
+             "densemem retrieve archive-store queries.npy --beta 20 --steps 3 -k 5 --json")
+    _query_options(p)
+    p.add_argument("--beta", type=float, help="inverse temperature (default: the store's)")
+    p.add_argument("--steps", type=int, default=1, help="most updates per query (default 1)")
+    p.add_argument("--tol", type=float, default=1e-6, help="stop when a state moves by <= tol * max norm")
+    p.add_argument("--method", choices=["auto", "exact", "certified", "index"], default="auto",
+                   help="retrieval path (default auto)")
+    p.add_argument("--states-out", help="write the retrieved states to this new .npy file")
+    p.set_defaults(run=_run_retrieve)
+
+    p = _sub(subs, "nearest", "exact nearest stored patterns (faiss brute force, or the stored index)",
+             "densemem nearest archive-store queries.npy -k 3 --metric ip")
+    _query_options(p)
+    p.add_argument("--metric", choices=["ip", "l2"], default="ip", help="inner product or squared L2 (default ip)")
+    p.add_argument("--index", action="store_true", help="search the store's candidate index (approximate)")
+    p.set_defaults(run=_run_nearest)
+
+    p = _sub(subs, "demo", "run the invented photo-archive scenario and write a report folder",
+             "densemem demo --out densemem-demo")
+    p.add_argument("--out", default="densemem-demo", help="report folder (default ./densemem-demo)")
+    p.add_argument("--photos", type=int, default=4000, help="invented photos in the archive (default 4000)")
+    p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    p.add_argument("--no-plots", dest="plots", action="store_false", help="skip the PNG plots")
+    p.set_defaults(run=_run_demo)
+
+    from ._jobs import register
+
+    register(subs, _sub)
+    return parser
+
+
+# ---------------------------------------------------------------- commands
+Result = tuple[Any, str]
+
+
+def _run_build(a: argparse.Namespace) -> Result:
+    from ..dense import DenseMemory
+    from ..store._readers import read_embeddings
+
+    s = make_spec(BuildSpec, vars(a), positional=("input", "store"))
+    emb = read_embeddings(s.input, column=s.column, id_column=s.id_column)
+    mem = DenseMemory.from_array(emb.vectors, emb.ids, normalize=s.normalize, beta=s.beta)
+    if s.shards is not None:
+        if s.index:
+            raise SpecError("--index cannot be combined with --shards (shards use exact or certified retrieval).")
+        from ..sharding._memory import shard_memory
+
+        shard_memory(mem, s.store, s.shards, by=s.shard_by, overwrite=s.overwrite)
+        data = {"store": str(s.store), "source": emb.to_dict(), "count": len(mem), "dim": mem.dim,
+                "normalize": mem.normalize, "beta": mem.beta, "shards": s.shards, "shard_by": s.shard_by}
+        text = out.table(["store", "patterns", "dim", "normalize", "beta", "shards"],
+                         [[str(s.store), len(mem), mem.dim, mem.normalize, mem.beta, s.shards]],
+                         title=f"built from {emb.source} ({emb.kind})")
+        return data, text
+    index = mem.build_index(s.index) if s.index else None
+    mem.save(s.store, overwrite=s.overwrite)
+    data = {"store": str(s.store), "source": emb.to_dict(), "count": len(mem), "dim": mem.dim,
+            "normalize": mem.normalize, "beta": mem.beta, "index": index}
+    text = out.table(["store", "patterns", "dim", "normalize", "beta", "index"],
+                     [[str(s.store), len(mem), mem.dim, mem.normalize, mem.beta, s.index]],
+                     title=f"built from {emb.source} ({emb.kind})")
+    return data, text
+
+
+def _run_info(a: argparse.Namespace) -> Result:
+    from ..store._folder import describe_store
+
+    s = make_spec(InfoSpec, vars(a), positional=("store",))
+    if _is_sharded(s.store):
+        from ..sharding._memory import open_sharded
+
+        sinfo = open_sharded(s.store, verify=s.verify).describe().to_dict()
+        rows = [[k, v] for k, v in sinfo.items() if not isinstance(v, (list, dict))]
+        return sinfo, out.table(["field", "value"], rows, title=f"sharded store {s.store}")
+    info = describe_store(s.store, verify=s.verify)
+    rows = [[name, e.get("bytes"), e.get("sha256", "")[:16]] for name, e in sorted(info.files.items())]
+    head = out.table(
+        ["store", "patterns", "dim", "normalize", "beta", "ids", "index", "checksums"],
+        [[info.path, info.count, info.dim, info.normalize, info.beta, info.id_kind,
+          (info.index or {}).get("meta", {}).get("settings", {}).get("kind", "yes") if info.index else None,
+          "verified" if info.verified else "not checked"]],
+    )
+    return info.to_dict(), head + "\n\n" + out.table(["file", "bytes", "sha256 (first 16)"], rows)
+
+
+def _is_sharded(store: Any) -> bool:
+    from ..sharding._store import TOP_MANIFEST
+
+    return (Path(store) / TOP_MANIFEST).is_file()
+
+
+class _Cluster:
+    """A sharded store run on a Dask scheduler: the two calls the commands use."""
+
+    def __init__(self, s: Any) -> None:
+        self.s = s
+
+    def retrieve(self, q: np.ndarray, beta: Any, **kw: Any) -> Any:
+        from ..sharding import _dask as distributed
+        return distributed.retrieve(self.s.store, q, beta, client=self.s.scheduler,
+                                    retries=self.s.retries, timeout=self.s.timeout, **kw)
+
+    def nearest(self, q: np.ndarray, k: Any, **kw: Any) -> Any:
+        from ..sharding import _dask as distributed
+        return distributed.nearest(self.s.store, q, k, client=self.s.scheduler,
+                                   retries=self.s.retries, timeout=self.s.timeout, **kw)
+
+
+def _open_store(s: Any) -> tuple[Any, float]:
+    """(memory-like, default beta): a store, a sharded store, or a sharded store on a cluster."""
+    from ..dense import DenseMemory
+
+    if _is_sharded(s.store):
+        from ..sharding._memory import open_sharded
+
+        sharded = open_sharded(s.store)
+        return (_Cluster(s) if s.scheduler else sharded), sharded.beta
+    if s.scheduler:
+        raise SpecError(f"--scheduler needs a sharded store (built with --shards); {str(s.store)!r} is a single store.")
+    mem = DenseMemory.load(s.store, mmap=s.mmap)
+    return mem, mem.beta
+
+
+def _load_queries(s: Any) -> tuple[Any, np.ndarray, list[Any], float]:
+    from ..store._readers import read_embeddings
+
+    mem, default_beta = _open_store(s)
+    emb = read_embeddings(s.queries, column=s.column, id_column=s.id_column)
+    names = emb.ids.tolist() if emb.ids is not None else list(range(emb.vectors.shape[0]))
+    return mem, emb.vectors, names, default_beta
+
+
+def _chunks(q: np.ndarray, s: Any, a: argparse.Namespace, desc: str) -> Any:
+    starts = range(0, q.shape[0], s.chunk)
+    return out.progress(starts, total=len(starts), desc=desc, quiet=a.quiet)
+
+
+def _run_retrieve(a: argparse.Namespace) -> Result:
+    s = make_spec(RetrieveSpec, vars(a), positional=("store", "queries"))
+    if s.states_out is not None and (s.states_out.exists() or s.states_out.suffix != ".npy"):
+        raise SpecError(f"--states-out must name a new .npy file; got {str(s.states_out)!r}.")
+    mem, q, names, default_beta = _load_queries(s)
+    parts = [mem.retrieve(q[i:i + s.chunk], s.beta, steps=s.steps, tol=s.tol, k=s.k, method=s.method)
+             for i in _chunks(q, s, a, "retrieve")]
+    states = np.concatenate([r.states for r in parts])
+    if s.states_out is not None:
+        np.save(s.states_out, states, allow_pickle=False)
+    rows, recs = [], []
+    for r in parts:
+        for j in range(r.states.shape[0]):
+            name = names[len(recs)]
+            energy = None if r.energy is None else float(r.energy[j])
+            recs.append({"query": name, "top_ids": r.top_ids[j], "top_weights": r.top_weights[j],
+                         "energy": energy, "converged": bool(r.converged[j]), "steps": r.steps})
+            rows.append([name, _tops(r.top_ids[j], r.top_weights[j]), energy, bool(r.converged[j])])
+    beta = default_beta if s.beta is None else s.beta
+    data = {"store": str(s.store), "beta": beta, "method": parts[0].method, "queries": recs,
+            "states_out": None if s.states_out is None else str(s.states_out)}
+    text = out.table(["query", "top ids (weight)", "energy", "converged"], rows,
+                     title=f"retrieve: beta={beta:g}, steps<={s.steps}, method={parts[0].method}")
+    return data, text
+
+
+def _tops(ids: np.ndarray, weights: np.ndarray, show: int = 3) -> str:
+    items = [f"{i} ({w:.3f})" for i, w in zip(ids.tolist()[:show], weights.tolist()[:show])]
+    return ", ".join(items) + (" ..." if len(ids) > show else "")
+
+
+def _run_nearest(a: argparse.Namespace) -> Result:
+    s = make_spec(NearestSpec, vars(a), positional=("store", "queries"))
+    mem, q, names, _ = _load_queries(s)
+    if s.index and _is_sharded(s.store):
+        raise SpecError("--index is not available on a sharded store; shards use faiss exact search.")
+    kw = {"index": True} if s.index else {}
+    parts = [mem.nearest(q[i:i + s.chunk], s.k, metric=s.metric, **kw) for i in _chunks(q, s, a, "nearest")]
+    ids = np.concatenate([r.ids for r in parts])
+    scores = np.concatenate([r.scores for r in parts])
+    recs = [{"query": n, "ids": i, "scores": sc} for n, i, sc in zip(names, ids, scores)]
+    rows = [[n, _tops(i, sc)] for n, i, sc in zip(names, ids, scores)]
+    label = "inner product" if s.metric == "ip" else "squared L2"
+    text = out.table(["query", f"nearest ids ({label})"], rows, title=f"nearest: k={ids.shape[1]}")
+    return {"store": str(s.store), "metric": s.metric, "queries": recs}, text
+
+
+def _run_demo(a: argparse.Namespace) -> Result:
+    from .demo import run_demo
+
+    s = make_spec(DemoSpec, vars(a))
+    report = run_demo(s.out, n_photos=s.photos, seed=s.seed, plots=s.plots, quiet=a.quiet)
+    return report.to_dict(), report.summary_text()
+
+
+# -------------------------------------------------------------------- main
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the ``densemem`` command; return its exit code (0 ok, 1 failure, 2 usage)."""
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:
+        return int(exc.code or 0)
+    prog = f"{PROG} {args.command}"
+    try:
+        data, text = args.run(args)
+    except SpecError as exc:
+        sys.stderr.write(f"{prog}: error: {exc}\n")
+        if args.debug:
+            traceback.print_exc()
+        return 2
+    except (DenseMemError, OSError, ValueError) as exc:
+        if args.debug:
+            traceback.print_exc()
+        sys.stderr.write(f"{prog}: error: {_one_line(exc)}\n")
+        return 1
+    except KeyboardInterrupt:
+        sys.stderr.write(f"{prog}: interrupted\n")
+        return 130
+    except Exception as exc:  # a bug, not a user error: still one line unless --debug
+        if args.debug:
+            traceback.print_exc()
+        sys.stderr.write(f"{prog}: internal error: {type(exc).__name__}: {_one_line(exc)} (rerun with --debug)\n")
+        return 1
+    sys.stdout.write((out.to_json(data) if args.json else text) + "\n")
+    return 0
+
+
+def _one_line(exc: BaseException) -> str:
+    msg = str(exc).strip().splitlines()
+    return (msg[0] if msg else type(exc).__name__) + ("" if len(msg) <= 1 else " ...")
+
+
+if __name__ == "__main__":  # pragma: no cover
+    raise SystemExit(main())

@@ -1,0 +1,102 @@
+"""Tiling over stored rows from a memory budget, and query chunks over threads.
+
+The exact path never forms an (n_queries x n_patterns) matrix: it walks the
+stored rows in tiles of ``tile_rows`` and folds each tile's partial into a
+running one. Tile size comes from a budget in MiB for the (query chunk x tile)
+score block.
+
+Threads: NumPy's element-wise passes (subtract, exp, sum) are single-threaded,
+so splitting the queries over one Python thread per core with single-threaded
+BLAS keeps both cores busy through the whole pipeline. ``bench/retrieve_vs_faiss.py``
+measures this against one thread with multi-threaded BLAS.
+"""
+
+from __future__ import annotations
+
+import os
+from concurrent.futures import ThreadPoolExecutor
+from typing import Callable, TypeVar
+
+import numpy as np
+from threadpoolctl import threadpool_limits
+
+from . import partial as P
+__all__ = ["tile_rows_for", "reduce_rows", "map_query_chunks", "n_threads_default"]
+
+T = TypeVar("T")
+
+DEFAULT_TILE_MIB = 16.0
+
+
+def n_threads_default() -> int:
+    """Cores available to this process."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # pragma: no cover - not Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def tile_rows_for(n_queries: int, tile_mib: float) -> int:
+    """Rows per tile so that an (n_queries x rows) float32 block fits ``tile_mib``."""
+    rows = int(tile_mib * 2**20 / (4 * max(n_queries, 1)))
+    return max(rows, 1)
+
+
+def reduce_rows(
+    qz: np.ndarray,
+    patterns: np.ndarray,
+    *,
+    k: int,
+    tile_rows: int,
+    need_acc: bool = True,
+) -> P.Partial:
+    """Fold all stored rows, tile by tile, into one partial.
+
+    Parameters
+    ----------
+    qz : ndarray of shape (n_queries, dim), float32
+        Queries already multiplied by beta (so the GEMM gives z = beta * score).
+    patterns : ndarray of shape (n_patterns, dim), float32
+    k : int
+        Top-list size.
+    tile_rows : int
+        Stored rows per tile.
+    need_acc : bool
+        Whether the weighted sum (second GEMM) is needed.
+    """
+    n, dim = patterns.shape
+    b = qz.shape[0]
+    run = P.empty(b, dim, k, need_acc=need_acc)
+    if n == 0:
+        return run
+    t = min(tile_rows, n)
+    buf = np.empty(b * t, dtype=np.float32)
+    first = True
+    for start in range(0, n, t):
+        rows = patterns[start : start + t]
+        width = rows.shape[0]
+        z = buf[: b * width].reshape(b, width)
+        np.matmul(qz, rows.T, out=z)
+        blk = P.block(z, rows, k=k, offset=start, need_acc=need_acc)
+        run = blk if first else P.merge(run, blk)
+        first = False
+    return run
+
+
+def map_query_chunks(
+    fn: Callable[[slice], T], n_queries: int, *, n_threads: int, chunk: int = 256
+) -> list[T]:
+    """Run ``fn`` on contiguous query slices of at most ``chunk`` rows.
+
+    With several threads the slices go to a pool of ``n_threads`` workers with
+    single-threaded BLAS (NumPy's element-wise passes are single-threaded, so
+    this keeps every core busy through the whole pipeline). With one slice,
+    ``fn`` runs once with the BLAS library's own threads.
+    """
+    bounds = list(range(0, n_queries, chunk)) + [n_queries]
+    slices = [slice(a, b) for a, b in zip(bounds[:-1], bounds[1:])]
+    if n_threads <= 1 or len(slices) == 1:
+        return [fn(s) for s in slices]
+    with threadpool_limits(limits=1, user_api="blas"):
+        with ThreadPoolExecutor(max_workers=n_threads) as pool:
+            return list(pool.map(fn, slices))

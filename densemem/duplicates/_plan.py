@@ -1,0 +1,377 @@
+"""The near-duplicate plan object and its files (written atomically, nothing else touched)."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import os
+import tempfile
+from dataclasses import dataclass, fields
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ..errors import InputTypeError, InputValueError
+from ..results import _plain
+
+__all__ = ["PLAN_FILES", "DuplicateGroup", "DuplicatePlan"]
+
+PLAN_FILES = {
+    "groups_csv": "groups.csv",
+    "groups_json": "groups.json",
+    "groups_parquet": "groups.parquet",
+    "keep": "keep.txt",
+    "drop": "drop.txt",
+}
+_CSV_COLUMNS = (
+    "group", "id", "row", "representative", "size",
+    "min_similarity", "mean_similarity", "similarity_to_representative",
+)
+
+
+@dataclass(frozen=True, slots=True)
+class DuplicateGroup:
+    """One group of near-duplicates.
+
+    Attributes
+    ----------
+    ids, rows : ndarray
+        Member ids and their row numbers in the input, in input order.
+    representative : int or str
+        Id of the member kept.
+    min_similarity, mean_similarity : float
+        Smallest and mean cosine similarity over all member pairs.
+    similarity_to_representative : ndarray of float64
+        Each member's cosine similarity to the representative.
+    """
+
+    ids: np.ndarray
+    rows: np.ndarray
+    representative: Any
+    min_similarity: float
+    mean_similarity: float
+    similarity_to_representative: np.ndarray
+
+    def __len__(self) -> int:
+        return int(self.rows.shape[0])
+
+
+@dataclass(frozen=True, slots=True, repr=False)
+class DuplicatePlan:
+    """What :func:`densemem.duplicates.find_duplicates` returns: groups and a keep/drop plan.
+
+    Nothing is removed anywhere: the plan lists what a caller could drop.
+    Groups are packed: group ``g`` holds ``member_ids[group_offsets[g]:group_offsets[g+1]]``.
+
+    Attributes
+    ----------
+    threshold : float
+        Cosine similarity at or above which two items are near-duplicates.
+    method : str
+        "graph" or "attractor".
+    candidates : str
+        Where candidate pairs came from: "exact", "ivf", "hnsw" or "attractor".
+    candidate_params : dict
+        The source's settings and checks (index, nlist, nprobe, k, sample pair
+        recall, beta, steps, why it was chosen, ...).
+    no_chaining : str
+        "off" (connected components), "star" or "complete".
+    representative_rule : str
+        "medoid", "first" or "quality".
+    n_items, n_pairs : int
+        Input rows; similarity edges found (-1 for the attractor method).
+    group_offsets : ndarray of int64, shape (n_groups + 1,)
+    member_ids, member_rows : ndarray, shape (n_members,)
+    similarity_to_representative : ndarray of float64, shape (n_members,)
+    representative_ids, representative_rows : ndarray, shape (n_groups,)
+    min_similarity, mean_similarity : ndarray of float64, shape (n_groups,)
+    keep_ids : ndarray
+        Every id not dropped, in input order (representatives, singletons and
+        excluded zero vectors).
+    drop_ids : ndarray
+        Non-representative members of every group, in input order.
+    excluded_zero_ids : ndarray
+        Rows with zero norm: no cosine exists, so they were left out of the search.
+    seconds : float
+        Wall time of the search.
+    pair_ids : ndarray of shape (n_pairs, 2) or None
+        With ``return_pairs=True``: the ids at both ends of every edge.
+    pair_similarity : ndarray of float64, shape (n_pairs,), or None
+        Their cosine similarities.
+    """
+
+    threshold: float
+    method: str
+    candidates: str
+    candidate_params: dict
+    no_chaining: str
+    representative_rule: str
+    n_items: int
+    n_pairs: int
+    group_offsets: np.ndarray
+    member_ids: np.ndarray
+    member_rows: np.ndarray
+    similarity_to_representative: np.ndarray
+    representative_ids: np.ndarray
+    representative_rows: np.ndarray
+    min_similarity: np.ndarray
+    mean_similarity: np.ndarray
+    keep_ids: np.ndarray
+    drop_ids: np.ndarray
+    excluded_zero_ids: np.ndarray
+    seconds: float
+    pair_ids: np.ndarray | None = None
+    pair_similarity: np.ndarray | None = None
+
+    # ----------------------------------------------------------- access
+    @property
+    def n_groups(self) -> int:
+        """Number of groups (each with at least two members)."""
+        return int(self.group_offsets.shape[0] - 1)
+
+    def __len__(self) -> int:
+        return self.n_groups
+
+    def group(self, g: int) -> DuplicateGroup:
+        """Group number ``g`` as a :class:`DuplicateGroup`.
+
+        Examples
+        --------
+        >>> import numpy as np, densemem
+        >>> x = np.array([[1.0, 0.0], [1.0, 0.001], [0.0, 1.0]])
+        >>> plan = densemem.find_duplicates(x, threshold=0.99)
+        >>> plan.group(0).ids.tolist()
+        [0, 1]
+        """
+        if not isinstance(g, (int, np.integer)) or isinstance(g, bool):
+            raise InputTypeError(f"DuplicatePlan.group: `g` must be an integer; got {type(g).__name__}.")
+        if not 0 <= int(g) < self.n_groups:
+            raise InputValueError(
+                f"DuplicatePlan.group: `g` must be in [0, {self.n_groups}); got {g}."
+            )
+        a, b = int(self.group_offsets[g]), int(self.group_offsets[g + 1])
+        return DuplicateGroup(
+            ids=self.member_ids[a:b],
+            rows=self.member_rows[a:b],
+            representative=self.representative_ids[g].item(),
+            min_similarity=float(self.min_similarity[g]),
+            mean_similarity=float(self.mean_similarity[g]),
+            similarity_to_representative=self.similarity_to_representative[a:b],
+        )
+
+    @property
+    def groups(self) -> tuple[DuplicateGroup, ...]:
+        """Every group, built on access."""
+        return tuple(self.group(g) for g in range(self.n_groups))
+
+    def __repr__(self) -> str:
+        return (
+            f"DuplicatePlan(n_items={self.n_items}, n_groups={self.n_groups}, "
+            f"drop={self.drop_ids.shape[0]}, threshold={self.threshold:g}, method={self.method!r}, "
+            f"candidates={self.candidates!r}, no_chaining={self.no_chaining!r})"
+        )
+
+    def summary(self) -> dict[str, Any]:
+        """Scalars and settings (no per-member arrays), JSON-ready.
+
+        Examples
+        --------
+        >>> import numpy as np, densemem
+        >>> x = np.array([[1.0, 0.0], [1.0, 0.001], [0.0, 1.0]])
+        >>> plan = densemem.find_duplicates(x, threshold=0.99)
+        >>> plan.summary()["n_groups"]
+        1
+        """
+        return {
+            "threshold": self.threshold,
+            "method": self.method,
+            "candidates": self.candidates,
+            "candidate_params": _plain_deep(self.candidate_params),
+            "no_chaining": self.no_chaining,
+            "representative_rule": self.representative_rule,
+            "n_items": self.n_items,
+            "n_pairs": self.n_pairs,
+            "n_groups": self.n_groups,
+            "n_keep": int(self.keep_ids.shape[0]),
+            "n_drop": int(self.drop_ids.shape[0]),
+            "n_excluded_zero": int(self.excluded_zero_ids.shape[0]),
+            "seconds": self.seconds,
+        }
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain-Python (JSON-ready) copy of every field.
+
+        Examples
+        --------
+        >>> import numpy as np, densemem
+        >>> x = np.array([[1.0, 0.0], [1.0, 0.001], [0.0, 1.0]])
+        >>> plan = densemem.find_duplicates(x, threshold=0.99)
+        >>> plan.to_dict()["threshold"]
+        0.99
+        """
+        return {f.name: _plain_deep(getattr(self, f.name)) for f in fields(self)}
+
+    # ----------------------------------------------------------- files
+    def write(self, folder: str | os.PathLike[str], *, overwrite: bool = False) -> dict[str, str]:
+        """Write the plan files into ``folder`` (created if missing).
+
+        Files: ``groups.csv`` and ``groups.parquet`` (one row per member;
+        parquet only when pyarrow is installed), ``groups.json`` (summary,
+        groups, excluded zero vectors), ``keep.txt`` and ``drop.txt`` (one id a
+        line). Each is written to a temporary file in ``folder``, flushed to
+        disk and renamed into place. With ``overwrite=True`` a plan file this
+        plan does not write (``groups.parquet`` from an earlier run with
+        pyarrow, when pyarrow is now missing) is removed, so the folder never
+        mixes two plans; no file of any other name is touched.
+
+        Returns
+        -------
+        dict
+            File role -> path written.
+
+        Raises
+        ------
+        InputValueError
+            A plan file (any of the names above) exists and ``overwrite`` is
+            False, or ``folder`` is a file.
+
+        Examples
+        --------
+        >>> import numpy as np, tempfile, densemem.duplicates as dd
+        >>> plan = dd.find_duplicates(np.array([[1.0, 0.0], [1.0, 0.0], [0.0, 1.0]]))
+        >>> sorted(plan.write(tempfile.mkdtemp()))[:2]
+        ['drop', 'groups_csv']
+        """
+        where = "DuplicatePlan.write"
+        out = Path(folder)
+        if out.exists() and not out.is_dir():
+            raise InputValueError(f"{where}: `folder` must be a folder; {str(out)!r} is a file.")
+        blobs = self._blobs()
+        targets = {role: out / PLAN_FILES[role] for role in blobs}
+        if not overwrite:
+            there = [str(out / name) for name in PLAN_FILES.values() if (out / name).exists()]
+            if there:
+                raise InputValueError(
+                    f"{where}: {there[0]!r} already exists; pass overwrite=True or choose another folder."
+                )
+        out.mkdir(parents=True, exist_ok=True)
+        for role, data in blobs.items():
+            _atomic_write(targets[role], data)
+        for role, name in PLAN_FILES.items():  # stale files of an earlier plan, own names only
+            if role not in targets:
+                stale = out / name
+                if stale.is_file() or stale.is_symlink():
+                    stale.unlink()
+        _fsync_dir(out)
+        return {role: str(p) for role, p in targets.items()}
+
+    def _member_table(self) -> dict[str, np.ndarray]:
+        sizes = np.diff(self.group_offsets)
+        gid = np.repeat(np.arange(self.n_groups), sizes)
+        rep_rows = np.repeat(self.representative_rows, sizes)
+        return {
+            "group": gid,
+            "id": self.member_ids,
+            "row": self.member_rows,
+            "representative": self.member_rows == rep_rows,
+            "size": np.repeat(sizes, sizes),
+            "min_similarity": np.repeat(self.min_similarity, sizes),
+            "mean_similarity": np.repeat(self.mean_similarity, sizes),
+            "similarity_to_representative": self.similarity_to_representative,
+        }
+
+    def _blobs(self) -> dict[str, bytes]:
+        table = self._member_table()
+        blobs = {
+            "groups_csv": _csv_bytes(table),
+            "groups_json": self._json_bytes(),
+            "keep": _lines(self.keep_ids),
+            "drop": _lines(self.drop_ids),
+        }
+        parquet = _parquet_bytes(table)
+        if parquet is not None:
+            blobs["groups_parquet"] = parquet
+        return blobs
+
+    def _json_bytes(self) -> bytes:
+        groups = []
+        for g in range(self.n_groups):
+            a, b = int(self.group_offsets[g]), int(self.group_offsets[g + 1])
+            groups.append({
+                "group": g,
+                "representative": self.representative_ids[g].item(),
+                "ids": self.member_ids[a:b].tolist(),
+                "rows": self.member_rows[a:b].tolist(),
+                "min_similarity": float(self.min_similarity[g]),
+                "mean_similarity": float(self.mean_similarity[g]),
+                "similarity_to_representative": self.similarity_to_representative[a:b].tolist(),
+            })
+        doc = {
+            "summary": self.summary(),
+            "groups": groups,
+            "excluded_zero_ids": self.excluded_zero_ids.tolist(),
+        }
+        return (json.dumps(doc, indent=1) + "\n").encode("utf-8")
+
+
+def _plain_deep(value: Any) -> Any:
+    if isinstance(value, dict):
+        return {str(k): _plain_deep(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain_deep(v) for v in value]
+    return _plain(value)
+
+
+def _csv_bytes(table: dict[str, np.ndarray]) -> bytes:
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(_CSV_COLUMNS)
+    cols = [table[c].tolist() for c in _CSV_COLUMNS]
+    for row in zip(*cols):
+        w.writerow([repr(v) if isinstance(v, float) else v for v in row])
+    return buf.getvalue().encode("utf-8")
+
+
+def _lines(ids: np.ndarray) -> bytes:
+    return "".join(f"{v}\n" for v in ids.tolist()).encode("utf-8")
+
+
+def _parquet_bytes(table: dict[str, np.ndarray]) -> bytes | None:
+    try:
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+    except ImportError:
+        return None
+    buf = pa.BufferOutputStream()
+    pq.write_table(pa.table({c: table[c] for c in _CSV_COLUMNS}), buf)
+    return buf.getvalue().to_pybytes()
+
+
+def _atomic_write(path: Path, data: bytes) -> None:
+    """Temp file in the same folder, flush + fsync, then os.replace."""
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def _fsync_dir(folder: Path) -> None:
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:  # some platforms cannot open folders
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)

@@ -1,0 +1,175 @@
+"""The on-disk side of sharded stores: the top manifest, atomic writes, loading one shard.
+
+See :mod:`densemem.sharding` for the layout. Each shard is a plain store folder
+written by :func:`densemem.store.save_memory`; this module adds ``shards.json``.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import secrets
+import shutil
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ..core.table import PatternTable
+from ..errors import InputTypeError, InputValueError, StoreFormatError
+from ..store._folder import (
+    MANIFEST,
+    _fsync_dir,
+    _sha256,
+    load_memory,
+    read_json_manifest,
+    save_memory,
+)
+
+SHARDS_FORMAT_NAME = "densemem-shards"
+SHARDS_FORMAT_VERSION = 1
+TOP_MANIFEST = "shards.json"
+_SPLITS = ("round_robin", "contiguous")
+
+
+# ------------------------------------------------------------------ helpers
+def _as_path(path: Any, where: str) -> Path:
+    if not isinstance(path, (str, os.PathLike)):
+        raise InputTypeError(f"{where}: `path` must be a str or os.PathLike; got {type(path).__name__}.")
+    p = Path(os.fspath(path))
+    if p.name in ("", ".", ".."):
+        raise InputValueError(f"{where}: `path` must name a folder; got {os.fspath(path)!r}.")
+    return p.absolute()
+
+
+def _shard_name(i: int) -> str:
+    return f"shard-{i:05d}"
+
+
+def _max_norm(x: np.ndarray) -> float:
+    """Largest row norm, computed as :attr:`DenseMemory.max_norm` does."""
+    return float(np.sqrt(np.max(np.einsum("ij,ij->i", x, x)))) if len(x) else 0.0
+
+
+def _write_json_atomic(path: Path, payload: dict[str, Any]) -> None:
+    """Write ``path`` by temp file + fsync + rename + fsync of the folder."""
+    tmp = path.parent / f".{path.name}.tmp-{os.getpid()}-{secrets.token_hex(4)}"
+    text = json.dumps(payload, indent=2, sort_keys=True).encode("utf-8")
+    try:
+        with open(tmp, "xb") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    _fsync_dir(path.parent)
+
+
+def _is_sharded(d: Path) -> bool:
+    try:
+        with open(d / TOP_MANIFEST, encoding="utf-8") as fh:
+            return json.load(fh).get("format") == SHARDS_FORMAT_NAME
+    except (OSError, ValueError, AttributeError):
+        return False
+
+
+def load_shard(folder: str, checksum: str, *, verify: bool, where: str, number: int) -> Any:
+    """Load one shard memory-mapped after checking its manifest against ``checksum``.
+
+    Raises a :class:`StoreFormatError` naming the shard folder when the shard is
+    missing, damaged or was rewritten since the top manifest was written.
+    """
+    mpath = Path(folder) / MANIFEST
+    try:
+        found = _sha256(mpath)
+    except OSError as exc:
+        raise StoreFormatError(
+            f"{where}: shard {number} at {folder!r} cannot be loaded: {mpath.name} is unreadable ({exc.strerror})."
+        ) from None
+    if found != checksum:
+        raise StoreFormatError(
+            f"{where}: shard {number} at {folder!r} does not match {TOP_MANIFEST} (its manifest checksum "
+            "changed: rewritten or interrupted during add?)."
+        )
+    try:
+        return load_memory(folder, mmap=True, verify=verify)
+    except (StoreFormatError, OSError) as exc:
+        raise StoreFormatError(f"{where}: shard {number} at {folder!r} cannot be loaded: {exc}") from None
+
+
+# ------------------------------------------------------------------ building
+def _split(n: int, n_shards: int, by: str) -> list[np.ndarray]:
+    if by == "round_robin":
+        return [np.arange(i, n, n_shards) for i in range(n_shards)]
+    return np.array_split(np.arange(n), n_shards)
+
+
+def _fill(memory: Any, tmp: Path, n_shards: int, by: str) -> dict[str, Any]:
+    from ..dense import DenseMemory
+
+    table = memory._table
+    ids = table.ids
+    shards = []
+    for i, rows in enumerate(_split(len(memory), n_shards, by)):
+        part = DenseMemory(memory.dim, normalize=memory.normalize, beta=memory.beta)
+        part._table = PatternTable.trusted(np.ascontiguousarray(table.x[rows]), ids[rows].copy(),
+                                           normalize=memory.normalize)
+        folder = tmp / _shard_name(i)
+        save_memory(part, folder)
+        shards.append({
+            "folder": folder.name, "count": int(rows.size), "max_norm": _max_norm(part._table.x),
+            "manifest_sha256": _sha256(folder / MANIFEST),
+        })
+    from .._version import __version__
+    return {
+        "format": SHARDS_FORMAT_NAME, "format_version": SHARDS_FORMAT_VERSION,
+        "written_by": f"densemem {__version__}", "dim": int(memory.dim), "normalize": bool(memory.normalize),
+        "beta": float(memory.beta), "id_kind": "int64" if ids.dtype.kind in "iu" else "str",
+        "count": len(memory), "next_id": int(table._next_id), "by": by, "shards": shards,
+    }
+
+
+def _check_target(p: Path, overwrite: bool, where: str) -> None:
+    if not p.exists():
+        return
+    if not p.is_dir():
+        raise InputValueError(f"{where}: `path` {str(p)!r} exists and is not a folder; refusing to replace it.")
+    if _is_sharded(p):
+        if not overwrite:
+            raise InputValueError(
+                f"{where}: a sharded store already exists at {str(p)!r} and overwrite=False; "
+                "pass overwrite=True to replace it."
+            )
+    elif any(p.iterdir()):
+        raise InputValueError(f"{where}: {str(p)!r} is a folder that is not a sharded store; refusing to replace it.")
+
+
+def _swap_in(tmp: Path, p: Path) -> None:
+    """Rename the finished folder into place (an old store is moved aside, then deleted)."""
+    prev = p.parent / f".{p.name}.densemem-shards-prev"
+    if prev.exists():
+        shutil.rmtree(prev)
+    if p.exists():
+        os.rename(p, prev)
+    os.rename(tmp, p)
+    _fsync_dir(p.parent)
+    if prev.exists():
+        shutil.rmtree(prev)
+
+
+def _read_top(p: Path, where: str) -> dict[str, Any]:
+    mpath = p / TOP_MANIFEST
+    man = read_json_manifest(
+        mpath, name=SHARDS_FORMAT_NAME, version=SHARDS_FORMAT_VERSION, where=where,
+        missing=f"there is no sharded store at {str(p)!r} ({TOP_MANIFEST} is missing).",
+    )
+    shards = man.get("shards")
+    keys = {"folder", "count", "max_norm", "manifest_sha256"}
+    if not isinstance(shards, list) or not shards or not all(isinstance(s, dict) and keys <= s.keys() for s in shards):
+        raise StoreFormatError(f"{where}: {str(mpath)!r} has a missing or bad 'shards' list.")
+    for key in ("dim", "count", "normalize", "beta", "id_kind", "next_id", "by"):
+        if key not in man:
+            raise StoreFormatError(f"{where}: {str(mpath)!r} has no {key!r} entry.")
+    return man
