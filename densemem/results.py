@@ -75,6 +75,8 @@ class RetrievalResult(_ResultMixin):
         Index path with ``measure=True``: fraction of faiss's exact top-kc
         (kc = the candidates fetched, ``max(n_candidates, k)``) that the index
         found, averaged over a sample of queries.
+    beta : float or None
+        The inverse temperature used (the memory's own when the call gave none).
     """
 
     states: np.ndarray
@@ -89,6 +91,7 @@ class RetrievalResult(_ResultMixin):
     k_used: np.ndarray | None = None
     fell_back: np.ndarray | None = None
     candidate_recall: float | None = None
+    beta: float | None = None
 
 
 @dataclass(frozen=True, slots=True, repr=False)

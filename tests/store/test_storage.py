@@ -15,7 +15,14 @@ import pytest
 import densemem
 from densemem import DenseMemory, InputTypeError, InputValueError, StoreFormatError
 from densemem.store import _folder as storage
-from densemem.store import describe_store, load_memory, save_memory
+from densemem.store import describe_store
+
+
+def save_memory(mem: DenseMemory, path, **kw) -> None:  # the store's one writer, through the memory
+    mem.save(path, **kw)
+
+
+load_memory = DenseMemory.load
 
 
 def _mem(rng: np.random.Generator, n: int = 40, d: int = 8, *, str_ids: bool = False, normalize: bool = False):
@@ -373,9 +380,7 @@ def test_unreadable_index_file(store, monkeypatch):
 # ---------------------------------------------------------------- bad saves
 def test_save_refusals(tmp_path, rng):
     mem = _mem(rng, n=3)
-    with pytest.raises(InputTypeError, match="DenseMemory.save: `memory` must be a DenseMemory; got ndarray"):
-        save_memory(np.eye(3), tmp_path / "s")
-    with pytest.raises(InputTypeError, match="`path` must be a str or os.PathLike; got int"):
+    with pytest.raises(InputTypeError, match="DenseMemory.save: `path` must be a str or os.PathLike; got int"):
         save_memory(mem, 5)
     with pytest.raises(InputValueError, match="`path` must name a folder; got '.'"):
         save_memory(mem, ".")
