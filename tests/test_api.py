@@ -140,3 +140,16 @@ def test_results_are_frozen_dataclasses_with_to_dict() -> None:
         assert dataclasses.is_dataclass(cls)
         assert cls.__dataclass_params__.frozen  # type: ignore[attr-defined]
         assert callable(getattr(cls, "to_dict"))
+
+
+def test_import_loads_no_heavy_module() -> None:
+    # Project rule (fast start): `import densemem` loads neither faiss, scipy nor pydantic; they load
+    # when a name that needs them is first used. Checked in a fresh interpreter.
+    import subprocess
+    import sys
+
+    code = "import sys, densemem; print(sorted(m for m in ('faiss', 'scipy', 'pydantic') if m in sys.modules))"
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "[]"
+    code = "import densemem; densemem.DenseMemory; densemem.tune_beta; print(densemem.DenseMemory.__name__)"
+    assert subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.strip() == "DenseMemory"
