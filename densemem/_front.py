@@ -19,7 +19,7 @@ from .core.rows import RowSource
 from .options import METHODS, Layout, Method, RetrievalOptions, prepare_queries, retrieval_options
 from ._validation import check_k, check_positive_int, check_queries
 from .errors import InputValueError
-from .results import NearestResult, RetrievalResult
+from .results import Deferred, NearestResult, RetrievalResult, resolve
 
 __all__ = ["Retriever"]
 
@@ -29,6 +29,7 @@ class Retriever:
 
     _methods: tuple[str, ...] = METHODS
     _name = "Retriever"
+    _lazy_energy = True  # the energy pass runs when RetrievalResult.energy is first read
 
     # ------------------------------------------------------- subclass hooks
     def _layout(self) -> Layout:  # pragma: no cover - abstract
@@ -93,8 +94,11 @@ class Retriever:
             On a sharded store every shard applies the method to its own rows
             and the partials merge exactly.
         return_energy : bool, default True
-            Compute the energy of the returned states (one more pass over the
-            stored rows, without the weighted sum).
+            Give the energy of the returned states. It costs one more pass over
+            the stored rows (without the weighted sums, by the same method, so
+            certified queries use their certified candidates), run when
+            ``result.energy`` is first read: a call that never reads it costs
+            the retrieval alone. ``False``: ``energy`` is None.
         tol_mass : float, default 1e-6
             Certified/auto: largest omitted softmax fraction accepted.
         k_max : int, default 1024
@@ -145,6 +149,7 @@ class Retriever:
             S.iterate(
                 source, q[i:i + size], beta=opts.beta, steps=opts.steps, tol=opts.tol, k=opts.k, method=opts.method,
                 cert=opts.certified, return_energy=opts.return_energy, count=layout.count, max_norm=layout.max_norm,
+                lazy_energy=self._lazy_energy,
             )
             for i in range(0, q.shape[0], size)
         ]
@@ -264,6 +269,8 @@ def _join(batches: list[dict[str, Any]], count: int) -> dict[str, Any]:
             out[key] = vals[0]
         elif key == "method":
             out[key] = "certified" if "certified" in vals else vals[0]
+        elif key == "_energy" and any(isinstance(v, Deferred) for v in vals):
+            out[key] = Deferred(lambda vals=vals: np.concatenate([resolve(v) for v in vals]))
         elif all(v is None for v in vals):
             out[key] = None
         else:

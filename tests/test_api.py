@@ -82,7 +82,7 @@ def test_every_public_name_has_a_docstring(name: str) -> None:
 
 def _public_members(cls: type) -> list[tuple[str, object]]:
     out = []
-    fields = {f.name for f in dataclasses.fields(cls)} if dataclasses.is_dataclass(cls) else set()
+    fields = {f.name.lstrip("_") for f in dataclasses.fields(cls)} if dataclasses.is_dataclass(cls) else set()
     for name, value in vars(cls).items():
         if name.startswith("_") or name in fields:  # dataclass fields: see the Attributes test
             continue
@@ -131,7 +131,7 @@ def test_result_fields_are_documented_under_attributes(cls: type) -> None:
     assert "Attributes\n----------" in doc
     attrs = doc.split("Attributes\n----------", 1)[1]
     listed = {line.split(":")[0].strip() for line in attrs.splitlines() if line and not line.startswith(" ")}
-    missing = [f.name for f in dataclasses.fields(cls) if f.name not in listed]
+    missing = [f.name.lstrip("_") for f in dataclasses.fields(cls) if f.name.lstrip("_") not in listed]
     assert not missing, f"{cls.__name__}: undocumented fields {missing}"
 
 

@@ -17,7 +17,7 @@ import numpy as np
 
 from .candidates import CertifiedOptions
 from .rows import AUTO_K_START, RowSource, finish
-from ..results import RetrievalResult
+from ..results import Deferred, RetrievalResult
 
 __all__ = ["Steps", "run_steps", "iterate", "energy", "shape_result"]
 
@@ -85,6 +85,7 @@ def iterate(
     return_energy: bool,
     count: int,
     max_norm: float,
+    lazy_energy: bool = False,
 ) -> dict[str, Any]:
     """The fields of a :class:`RetrievalResult` for 2-D queries ``q`` (see :func:`shape_result`)."""
     certified = False
@@ -105,9 +106,14 @@ def iterate(
     if "mass_bound" in info:
         info["state_bound"] = 2.0 * max_norm * info["mass_bound"]
     used = method if method != "auto" else ("certified" if certified else "exact")
-    e = energy(source, run.states, beta, cert=cert, count=count, max_norm=max_norm) if return_energy else None
+    e: Any = None
+    if return_energy:
+        states = run.states
+        e = Deferred(lambda: energy(source, states, beta, cert=cert, count=count, max_norm=max_norm))
+        if not lazy_energy:
+            e = e()
     return dict(
-        states=run.states, top_ids=run.ids, top_weights=run.weights, energy=e,
+        states=run.states, top_ids=run.ids, top_weights=run.weights, _energy=e,
         steps=run.done, converged=run.converged, method=used, beta=beta, **info,
     )
 
@@ -142,9 +148,12 @@ def shape_result(was_1d: bool, **fields: Any) -> RetrievalResult:
     """A :class:`RetrievalResult`, without the query axis for a 1-D query."""
     if was_1d:
         for key, val in fields.items():
-            if isinstance(val, np.ndarray) and val.ndim >= 1:
+            if isinstance(val, np.ndarray) and val.ndim >= 1 and key != "_energy":
                 fields[key] = val[0]
-        if fields.get("energy") is not None:
-            fields["energy"] = float(fields["energy"])
+        e = fields.get("_energy")
+        if isinstance(e, Deferred):
+            fields["_energy"] = Deferred(lambda: float(e()[0]))
+        elif e is not None:
+            fields["_energy"] = float(np.asarray(e).reshape(-1)[0])
         fields["converged"] = bool(fields["converged"])
     return RetrievalResult(**fields)

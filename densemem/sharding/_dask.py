@@ -295,6 +295,7 @@ class ClusterShards(Retriever):
 
     _methods = S.SHARD_METHODS
     _name = "ClusterShards"
+    _lazy_energy = False  # the client may be closed by the time a result is read
 
     def __init__(self, store: Any, client: Any, *, retries: Any = 2, timeout: Any = None, verify: Any = True) -> None:
         where = "ShardedMemory.on_cluster"
