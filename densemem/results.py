@@ -118,6 +118,10 @@ class RetrievalResult(_ResultMixin):
     candidate_recall: float | None = None
     beta: float | None = None
 
+    def __reduce__(self) -> Any:  # pickles with its energy computed (a Deferred holds the rows)
+        values = [self.energy if f.name == "_energy" else getattr(self, f.name) for f in fields(self)]
+        return (type(self), tuple(values))
+
     @property
     def energy(self) -> Any:
         """Log-sum-exp energy of ``states`` (see the class Attributes)."""
