@@ -16,7 +16,7 @@ errors. Each job package keeps its own option and report classes:
 
 from typing import TYPE_CHECKING, Any
 
-from ._version import __version__
+from ._version import __version__ as __version__
 from .errors import (
     DenseMemError,
     InputTypeError,

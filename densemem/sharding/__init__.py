@@ -6,13 +6,12 @@ exact merge and front door as one machine: here, or on a Dask cluster through
 :meth:`ShardedMemory.on_cluster` (a :class:`ClusterShards`).
 """
 
-from ._dask import ClusterShards, SchedulerSpec
+from ._dask import ClusterShards
 from ._memory import (
     SHARDS_FORMAT_NAME,
     SHARDS_FORMAT_VERSION,
     ShardedMemory,
     ShardedStoreInfo,
-    ShardSpec,
     open_sharded,
     open_store,
     shard_memory,
@@ -22,8 +21,6 @@ __all__ = [
     "SHARDS_FORMAT_NAME",
     "SHARDS_FORMAT_VERSION",
     "ClusterShards",
-    "SchedulerSpec",
-    "ShardSpec",
     "ShardedMemory",
     "ShardedStoreInfo",
     "open_sharded",

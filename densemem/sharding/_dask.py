@@ -81,15 +81,13 @@ Examples
 
 from __future__ import annotations
 
-import os
 import threading
 import time
 import uuid
 from collections.abc import Callable
-from typing import Any, Literal
+from typing import Any
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field
 
 from . import _ops as S
 from .._front import Retriever
@@ -100,22 +98,12 @@ from ..options import Layout, RetrievalOptions
 from .._validation import check_nonneg_float, check_positive_int
 from ..errors import InputTypeError, InputValueError, MissingExtraError
 
-__all__ = ["ClusterShards", "SchedulerSpec"]
+__all__ = ["ClusterShards"]
 
 _CACHE: dict[str, tuple[str, Any]] = {}  # per worker process: folder -> (checksum, memory)
 _LOCKS: dict[str, threading.Lock] = {}
 _GUARD = threading.Lock()
 _LOADS: list[str] = []  # folders loaded by this process (for tests and diagnostics)
-
-
-class SchedulerSpec(BaseModel):
-    """Options of ``densemem retrieve/nearest --scheduler tcp://host:port`` (validated at the CLI boundary)."""
-
-    model_config = ConfigDict(frozen=True, extra="forbid")
-
-    scheduler: str = Field(pattern=r"^(tcp|tls|ucx|inproc)://.+$")
-    retries: int = Field(2, ge=0)
-    timeout: float | None = Field(None, gt=0, allow_inf_nan=False)
 
 
 def _dask(where: str) -> Any:

@@ -49,7 +49,6 @@ from pathlib import Path
 from typing import Any, Literal
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field
 
 from . import _ops as S
 from ._dask import ClusterShards
@@ -80,7 +79,6 @@ from ..store._folder import MANIFEST, _sha256
 __all__ = [
     "SHARDS_FORMAT_NAME",
     "SHARDS_FORMAT_VERSION",
-    "ShardSpec",
     "ShardedMemory",
     "ShardedStoreInfo",
     "open_sharded",
@@ -122,15 +120,6 @@ class ShardedStoreInfo:
     def to_dict(self) -> dict[str, Any]:
         """Plain-Python (JSON-ready) copy of every field."""
         return {name: getattr(self, name) for name in self.__dataclass_fields__}
-
-
-class ShardSpec(BaseModel):
-    """Options of ``densemem build --shards N [--shard-by ...]`` (validated at the CLI boundary)."""
-
-    model_config = ConfigDict(frozen=True, extra="forbid")
-
-    n_shards: int = Field(ge=1)
-    by: Literal["round_robin", "contiguous"] = "round_robin"
 
 
 # -------------------------------------------------------------------- handle

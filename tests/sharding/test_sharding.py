@@ -21,7 +21,7 @@ from densemem import DenseMemory, InputTypeError, InputValueError, StoreFormatEr
 from densemem.core import rows
 from densemem.sharding import _ops as S
 from densemem.core.candidates import CertifiedOptions
-from densemem.sharding import ShardSpec, open_sharded, shard_memory
+from densemem.sharding import open_sharded, shard_memory
 
 
 def _ref_energy(x: np.ndarray, s: np.ndarray, beta: float) -> np.ndarray:
@@ -296,13 +296,6 @@ def test_retrieve_argument_errors(tmp_path, rng):
     unit = shard_memory(DenseMemory.from_array(np.eye(2), normalize=True), tmp_path / "u", 2)
     with pytest.raises(InputValueError, match=r"ShardedMemory.nearest: query row 0 has zero norm"):
         unit.nearest(np.zeros(2))
-
-
-def test_shard_spec_validates_options():
-    # common practice: pydantic validates CLI options at the boundary
-    assert ShardSpec(n_shards=4).by == "round_robin"
-    with pytest.raises(ValueError, match=r"n_shards"):
-        ShardSpec(n_shards=0)
 
 
 def test_sharded_retrieve_refuses_what_one_machine_refuses(tmp_path) -> None:
