@@ -55,7 +55,7 @@ def add_tune(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
 
 
 def _run_tune(a: argparse.Namespace) -> tuple[Any, str]:
-    from ..tuning import _tune as tuning
+    from .. import tuning
     from ..dense import DenseMemory
 
     values = dict(vars(a))
@@ -121,7 +121,7 @@ def add_capacity(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None
 
 
 def _run_capacity(a: argparse.Namespace) -> tuple[Any, str]:
-    from ..capacity import _measure as capacity
+    from .. import capacity
     spec = make_spec(capacity.CapacitySpec, vars(a))
     for flag, path in (("--csv", spec.csv_path), ("--json-out", spec.json_path), ("--plot", spec.plot_path)):
         if path is not None and Path(path).exists():
@@ -180,7 +180,7 @@ def add_bench(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
 
 
 def _run_bench(a: argparse.Namespace) -> tuple[Any, str]:
-    from ..benchmark import _run as benchmark
+    from .. import benchmark
     names = {"queries": "n_queries", "query_file": "queries", "k": "ks", "binary": "include_binary"}
     values = {names.get(k, k): v for k, v in vars(a).items() if v is not None}
     if a.quick:

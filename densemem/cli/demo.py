@@ -218,7 +218,7 @@ def _dedup(arc: Archive, mem: DenseMemory, out: Path) -> tuple[dict[str, Any] | 
 
 def _tune(mem: DenseMemory, plan: Any, out: Path, plots: bool) -> tuple[dict[str, Any] | None, dict[str, str]]:
     try:
-        from ..tuning import _tune as tuning
+        from .. import tuning
     except ImportError:
         return None, {}
     kept = mem

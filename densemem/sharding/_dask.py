@@ -273,12 +273,10 @@ class ClusterShards(Retriever):
 
     Examples
     --------
-    >>> import os, tempfile, numpy as np, densemem
-    >>> from densemem.sharding import shard_memory
-    >>> sm = shard_memory(densemem.DenseMemory.from_array(np.eye(4)), os.path.join(tempfile.mkdtemp(), "s"), 2)
-    >>> with sm.on_cluster("tcp://127.0.0.1:8786") as cluster:  # doctest: +SKIP
-    ...     cluster.nearest(np.eye(4), k=1).ids.ravel().tolist()
-    [0, 1, 2, 3]
+    >>> import numpy as np
+    >>> from densemem.sharding import open_sharded
+    >>> cluster = open_sharded("/shared/shards").on_cluster("tcp://10.0.0.5:8786")  # doctest: +SKIP
+    >>> cluster.nearest(np.ones(64), k=3).ids  # doctest: +SKIP
     """
 
     _methods = S.SHARD_METHODS

@@ -10,16 +10,6 @@ import numpy as np
 
 from ..errors import InputTypeError, InputValueError, MissingExtraError
 
-__all__ = [
-    "SeparationReport",
-    "BetaPrediction",
-    "SweepReport",
-    "BetaChoice",
-    "TuneReport",
-    "format_report",
-    "KINDS",
-    "plot_sweep",
-]
 
 KINDS = ("single", "metastable", "global")  # codes 0, 1, 2 of SweepReport.kind
 
