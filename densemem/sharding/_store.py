@@ -67,6 +67,50 @@ def _write_json_atomic(path: Path, payload: dict[str, Any]) -> None:
     _fsync_dir(path.parent)
 
 
+# ------------------------------------------------------------------- updates
+def new_shard_name() -> str:
+    """A fresh shard folder name: updates never rewrite a folder ``shards.json`` points to."""
+    return f"shard-{secrets.token_hex(6)}"
+
+
+def write_shard(p: Path, mem: Any, where: str) -> dict[str, Any]:
+    """Write ``mem`` as a new shard folder under ``p``; return its ``shards.json`` entry."""
+    name = new_shard_name()
+    folder = p / name
+    mem.save(folder, overwrite=False)
+    return {"folder": name, "count": len(mem), "max_norm": _max_norm(mem.patterns),
+            "manifest_sha256": _sha256(folder / MANIFEST)}
+
+
+def commit(p: Path, man: dict[str, Any]) -> None:
+    """Move the store to ``man`` (one atomic replace of ``shards.json``), then tidy up.
+
+    Every shard folder ``man`` names is complete before this is called, so a
+    crash at any instant leaves ``shards.json`` naming either the old complete
+    set of folders or the new one.
+    """
+    man = dict(man)
+    man["count"] = sum(int(s["count"]) for s in man["shards"])
+    _write_json_atomic(p / TOP_MANIFEST, man)
+    tidy(p, man)
+
+
+def tidy(p: Path, man: dict[str, Any]) -> None:
+    """Delete what an interrupted update left: shard folders ``man`` does not name, temp files."""
+    keep = {str(s["folder"]) for s in man["shards"]} | {TOP_MANIFEST}
+    for child in p.iterdir():
+        name = child.name
+        if name in keep:
+            continue
+        ours = name.startswith(("shard-", ".shard-")) or name.startswith(f".{TOP_MANIFEST}.tmp-")
+        if not ours:
+            continue
+        if child.is_dir() and not child.is_symlink():
+            shutil.rmtree(child, ignore_errors=True)
+        else:
+            child.unlink(missing_ok=True)
+
+
 def _is_sharded(d: Path) -> bool:
     try:
         with open(d / TOP_MANIFEST, encoding="utf-8") as fh:
