@@ -19,7 +19,7 @@ from .benchmark import run_benchmark
 from .binary import BinaryMemory, BinaryRetrieval, DenseBinaryMemory
 from .capacity import estimate_capacity
 from .dense import DenseMemory
-from .duplicates import find_duplicates
+from .duplicates import plan_duplicates
 from .errors import (
     DenseMemError,
     InputTypeError,
@@ -42,7 +42,7 @@ __all__ = [
     "NearestResult",
     "BinaryRetrieval",
     "tune_beta",
-    "find_duplicates",
+    "plan_duplicates",
     "estimate_capacity",
     "run_benchmark",
     "shard_memory",
