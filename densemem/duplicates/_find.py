@@ -363,7 +363,7 @@ class DedupSpec(BaseModel):
 
     model_config = ConfigDict(extra="forbid", frozen=True)
 
-    threshold: float = Field(0.98, gt=-1.0, le=1.0)
+    threshold: float = Field(0.98, gt=-1.0, le=1.0, allow_inf_nan=False)
     method: Literal["graph", "attractor"] = "graph"
     grouping: Literal["star", "complete", "chain"] = "star"
     candidates: Literal["auto", "exact", "ivf", "hnsw"] = "auto"
