@@ -143,7 +143,7 @@ class _StoreIndex:
 def plan_against(data: Any, stored: Any, ids: Any, representative: Any, opt: Options,
                  rng: np.random.Generator, bar: Any, t0: float) -> DuplicatePlan:
     """Plan the new batch ``data`` against the DenseMemory ``stored`` (see the module notes)."""
-    from ._find import judge_and_group  # the within-batch plan is the ordinary one
+    from ._find import judge_and_group, warn_far_chains  # the within-batch plan is the ordinary one
 
     x, bids = batch_matrix(data, ids, stored)
     n, d = x.shape
@@ -201,6 +201,7 @@ def plan_against(data: Any, stored: Any, ids: Any, representative: Any, opt: Opt
         groups, reps, src2, params2, pairs2 = G.pack_labels(np.empty(0, np.int64)), None, "exact", {}, \
             C.PairSet(np.empty(0, np.int64), np.empty(0, np.int64), np.empty(0), "exact", {})
     stats2 = G.summarise(xu, groups, rule, uscore, reps)
+    warn_far_chains(opt, stats2["min"], groups)
     del xu
 
     # groups around stored items: the stored item first, then its new duplicates in batch order

@@ -20,7 +20,7 @@ import pytest
 import densemem
 from densemem.cli import main
 from densemem.duplicates import plan_duplicates
-from densemem.errors import InputTypeError, InputValueError
+from densemem.errors import DenseMemWarning, InputTypeError, InputValueError
 
 RULE = 1e-6
 T = 0.98
@@ -188,3 +188,11 @@ def test_bad_batches_and_ids(setup):
         plan_duplicates(batch, T, stored=named)
     with pytest.raises(InputValueError, match=r"`ids` must be new; 1 id\(s\) .* \(first: 'c' at row 2\)"):
         plan_duplicates(batch[:3], T, stored=named, ids=["x", "y", "c"])
+
+
+def test_chain_within_the_batch_warns_too(setup):
+    root, _, batch = setup
+    mem = densemem.DenseMemory.load(root / "store", mmap=True)
+    with pytest.warns(DenseMemWarning, match=r"grouping='chain' joined items far below the threshold 0\.93: "):
+        plan = plan_duplicates(batch, 0.93, stored=mem, grouping="chain")
+    assert plan.summary()["lowest_similarity"] < 2 * 0.93 - 1  # reported beside the warning
