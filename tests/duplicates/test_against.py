@@ -196,3 +196,15 @@ def test_chain_within_the_batch_warns_too(setup):
     with pytest.warns(DenseMemWarning, match=r"grouping='chain' joined items far below the threshold 0\.93: "):
         plan = plan_duplicates(batch, 0.93, stored=mem, grouping="chain")
     assert plan.summary()["lowest_similarity"] < 2 * 0.93 - 1  # reported beside the warning
+
+
+def test_a_memory_mapped_batch_stays_on_disk(setup):
+    # the batch is validated without converting it whole; rows are read chunk by chunk later
+    from densemem.duplicates._checks import batch_matrix
+
+    root, _, _ = setup
+    mem = densemem.DenseMemory.load(root / "store", mmap=True)
+    b = np.load(root / "new.npy", mmap_mode="r")
+    x, ids = batch_matrix(b, None, mem)
+    assert isinstance(x, np.memmap) and np.shares_memory(x, b)
+    assert ids[0] == N_STORED and ids.size == b.shape[0]
