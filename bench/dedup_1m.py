@@ -122,6 +122,7 @@ def main(argv: list[str] | None = None) -> dict:
         "wall_seconds": wall, "wall_seconds_runs": times, "generate_seconds": gen_s,
         "candidates": plan.candidates, "candidate_params": plan.summary()["candidate_params"],
         "n_pairs": plan.n_pairs, "n_groups": plan.n_groups, "n_drop": int(plan.drop_ids.size),
+        "grouping": plan.grouping, "lowest_kept_similarity": plan.summary()["lowest_kept_similarity"],
         "sample_rows": int(sample.size), "sample_exact_pairs": len(exact),
         "pair_recall": recall, "pair_precision": precision,
         "exact_sample_seconds": exact_s, "exact_full_seconds_extrapolated": exact_full_s,
