@@ -37,7 +37,7 @@ _HOMES = {
     "RetrievalResult": ".results",
     "NearestResult": ".results",
     "tune_beta": ".tuning",
-    "find_duplicates": ".duplicates",
+    "plan_duplicates": ".duplicates",
     "estimate_capacity": ".capacity",
     "run_benchmark": ".benchmark",
     "shard_memory": ".sharding",
@@ -50,7 +50,7 @@ if TYPE_CHECKING:  # pragma: no cover - for type checkers and IDEs only
     from .binary import BinaryMemory, BinaryRetrieval, DenseBinaryMemory
     from .capacity import estimate_capacity
     from .dense import DenseMemory
-    from .duplicates import find_duplicates
+    from .duplicates import plan_duplicates
     from .results import NearestResult, RetrievalResult
     from .sharding import ShardedMemory, open_sharded, shard_memory
     from .store import read_embeddings
@@ -81,7 +81,7 @@ __all__ = [
     "NearestResult",
     "BinaryRetrieval",
     "tune_beta",
-    "find_duplicates",
+    "plan_duplicates",
     "estimate_capacity",
     "run_benchmark",
     "shard_memory",

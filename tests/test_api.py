@@ -25,7 +25,7 @@ PUBLIC = [
     "NearestResult",
     "BinaryRetrieval",
     "tune_beta",
-    "find_duplicates",
+    "plan_duplicates",
     "estimate_capacity",
     "run_benchmark",
     "shard_memory",

@@ -73,33 +73,64 @@ def _run_tune(a: argparse.Namespace) -> tuple[Any, str]:
 # ------------------------------------------------------------------ dedup
 def add_dedup(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
     p = sub(subs, "dedup", "group near-duplicates and write a keep/drop plan (nothing is removed)",
-            "densemem dedup archive-store plan/ --threshold 0.97 --no-chaining star")
+            "densemem dedup new.npy plan/ --stored archive-store --threshold 0.97")
     p.add_argument("input", help="store folder or embeddings file (.npy, .npz, .parquet, .csv, .tsv)")
     p.add_argument("out", help="folder for the plan files (groups.csv/json, keep.txt, drop.txt)")
+    p.add_argument("--stored", metavar="STORE",
+                   help="compare INPUT (a new batch) with this store folder and with itself; "
+                        "the store is read only (a .npy batch is memory-mapped and read in chunks)")
     p.add_argument("--column", help="array/column holding the vectors (embeddings files)")
     p.add_argument("--id-column", help="array/column holding ids (embeddings files)")
     p.add_argument("--threshold", type=float, default=0.98, help="cosine similarity for a near-duplicate (0.98)")
     p.add_argument("--method", choices=["graph", "attractor"], default="graph")
+    p.add_argument("--grouping", choices=["star", "complete", "chain"], default="star",
+                   help="star (default): every dropped item meets the threshold against the item kept "
+                        "for it; complete: every pair in a group does; chain: connected components")
     p.add_argument("--candidates", choices=["auto", "exact", "ivf", "hnsw"], default="auto")
     p.add_argument("--k", type=int, default=32, help="candidate neighbours per item (default 32)")
-    p.add_argument("--no-chaining", choices=["off", "star", "complete"], default="off")
     p.add_argument("--representative", choices=["medoid", "first"], default="medoid")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--overwrite", action="store_true", help="replace plan files already in OUT")
     p.set_defaults(run=_run_dedup)
 
 
+def _load_batch(path: str, column: str | None, id_column: str | None) -> tuple[Any, Any]:
+    """A new batch: a .npy file memory-mapped (read in chunks later), other files read whole."""
+    p = Path(path)
+    if p.suffix.lower() == ".npy" and p.is_file() and column is None and id_column is None:
+        import numpy as np
+
+        arr = np.load(p, mmap_mode="r", allow_pickle=False)
+        return arr, None
+    return _load_data(path, column, id_column)
+
+
 def _run_dedup(a: argparse.Namespace) -> tuple[Any, str]:
     from ..duplicates._find import DedupSpec
 
-    spec = make_spec(DedupSpec, vars(a))
-    data, ids = _load_data(a.input, a.column, a.id_column)
-    plan = spec.run(data, ids=ids, progress=None if not a.quiet else False)
+    values = {k: v for k, v in vars(a).items() if k != "stored"}
+    spec = make_spec(DedupSpec, values)
+    stored = None
+    if a.stored is not None:
+        from ..dense import DenseMemory
+
+        if not Path(a.stored).is_dir():
+            raise SpecError(f"--stored must name a store folder; got {a.stored!r}.")
+        stored = DenseMemory.load(a.stored, mmap=True)
+        data, ids = _load_batch(a.input, a.column, a.id_column)
+    else:
+        data, ids = _load_data(a.input, a.column, a.id_column)
+    plan = spec.run(data, ids=ids, progress=None if not a.quiet else False, stored=stored)
     files = plan.write(a.out, overwrite=a.overwrite)
     s = plan.summary()
-    text = out.table(["items", "groups", "keep", "drop", "threshold", "candidates"],
-                     [[s["n_items"], s["n_groups"], s["n_keep"], s["n_drop"], s["threshold"], s["candidates"]]],
-                     title=f"near-duplicates -> {a.out}")
+    low = s["lowest_kept_similarity"]
+    cols = ["items", "groups", "keep", "drop", "threshold", "grouping", "lowest kept sim", "candidates"]
+    row = [s["n_items"], s["n_groups"], s["n_keep"], s["n_drop"], s["threshold"], s["grouping"],
+           "-" if low is None else f"{low:.4f}", s["candidates"]]
+    if stored is not None:
+        cols.insert(4, "of stored")
+        row.insert(4, s["n_duplicates_of_stored"])
+    text = out.table(cols, [row], title=f"near-duplicates -> {a.out}")
     return {"summary": s, "files": files}, text
 
 
