@@ -152,8 +152,9 @@ def _partial_task(
     method: str,
     need_acc: bool,
     cert: CertifiedOptions,
+    n_candidates: int = 32,
 ) -> IdPartial:
-    return S.shard_rows(_shard(*shard), method).reduce(states, beta, k=k, need_acc=need_acc, cert=cert)
+    return S.shard_rows(_shard(*shard), method, n_candidates).reduce(states, beta, k=k, need_acc=need_acc, cert=cert)
 
 
 def _nearest_task(shard: tuple[str, str, int, bool, str], q: np.ndarray, k: int, metric: str) -> S.ShardNearest:
@@ -253,12 +254,13 @@ def _shards(sm: Any, verify: bool, where: str) -> list[tuple[str, str, int, bool
 class _DaskShards:
     """Every shard reduced by a Dask task, merged on the workers: a row source."""
 
-    def __init__(self, session: _Session, shards: list[tuple[str, str, int, bool, str]], method: str) -> None:
-        self.session, self.shards, self.method = session, shards, method
+    def __init__(self, session: _Session, shards: list[tuple[str, str, int, bool, str]], method: str,
+                 n_candidates: int = 32) -> None:
+        self.session, self.shards, self.method, self.n_candidates = session, shards, method, n_candidates
 
     def reduce(self, states: np.ndarray, beta: float, *, k: int, need_acc: bool, cert: CertifiedOptions) -> IdPartial:
-        return self.session.run(_partial_task, self.shards, states, (beta, k, self.method, need_acc, cert),
-                                merge_partials)
+        return self.session.run(_partial_task, self.shards, states,
+                                (beta, k, self.method, need_acc, cert, self.n_candidates), merge_partials)
 
 
 class ClusterShards(Retriever):
@@ -314,7 +316,7 @@ class ClusterShards(Retriever):
     def _source(self, opts: RetrievalOptions, *, where: str) -> _DaskShards:
         self._session.start_call(where)
         shards = [(f, c, i, v, where) for f, c, i, v, _ in self._shards]
-        return _DaskShards(self._session, shards, opts.method)
+        return _DaskShards(self._session, shards, opts.method, opts.n_candidates)
 
     def _nearest_batch(self, q: np.ndarray, k: int, metric: str, index: bool, *, where: str) -> tuple[np.ndarray, np.ndarray]:
         if index:

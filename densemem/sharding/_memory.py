@@ -15,12 +15,16 @@ manifest's checksums pin every byte of every shard. Shards keep the *original*
 ids of their rows, so a shard's answers need no global id table.
 
 Writes are atomic: :func:`shard_memory` fills a hidden sibling folder and
-renames it into place; :meth:`ShardedMemory.add` rewrites one shard with
-:func:`densemem.store.save_memory` (its own crash-safe protocol) and then
-replaces ``shards.json`` by write-fsync-rename. A crash between those two
-steps leaves a shard whose manifest no longer matches ``shards.json``; opening
-the store then raises a :class:`~densemem.StoreFormatError` naming that shard
-instead of serving mixed data. Only one process may write at a time.
+renames it into place. Every update (``add``, ``remove``, ``build_index``,
+``rebalance``) is copy-on-write: the shards it changes are written as *new*
+folders (each by the store's own crash-safe save), then ``shards.json`` is
+replaced in one step (write, fsync, rename, fsync of the folder), and only
+then are the folders it no longer names deleted. So at every instant
+``shards.json`` names a complete set of folders, the old one or the new one; a
+kill at any point leaves a store that opens, verifies and answers as before or
+as after, and the next update deletes what was left. Only one process may
+update a store at a time; readers that opened it earlier keep their mapped
+shards.
 
 Retrieval without a cluster (:meth:`ShardedMemory.retrieve`,
 :meth:`ShardedMemory.nearest`) loops over the shards in this process and
@@ -40,13 +44,14 @@ Examples
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import secrets
 import shutil
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any, Iterator, Literal
 
 import numpy as np
 
@@ -61,7 +66,9 @@ from ._store import (
     _check_target,
     _fill,
     _is_sharded,
-    _max_norm,
+    commit,
+    tidy,
+    write_shard,
     _read_top,
     _swap_in,
     _write_json_atomic,
@@ -70,9 +77,10 @@ from ._store import (
 from .._front import Retriever
 from ..dense import DenseMemory
 from ..core.rows import tree_merge
+from ..core.table import PatternTable
 from ..core.tiles import DEFAULT_TILE_MIB
 from ..options import Layout, RetrievalOptions
-from .._validation import check_ids, check_patterns, check_positive_int
+from .._validation import check_ids, check_patterns, check_positive_int, unknown_id_error
 from ..errors import InputTypeError, InputValueError, StoreFormatError
 from ..store._folder import MANIFEST, _sha256
 
@@ -272,25 +280,194 @@ class ShardedMemory(Retriever):
         where = "ShardedMemory.add"
         x = check_patterns(patterns, where=where, dim=self.dim)
         new_ids = self._new_ids(ids, x.shape[0], where)
-        target = int(np.argmin(self.counts))
-        entry = self._man["shards"][target]
-        mem = load_shard(self.shard_folders[target], entry["manifest_sha256"], verify=self._verify, where=where,
-                         number=target)
-        mem._add(x, new_ids, where=where)
-        folder = self.shard_folders[target]
-        mem.save(folder, overwrite=True)
-        man = json.loads(json.dumps(self._man))
-        man["shards"][target].update(
-            count=len(mem), max_norm=_max_norm(mem.patterns), manifest_sha256=_sha256(Path(folder) / MANIFEST)
-        )
-        man["count"] = sum(int(s["count"]) for s in man["shards"])
-        if new_ids.dtype.kind == "i" and new_ids.size:
-            man["next_id"] = max(int(man["next_id"]), int(new_ids.max()) + 1)
-        man["id_kind"] = "int64" if new_ids.dtype.kind == "i" else "str"
-        _write_json_atomic(self._path / TOP_MANIFEST, man)
-        self._man = man
-        self._cache.pop(target, None)
+        with self._updating():
+            target = int(np.argmin(self.counts))
+            mem = self._memories(where)[target]
+            mem._add(x, new_ids, where=where)  # a mapped shard copies on write: its folder is untouched
+            man = self._next_manifest()
+            man["shards"][target] = self._entry(mem, man["shards"][target], where)
+            if new_ids.dtype.kind == "i" and new_ids.size:
+                man["next_id"] = max(int(man["next_id"]), int(new_ids.max()) + 1)
+            man["id_kind"] = "int64" if new_ids.dtype.kind == "i" else "str"
+            self._commit(man)
         return new_ids.copy()
+
+    # -------------------------------------------------- update protocol
+    def _next_manifest(self) -> dict[str, Any]:
+        return json.loads(json.dumps(self._man))
+
+    def _entry(self, mem: Any, old: dict[str, Any], where: str) -> dict[str, Any]:
+        """Write ``mem`` as a new shard folder (its index rebuilt if it had one); its manifest entry."""
+        settings = old.get("index")
+        if settings:
+            mem.build_index(**settings)
+        entry = write_shard(self._path, mem, where)
+        if settings:
+            entry["index"] = dict(settings)
+        return entry
+
+    def _commit(self, man: dict[str, Any]) -> None:
+        commit(self._path, man)
+        self._man = _read_top(self._path, "ShardedMemory")
+        self._cache.clear()
+
+    @contextlib.contextmanager
+    def _updating(self) -> Iterator[None]:
+        """An update: tidy what an interrupted one left; on failure forget shards changed in memory."""
+        tidy(self._path, self._man)
+        try:
+            yield
+        except BaseException:
+            self._cache.clear()
+            raise
+
+    def remove(self, ids: Any) -> int:
+        """Remove the patterns with these ids; only the shards that hold them are rewritten.
+
+        Every id is checked first: an unknown id raises naming the first few,
+        and nothing is written. Each touched shard is written as a new folder,
+        then ``shards.json`` is replaced in one step (see the module notes).
+
+        Parameters
+        ----------
+        ids : int, str or sequence of them
+
+        Returns
+        -------
+        int
+            How many patterns were removed.
+
+        Raises
+        ------
+        UnknownIdError
+            An id no shard holds.
+        StoreFormatError
+            An id held by two shards (a damaged store; both are named).
+
+        Examples
+        --------
+        >>> import os, tempfile, numpy as np, densemem
+        >>> from densemem.sharding import shard_memory
+        >>> sm = shard_memory(densemem.DenseMemory.from_array(np.eye(4)), os.path.join(tempfile.mkdtemp(), "s"), 2)
+        >>> sm.remove([1, 2]), sm.counts
+        (2, (1, 1))
+        """
+        where = "ShardedMemory.remove"
+        wanted = _id_list(ids, self._man["id_kind"], where)
+        mems = self._memories(where)
+        holders: dict[Any, int] = {}
+        for i, mem in enumerate(mems):
+            if not len(mem):
+                continue
+            held = np.asarray(wanted, dtype=mem.ids.dtype) if wanted else np.empty(0, mem.ids.dtype)
+            for v in held[np.isin(held, mem.ids)].tolist():
+                if v in holders:
+                    raise StoreFormatError(
+                        f"{where}: id {v!r} is held by shard {holders[v]} ({self.shard_folders[holders[v]]!r}) "
+                        f"and shard {i} ({self.shard_folders[i]!r}); the store is damaged."
+                    )
+                holders[v] = i
+        missing = [v for v in wanted if v not in holders]
+        if missing:
+            raise unknown_id_error(where, missing[0] if len(missing) == 1 else missing[:5])
+        with self._updating():
+            man = self._next_manifest()
+            for i in sorted(set(holders.values())):
+                mine = [v for v, s in holders.items() if s == i]
+                mems[i].remove(mine)
+                man["shards"][i] = self._entry(mems[i], man["shards"][i], where)
+            self._commit(man)
+        return len(holders)
+
+    def build_index(self, kind: Literal["hnsw", "ivf"] = "hnsw", **params: Any) -> dict[str, Any]:
+        """Build a candidate index in every shard (persisted beside it) for ``method="index"``.
+
+        Parameters and settings are those of :meth:`densemem.DenseMemory.build_index`,
+        applied to each shard's rows; ``add`` and ``remove`` keep each touched
+        shard's index in step (it is rebuilt with the same settings).
+
+        Returns
+        -------
+        dict
+            The settings asked for.
+
+        Examples
+        --------
+        >>> import os, tempfile, numpy as np, densemem
+        >>> from densemem.sharding import shard_memory
+        >>> sm = shard_memory(densemem.DenseMemory.from_array(np.eye(8)), os.path.join(tempfile.mkdtemp(), "s"), 2)
+        >>> sm.build_index("hnsw", M=8)["kind"]
+        'hnsw'
+        """
+        where = "ShardedMemory.build_index"
+        settings = {"kind": kind, **params}
+        mems = self._memories(where)
+        for i, mem in enumerate(mems):
+            if len(mem):
+                mem.build_index(**settings)  # checks the settings before anything is written
+        with self._updating():
+            man = self._next_manifest()
+            for i, mem in enumerate(mems):
+                entry = write_shard(self._path, mem, where)
+                entry["index"] = settings if len(mem) else None
+                man["shards"][i] = entry
+            self._commit(man)
+        return dict(settings)
+
+    def rebalance(self, *, n_shards: int | None = None, rows_per_shard: int | None = None) -> "ShardedMemory":
+        """Split and merge shards to ``n_shards`` of near-equal size (or about ``rows_per_shard`` rows each).
+
+        Rows move between shard folders in order, one new shard at a time, so
+        at most one new shard's rows are held in memory; ids are unchanged and
+        so is every answer (the same rows, merged exactly). Indexes are rebuilt
+        with their settings. The old folders are deleted once the new
+        ``shards.json`` is in place.
+
+        Parameters
+        ----------
+        n_shards : int, optional
+        rows_per_shard : int, optional
+            Exactly one of the two.
+
+        Returns
+        -------
+        ShardedMemory
+            This store, rebalanced.
+
+        Examples
+        --------
+        >>> import os, tempfile, numpy as np, densemem
+        >>> from densemem.sharding import shard_memory
+        >>> sm = shard_memory(densemem.DenseMemory.from_array(np.eye(6)), os.path.join(tempfile.mkdtemp(), "s"), 4)
+        >>> sm.rebalance(n_shards=2).counts
+        (3, 3)
+        """
+        where = "ShardedMemory.rebalance"
+        if (n_shards is None) == (rows_per_shard is None):
+            raise InputValueError(f"{where}: give exactly one of `n_shards` and `rows_per_shard`.")
+        total = len(self)
+        if n_shards is None:
+            per = check_positive_int(rows_per_shard, name="rows_per_shard", where=where)
+            n_shards = max(1, -(-total // per))
+        n_shards = check_positive_int(n_shards, name="n_shards", where=where)
+        if total and n_shards > total:
+            raise InputValueError(f"{where}: `n_shards` = {n_shards} exceeds the {total} stored rows; "
+                                  "a shard would be empty.")
+        mems = self._memories(where)  # every folder present and matching, before anything is written
+        settings = next((s.get("index") for s in self._man["shards"] if s.get("index")), None)
+        sizes = [len(a) for a in np.array_split(np.arange(total), n_shards)]
+        with self._updating():
+            man = self._next_manifest()
+            man["shards"], man["by"] = [], "contiguous"
+            rows = _Rows(mems)
+            id_dtype = np.dtype(np.int64) if self._man["id_kind"] == "int64" else np.dtype("<U1")
+            for size in sizes:
+                x, ids = rows.take(size, self.dim, id_dtype)
+                part = DenseMemory._from_table(
+                    PatternTable.trusted(x, ids, normalize=self.normalize), beta=self.beta)
+                man["shards"].append(self._entry(part, {"index": settings}, where))
+            self._commit(man)
+        return self
 
     def _new_ids(self, ids: Any, n: int, where: str) -> np.ndarray:
         kind = self._man["id_kind"]
@@ -316,7 +493,20 @@ class ShardedMemory(Retriever):
     _name = "ShardedMemory"
 
     def _source(self, opts: RetrievalOptions, *, where: str) -> Any:
-        return S.LocalShards(tuple(self._memories(where)), opts.method)
+        mems = tuple(self._memories(where))
+        if opts.method == "index":
+            for i, m in enumerate(mems):
+                if len(m) and m._index is None:
+                    raise InputValueError(f"{where}: shard {i} at {self.shard_folders[i]!r} has no candidate index; "
+                                          "call build_index('hnsw') or build_index('ivf') on the sharded store first.")
+        return S.LocalShards(mems, opts.method, opts.n_candidates)
+
+    def _candidate_recall(self, source: Any, q: np.ndarray, opts: RetrievalOptions) -> float:
+        kc = min(len(self), max(opts.n_candidates, opts.k))
+        sel = np.sort(np.random.default_rng(0).choice(q.shape[0], min(opts.measure, q.shape[0]), replace=False))
+        mems = self._memories(f"{self._name}.retrieve")
+        exact = tree_merge([S.shard_nearest(m, q[sel], kc, "ip") for m in mems], S.merge_nearest)
+        return S.merged_candidate_recall(exact, [S.shard_candidates(m, q[sel], kc) for m in mems], kc)
 
     def _nearest_batch(self, q: np.ndarray, k: int, metric: str, index: bool, *, where: str) -> tuple[np.ndarray, np.ndarray]:
         if index:
@@ -360,6 +550,65 @@ class ShardedMemory(Retriever):
         [0, 1, 2, 3]
         """
         return ClusterShards(self, client, retries=retries, timeout=timeout, verify=verify)
+
+
+def _id_list(ids: Any, id_kind: str, where: str) -> list[Any]:
+    """Ids to remove as a list of Python ints or strs (one kind, no repeats)."""
+    if isinstance(ids, (str, int, np.integer)) and not isinstance(ids, bool):
+        ids = [ids]
+    if ids is None or isinstance(ids, (bool, float, dict)) or not hasattr(ids, "__len__"):
+        raise InputTypeError(f"{where}: `ids` must be an id or a sequence of ids; got {type(ids).__name__}.")
+    arr = np.asarray(ids)
+    want = "i" if id_kind == "int64" else "U"
+    if arr.size and (arr.ndim != 1 or arr.dtype.kind != want):
+        kind = "integers" if want == "i" else "strings"
+        raise InputTypeError(f"{where}: `ids` must be a flat sequence of {kind} (the store's id kind); "
+                             f"got an array of dtype {arr.dtype} and shape {arr.shape}.")
+    out = arr.tolist()
+    if len(set(out)) != len(out):
+        raise InputValueError(f"{where}: `ids` lists an id more than once.")
+    return out
+
+
+def _row_stream(mems: list[Any]) -> Any:
+    """(rows, ids) blocks of every shard in order, read from the mapped files a block at a time."""
+    block = 65536
+    for mem in mems:
+        x, ids = mem.patterns, mem.ids
+        for s in range(0, len(mem), block):
+            yield x[s:s + block], ids[s:s + block]
+
+
+class _Rows:
+    """Every shard's rows in order, handed out ``size`` at a time (copies of the mapped blocks)."""
+
+    def __init__(self, mems: list[Any]) -> None:
+        self._blocks = _row_stream(mems)
+        self._left: tuple[np.ndarray, np.ndarray] | None = None
+
+    def take(self, size: int, dim: int, id_dtype: np.dtype) -> tuple[np.ndarray, np.ndarray]:
+        xs, ids, got = [np.empty((0, dim), np.float32)], [np.empty(0, id_dtype)], 0
+        while got < size:
+            if self._left is not None:
+                (x, i), self._left = self._left, None
+            else:
+                x, i = next(self._blocks)
+            need = size - got
+            if len(x) > need:
+                self._left = (x[need:], i[need:])
+                x, i = x[:need], i[:need]
+            xs.append(np.array(x, dtype=np.float32))
+            ids.append(np.array(i))
+            got += len(x)
+        return np.ascontiguousarray(np.concatenate(xs)), _concat_ids(ids)
+
+
+def _concat_ids(parts: list[np.ndarray]) -> np.ndarray:
+    kinds = {p.dtype.kind for p in parts if p.size}
+    if kinds == {"U"}:
+        width = max(p.dtype.itemsize for p in parts if p.size) // 4
+        return np.concatenate([p.astype(f"<U{width}") for p in parts if p.size])
+    return np.concatenate([p.astype(np.int64) for p in parts])
 
 
 def shard_memory(

@@ -51,12 +51,15 @@ from ..core.rows import IdPartial, TableRows, id_fill, ids_of, tree_merge
 from ..core.rows import merge as merge_partials
 from ..core.rows import _common_ids
 
-SHARD_METHODS = ("auto", "exact", "certified")
+SHARD_METHODS = ("auto", "exact", "certified", "index")
 
 
-def shard_rows(mem: Any, method: str) -> TableRows:
+def shard_rows(mem: Any, method: str, n_candidates: int = 32, where: str = "ShardedMemory.retrieve") -> TableRows:
     """One shard memory as a row source (the one-machine source on its rows)."""
-    return TableRows(mem.patterns, mem.ids, mem.max_norm, method, mem.tile_mib, mem.n_threads)
+    index = None
+    if method == "index" and len(mem):
+        index = lambda: mem._fresh_index(where=where)  # noqa: E731
+    return TableRows(mem.patterns, mem.ids, mem.max_norm, method, mem.tile_mib, mem.n_threads, n_candidates, index)
 
 
 @dataclass(frozen=True, slots=True)
@@ -65,11 +68,29 @@ class LocalShards:
 
     memories: tuple[Any, ...]
     method: str
+    n_candidates: int = 32
 
     def reduce(self, states: np.ndarray, beta: float, *, k: int, need_acc: bool, cert: CertifiedOptions) -> IdPartial:
-        parts = [shard_rows(m, self.method).reduce(states, beta, k=k, need_acc=need_acc, cert=cert)
+        parts = [shard_rows(m, self.method, self.n_candidates).reduce(states, beta, k=k, need_acc=need_acc, cert=cert)
                  for m in self.memories]
         return tree_merge(parts, merge_partials)
+
+
+def shard_candidates(mem: Any, q: np.ndarray, kc: int) -> np.ndarray:
+    """Ids of a shard's index candidates for ``q`` (kc per query, fill where missing)."""
+    if not len(mem):
+        return np.full((q.shape[0], kc), id_fill(mem.ids.dtype), dtype=mem.ids.dtype)
+    _, pos = mem._fresh_index(where="ShardedMemory.retrieve").search(q, min(kc, len(mem)))
+    return ids_of(mem.ids, pos)
+
+
+def merged_candidate_recall(nearest: Any, candidates: list[np.ndarray], kc: int) -> float:
+    """Mean fraction of the exact global top-kc (merged faiss search) found among every shard's candidates."""
+    hits = []
+    for j in range(nearest.ids.shape[0]):
+        found = np.concatenate([c[j] for c in candidates])
+        hits.append(np.intersect1d(nearest.ids[j], found).size)
+    return float(np.mean(hits) / kc)
 
 
 @dataclass(slots=True)
