@@ -113,7 +113,7 @@ def test_jacobian_by_finite_differences_obeys_beta_m_squared(beta):
     # J = beta X^T (diag p - p p^T) X, so ||J||_2 <= beta M^2. J of the library's one-step
     # update by central finite differences (h = 2e-3; truncation and float32 rounding ~1e-4) matches
     # the float64 formula (scipy softmax) to 1e-3 relative, and its spectral norm obeys the
-    # bound; at these betas the norm is 0.1-0.7 of the bound, so the check has teeth.
+    # bound (at these betas the norm is 0.11-0.21 of it).
     rng = np.random.default_rng(int(beta * 10))
     n, d = 40, 6
     x = rng.standard_normal((n, d)).astype(np.float32)
