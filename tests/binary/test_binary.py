@@ -1,7 +1,8 @@
 """Tests of densemem.binary: classic and dense binary memories.
 
-References are the numbered entries of docs CHECKS.md (shared design notes); each check names
-its entry. Expected numbers are computed here from the published formula where one exists.
+Each check names its published source (authors, venue, year) or says "derived" / "common
+practice" / "from memory"; docs/references.md lists them all. Expected numbers are computed
+here from the published formula where one exists.
 """
 
 from __future__ import annotations
@@ -45,10 +46,10 @@ def naive_energy(s, w, theta):
     return -0.5 * np.einsum("bi,ij,bj->b", s, w, s) + s @ theta
 
 
-# ---------------------------------------------------------------- entry 14: async energy
+# ------------------------------------------------ Hopfield 1982: async energy
 @pytest.mark.parametrize("seed", range(4))
 def test_async_energy_never_rises_and_ends_at_fixed_points(seed):
-    # CHECKS.md entry 14 (derived from Hopfield 1982): symmetric W, w_ii >= 0, single-unit
+    # Derived from Hopfield, PNAS 79(8) (1982): symmetric W, w_ii >= 0, single-unit
     # threshold updates never raise E = -s.Ws/2 + theta.s.
     rng = np.random.default_rng(seed)
     n = 70
@@ -100,10 +101,10 @@ def test_blocked_async_equals_naive_sequential_updates(n, block, rng):
     assert np.array_equal(out["states"], ref)
 
 
-# ------------------------------------------------------- entry 15: sync, Bruck's Lyapunov
+# ------------------------------------------------- Bruck 1990: sync, Lyapunov
 @pytest.mark.parametrize("seed", range(3))
 def test_sync_ends_in_fixed_point_or_two_cycle_and_lyapunov_never_rises(seed):
-    # CHECKS.md entry 15 (Bruck 1990): parallel updates with symmetric W reach a cycle of
+    # Bruck, Proc. IEEE 78(10) (1990): parallel updates with symmetric W reach a cycle of
     # length <= 2; L(t) = -s(t).W s(t-1) + theta.(s(t) + s(t-1)) never rises.
     rng = np.random.default_rng(seed)
     n = 60
@@ -126,7 +127,7 @@ def test_sync_ends_in_fixed_point_or_two_cycle_and_lyapunov_never_rises(seed):
 
 
 def test_mutually_inhibiting_pair_oscillates_sync_settles_async():
-    # CHECKS.md entry 15 (Bruck 1990): parallel mode may end in a 2-cycle, serial mode in a
+    # Bruck, Proc. IEEE 78(10) (1990): parallel mode may end in a 2-cycle, serial mode in a
     # stable state. Values of our own: w_12 = -1, thresholds +0.5.
     mem = BinaryMemory.from_weights([[0.0, -1.0], [-1.0, 0.0]], [0.5, 0.5])
     sync = mem.retrieve([[1, 1]], mode="sync", max_sweeps=10, return_trajectory=True)
@@ -139,10 +140,10 @@ def test_mutually_inhibiting_pair_oscillates_sync_settles_async():
         assert r.energy[-1, 0] < r.energy[0, 0]
 
 
-# ---------------------------------------------------------------- entry 16: 0/1 <-> +-1
+# ---------------------------------------------------------- derived: 0/1 <-> +-1
 @pytest.mark.parametrize("mode", ["async", "sync"])
 def test_01_and_pm1_forms_give_identical_trajectories(mode, rng):
-    # CHECKS.md entry 16 (derived): S = 2V - 1, T = 4W, U = 2 theta + 2 W 1 give the same
+    # Derived 0/1 <-> +-1 map: S = 2V - 1, T = 4W, U = 2 theta + 2 W 1 give the same
     # dynamics; the 0/1 energy -V.TV/2 + U.V is computed here from its definition.
     n = 40
     w, theta = random_network(rng, n)
@@ -160,7 +161,7 @@ def test_01_and_pm1_forms_give_identical_trajectories(mode, rng):
 
 
 def test_01_thresholds_convert_exactly(rng):
-    # CHECKS.md entry 16: given 0/1 thresholds U, the +-1 network has theta = U/2 - T 1/4
+    # derived 0/1 <-> +-1 map: given 0/1 thresholds U, the +-1 network has theta = U/2 - T 1/4
     # (T = 4 W); the two memories run identical trajectories and U is reported back.
     s_pat = pm1(rng, (5, 30))
     u = rng.standard_normal(30)
@@ -175,7 +176,7 @@ def test_01_thresholds_convert_exactly(rng):
 
 
 def test_01_patterns_store_like_their_pm1_form(rng):
-    # CHECKS.md entry 16: default 0/1 thresholds make the 0/1 memory the exact image of the
+    # derived 0/1 <-> +-1 map: default 0/1 thresholds make the 0/1 memory the exact image of the
     # +-1 memory (U = T 1 / 2 when theta = 0).
     s_pat = pm1(rng, (6, 50))
     v_pat = (s_pat + 1) // 2
@@ -190,7 +191,7 @@ def test_01_patterns_store_like_their_pm1_form(rng):
         assert np.array_equal(m_01.patterns, v_pat)
 
 
-# ------------------------------------------------------- entries 17-18: one-step errors
+# ----------------------------------------------------------- one-step errors
 def _one_step_flip_rate(n, p, rng):
     x = pm1(rng, (p, n))
     r = BinaryMemory(x).retrieve(x, mode="sync", max_sweeps=1)
@@ -203,7 +204,8 @@ def _exact_flip_probability(n, p):
 
 
 def test_one_step_flip_probability_matches_exact_finite_n_formula():
-    # CHECKS.md entry 18 within Monte Carlo error (binomial sd, or the spread between sets
+    # derived exact flip probability within Monte Carlo error (binomial sd, or the spread
+    # between sets
     # when larger: bits of one set are weakly correlated)
     n, p, n_sets = 200, 27, 40
     rates = np.array([_one_step_flip_rate(n, p, np.random.default_rng(s)) for s in range(n_sets)])
@@ -214,7 +216,8 @@ def test_one_step_flip_probability_matches_exact_finite_n_formula():
 
 
 def test_library_one_step_error_at_large_n_approaches_textbook_formula():
-    # CHECKS.md entries 17-18: at N = 1000, p/N = 0.185 the simulation matches the exact
+    # Hertz, Krogh & Palmer 1991; derived exact flip probability: at N = 1000, p/N = 0.185 the
+    # simulation matches the exact
     # finite-N value within Monte Carlo error and the large-N erfc value within 10%.
     n, p = 1000, 185
     rate = _one_step_flip_rate(n, p, np.random.default_rng(0))
@@ -223,7 +226,7 @@ def test_library_one_step_error_at_large_n_approaches_textbook_formula():
     assert rate == pytest.approx(erfc(np.sqrt(n / (2 * p))) / 2, rel=0.10)
 
 
-# ----------------------------------------------------- entries 19-22: capacity and rules
+# ---------------------------------------------------------- capacity and rules
 def _fraction_fixed(rule, n, p, n_sets, seed0=0):
     fixed = []
     for s in range(n_sets):
@@ -234,7 +237,8 @@ def _fraction_fixed(rule, n, p, n_sets, seed0=0):
 
 
 def test_hebbian_fixed_points_in_the_mceliece_regime():
-    # CHECKS.md entry 20 (McEliece et al. 1987, asymptotic): every memory recoverable up to
+    # McEliece, Posner, Rodemich & Venkatesh, IEEE Trans. Inf. Theory 33(4) (1987), asymptotic:
+    # every memory recoverable up to
     # n/(4 ln n), most up to n/(2 ln n); far above, most stored patterns are not fixed.
     n = 100
     every, most = int(n / (4 * np.log(n))), int(n / (2 * np.log(n)))  # 5, 10
@@ -244,13 +248,13 @@ def test_hebbian_fixed_points_in_the_mceliece_regime():
 
 
 def test_storkey_stores_more_than_hebbian():
-    # Outside reference for Hebb (CHECKS.md entry 18, derived, exact): one bit of a stored
+    # Outside reference for Hebb (the exact finite-N flip probability, derived): one bit of a stored
     # pattern flips with P_flip; with the N bits treated as independent a pattern is fixed
     # with probability (1 - P_flip)^N = 0.346 at n = 100, p = 20. Bits of one pattern are
     # positively correlated, so the true rate is at least this (minus Monte Carlo error).
-    # Storkey: p = 20 is below its capacity n/sqrt(2 ln n) = 33 (CHECKS.md 21, from memory).
+    # Storkey: p = 20 is below its capacity n/sqrt(2 ln n) = 33 (Storkey 1997, from memory).
     # The figures "Storkey 100%, Hebb about 41%" are values this project measured earlier
-    # (CHECKS.md 21; not a published figure); they only explain the tolerances below.
+    # (not a published figure); they only explain the tolerances below.
     n, p, n_sets = 100, 20, 20
     storkey = _fraction_fixed("storkey", n, p, n_sets).mean()
     hebb_sets = _fraction_fixed("hebbian", n, p, n_sets).mean(axis=1)
@@ -262,7 +266,7 @@ def test_storkey_stores_more_than_hebbian():
 
 
 def test_storkey_rule_matches_its_formula_naively(rng):
-    # CHECKS.md entry 21 (rule from memory): w += (e_i e_j - e_i h_ji - h_ij e_j)/n with
+    # Storkey 1997 (rule from memory): w += (e_i e_j - e_i h_ji - h_ij e_j)/n with
     # h_ij = sum_{k != i, j} w_ik e_k; symmetric, zero diagonal.
     n, p = 9, 4
     x = pm1(rng, (p, n))
@@ -294,7 +298,7 @@ def test_incremental_add_equals_storing_at_once(rule, rng):
 
 
 def test_pseudo_inverse_makes_independent_patterns_exact_fixed_points(rng):
-    # CHECKS.md entry 22 (Personnaz et al. 1985, from memory; Kanter & Sompolinsky 1987):
+    # Personnaz, Guyon & Dreyfus 1985 (from memory); Kanter & Sompolinsky, Phys. Rev. A 35 (1987):
     # ||W xi - xi|| < 1e-9 for linearly independent patterns, here p = 60 > 0.14 N.
     x = pm1(rng, (60, 100))
     assert np.linalg.matrix_rank(x.astype(float)) == 60
@@ -314,7 +318,8 @@ def test_pseudo_inverse_add_recomputes_and_says_so(rng):
 
 
 def test_pseudo_inverse_completes_real_digits():
-    # CHECKS.md entries 22 and 25: one binarised scikit-learn digit per class (0/1 states,
+    # Pseudo-inverse rule (Personnaz et al. 1985, from memory; Kanter & Sompolinsky 1987) on
+    # scikit-learn's bundled digits: one binarised scikit-learn digit per class (0/1 states,
     # 64 units, correlated patterns): all are exact fixed points and most probes with 10%
     # flipped bits are restored; Hebbian storage fails on such correlated patterns
     # (common practice).
@@ -337,9 +342,9 @@ def test_pseudo_inverse_completes_real_digits():
     assert (hebb.retrieve(v, mode="sync", max_sweeps=1).states == v).all(axis=1).mean() < 0.5
 
 
-# ------------------------------------------------------- entries 23-24: dense memories
+# ---------------------------------------------------------------- dense memories
 def test_polynomial_degree_two_is_the_hebbian_memory(rng):
-    # CHECKS.md entry 23 (consistency, derived): F(x) = x^2 gives the decision
+    # Krotov & Hopfield, NeurIPS 2016 (consistency, derived): F(x) = x^2 gives the decision
     # g_i = 4 N h_i of the zero-diagonal Hebbian field, so the dynamics coincide.
     x = pm1(rng, (8, 60))
     probes = flip(rng, x, 0.3)
@@ -351,8 +356,9 @@ def test_polynomial_degree_two_is_the_hebbian_memory(rng):
 
 
 def test_polynomial_n3_one_step_error_far_above_classic_capacity():
-    # CHECKS.md entry 23 (Krotov & Hopfield 2016, F(x) = x^3). "One-step bit error about
-    # 0.001 at N = 100, K = 361" is a value this project measured earlier (CHECKS.md 23; not
+    # Krotov & Hopfield, "Dense Associative Memory for Pattern Recognition", NeurIPS 2016 (F(x)
+    # = x^3). "One-step bit error about
+    # 0.001 at N = 100, K = 361" is a value this project measured earlier (not
     # a published figure). The reference here is derived, the crosstalk argument of that
     # paper (from memory) worked out for n = 3: starting at pattern 1, the energy gap of
     # bit i is sum_mu xi_mu,i (6 a_mu^2 + 2) with a_mu = sum_{j != i} xi_mu,j xi_1,j. Pattern
@@ -368,14 +374,15 @@ def test_polynomial_n3_one_step_error_far_above_classic_capacity():
     x = pm1(rng, (k, n))
     err = (DenseBinaryMemory(x, degree=3).retrieve(x, mode="sync", max_sweeps=1).states != x)
     assert derived / 3 <= err.mean() <= 3 * derived
-    # K / N = 3.61 is far above alpha_c = 0.138 (entry 19), where the Hebbian memory's
-    # one-step error is large: entry 18's exact finite-N value, 0.300 here
+    # K / N = 3.61 is far above alpha_c = 0.138 (Amit, Gutfreund & Sompolinsky 1987), where the
+    # Hebbian memory's
+    # one-step error is large: the exact finite-N value (derived), 0.300 here
     hebb = (BinaryMemory(x).retrieve(x, mode="sync", max_sweeps=1).states != x).mean()
     assert hebb == pytest.approx(_exact_flip_probability(n, k), abs=0.02)
 
 
 def test_exponential_memory_keeps_hundreds_of_patterns_at_n30():
-    # CHECKS.md entry 24 (Demircigil et al. 2017): exp(alpha N) patterns stable for
+    # Demircigil et al., J. Stat. Phys. 168 (2017): exp(alpha N) patterns stable for
     # alpha < ln(2)/2 (from memory); 300 patterns at N = 30 is alpha = 0.19.
     rng = np.random.default_rng(0)
     x = pm1(rng, (300, 30))
@@ -387,7 +394,7 @@ def test_exponential_memory_keeps_hundreds_of_patterns_at_n30():
 
 
 def test_exponential_one_step_retrieval_from_flipped_bits():
-    # CHECKS.md entry 24 (from memory): one step restores rho N flipped bits when
+    # Demircigil et al. 2017 (from memory): one step restores rho N flipped bits when
     # alpha < I(1 - 2 rho)/2; N = 100, K = 1000, rho = 0.2: alpha = 0.069 < 0.096.
     rho, n, k = 0.2, 100, 1000
     assert np.log(k) / n < info_rate(1 - 2 * rho) / 2  # the library's I(x) (precondition)
@@ -458,7 +465,7 @@ def test_dense_sync_product_form_equals_unit_by_unit_rule(rng):
 # -------------------------------------------------------------- completion and damage
 @pytest.mark.parametrize("fraction", [0.1, 0.2, 0.3])
 def test_completion_from_flipped_bits(fraction):
-    # CHECKS.md entry 19: Amit, Gutfreund & Sompolinsky 1987 (published abstract: retrieval
+    # Amit, Gutfreund & Sompolinsky, Ann. Phys. 173 (1987) (published abstract: retrieval
     # for alpha < 0.14 with error below 1.5%). The bound 0.0163 is the wrong-bit fraction at
     # alpha_c derived from their replica-symmetric equations (not a figure from the paper);
     # the retrieval state's error grows with alpha, so below alpha_c it is smaller. Here
@@ -472,11 +479,13 @@ def test_completion_from_flipped_bits(fraction):
 
 
 def test_completion_with_half_the_bits_unknown():
-    # Hebbian: CHECKS.md entry 19 as above (0.0163, derived from the replica-symmetric
+    # Hebbian: Amit, Gutfreund & Sompolinsky 1987 as above (0.0163, derived from the
+    # replica-symmetric
     # equations, at alpha = 0.05 < alpha_c); unknown bits are set at random (about 25% wrong).
-    # Storkey: entry 19 is a Hebbian result and says nothing about it; its reference is the
+    # Storkey: Amit-Gutfreund-Sompolinsky is a Hebbian result and says nothing about it; its
+    # reference is the
     # Hebbian memory on the same probes: p = 10 is far below Storkey's capacity
-    # n/sqrt(2 ln n) = 61 (CHECKS.md 21, from memory), so it should do no worse than Hebb
+    # n/sqrt(2 ln n) = 61 (Storkey 1997, from memory), so it should do no worse than Hebb
     # (slack: one wrong bit per probe).
     rng = np.random.default_rng(7)
     x = pm1(rng, (10, 200))
@@ -492,7 +501,7 @@ def test_completion_with_half_the_bits_unknown():
 
 
 def test_dense_polynomial_completion():
-    # CHECKS.md entry 23: K = 150 > 0.14 N at N = 100, n = 3; 20% flipped bits restored
+    # Krotov & Hopfield 2016: K = 150 > 0.14 N at N = 100, n = 3; 20% flipped bits restored
     rng = np.random.default_rng(3)
     x = pm1(rng, (150, 100))
     r = DenseBinaryMemory(x, degree=3).retrieve(flip(rng, x[:40], 0.2), seed=0)
@@ -527,9 +536,10 @@ def test_retrieval_with_damaged_units(unit_mode, mode):
     # delete: derived, Hebbian w_ij depends only on coordinates i and j, and the 1/N factor
     # never changes a sign, so the surviving units are exactly the Hebbian memory of the
     # restricted patterns (same sync states); that memory has alpha = 10/300 < alpha_c, so
-    # entry 19's replica-symmetric wrong-bit fraction at alpha_c, 0.0163 (derived, see
+    # the replica-symmetric wrong-bit fraction (Amit, Gutfreund & Sompolinsky 1987) at alpha_c,
+    # 0.0163 (derived, see
     # test_completion_from_flipped_bits), is its upper reference.
-    # clamp: stuck units feed their probe values into the fields, which entry 19 does not
+    # clamp: stuck units feed their probe values into the fields, which that theory does not
     # cover; the reference is the undamaged memory on the same probes (slack 0.01: fewer
     # live units, larger crosstalk per unit of signal).
     rng = np.random.default_rng(4)

@@ -1,5 +1,7 @@
 """Tests of densemem.capacity: the search, the intervals, and measured capacities against
-published asymptotics (CHECKS.md 19-24) and exact finite-size derivations (CHECKS.md 18 and
+published asymptotics (Amit, Gutfreund & Sompolinsky 1987; McEliece et al. 1987; Storkey 1997;
+Personnaz et al. 1985; Kanter & Sompolinsky 1987; Krotov & Hopfield 2016; Demircigil et al.
+2017) and exact finite-size derivations (derived exact flip probability and
 a binomial-tail derivation for top-1 retrieval of random +-1 patterns)."""
 
 from __future__ import annotations
@@ -146,11 +148,12 @@ def test_hebbian_grows_linearly_and_stays_near_mceliece(hebbian_small):
 
 # --------------------------------------------------------- pairwise binary rules
 def test_storkey_and_hebbian_rates_at_n100_p20():
-    # Hebb's outside reference (CHECKS.md 18, derived, exact): one bit flips with P_flip, so
+    # Hebb's outside reference (the exact finite-N flip probability, derived): one bit flips
+    # with P_flip, so
     # with the n bits taken independent a pattern is fixed with probability
     # (1 - P_flip)^n = 0.346 at n = 100, p = 20; bits of one pattern are positively
     # correlated, so the rate is at least that (minus the confidence interval's width).
-    # "Storkey 100%, Hebb about 41%" are values this project measured earlier (CHECKS.md 21;
+    # "Storkey 100%, Hebb about 41%" are values this project measured earlier (
     # not a published figure). Storkey's capacity n/sqrt(2 ln n) (from memory) exceeds Hebb's.
     st = robustness_curve("storkey", 100, 20, levels=(0.0,), mode="sync", steps=1, n_trials=20)
     hb = robustness_curve("hebbian", 100, 20, levels=(0.0,), mode="sync", steps=1, n_trials=20)
@@ -161,7 +164,8 @@ def test_storkey_and_hebbian_rates_at_n100_p20():
 
 
 def test_pseudo_inverse_reaches_n_exact_fixed_points():
-    # CHECKS.md 22: the pseudo-inverse rule W = Xi^T (Xi Xi^T)^-1 Xi (Personnaz, Guyon &
+    # Kanter & Sompolinsky, Phys. Rev. A 35 (1987), abstract: the pseudo-inverse rule W = Xi^T
+    # (Xi Xi^T)^-1 Xi (Personnaz, Guyon &
     # Dreyfus 1985, from memory) is a projection onto the span of the patterns, so every
     # linearly independent stored pattern is an exact fixed point (derived); capacity
     # alpha = 1 (Kanter & Sompolinsky 1987, published abstract): it reaches n (capped at n)
@@ -202,7 +206,8 @@ def test_robustness_damage_kinds_lower_success():
 
 # ------------------------------------------------------------ real data, inputs
 def test_user_patterns_subsampled_and_not_modified(digits, digits_unit):
-    # scikit-learn digits (CHECKS.md 25): correlated real patterns store worse in a Hebbian
+    # scikit-learn's bundled digits (UCI optdigits): correlated real patterns store worse in a
+    # Hebbian
     # memory than random ones of the same width (Hertz, Krogh & Palmer 1991, from memory)
     binary = np.where(digits > 8, 1, -1).astype(np.int8)
     before = binary.copy()

@@ -2,7 +2,7 @@
 
 References used: brute-force pair computation in numpy (float64), faiss
 IndexFlatIP.range_search (exact inner-product search), scipy.sparse.csgraph
-connected_components, scikit-learn's bundled digits (UCI optdigits, CHECKS.md 25),
+connected_components, scikit-learn's bundled digits (UCI optdigits),
 and Python's csv / json modules and pyarrow for reading the plan files back.
 """
 
@@ -283,7 +283,7 @@ def test_attractor_agrees_with_graph_on_separated_families(digits):
 
 def test_attractor_states_are_dense_memory_fixed_points(digits):
     """The attractor grouping reuses DenseMemory.retrieve: a planted pair's final state is the
-    blend of its members (CHECKS.md 9: metastable averages of subsets)."""
+    blend of its members (Ramsauer et al. 2021, abstract: metastable averages of subsets)."""
     base = digits[separated_rows(digits, 0.88, seed=2)][:30].astype(np.float64)
     x = np.concatenate([base, base[:1] + np.random.default_rng(0).normal(0, 0.2, (1, 64))]).astype(np.float32)
     t = 0.97
