@@ -14,12 +14,12 @@ import warnings
 import numpy as np
 import pytest
 from scipy.special import erfc, logsumexp
-from scipy.stats import binom
+from scipy.stats import poisson
 
 from densemem.binary import _dynamics as dyn
 from densemem.binary._dense import DenseEngine
 from densemem.binary import BinaryMemory, BinaryRetrieval, DenseBinaryMemory
-from densemem.capacity._theory import hebbian_flip_probability, info_rate
+from densemem.capacity._theory import ags_retrieval_error, hebbian_flip_probability, info_rate
 from densemem.errors import DenseMemWarning, InputTypeError, InputValueError
 
 
@@ -203,18 +203,6 @@ def _exact_flip_probability(n, p):
     return hebbian_flip_probability(n, p)
 
 
-def test_one_step_flip_probability_matches_exact_finite_n_formula():
-    # derived exact flip probability within Monte Carlo error (binomial sd, or the spread
-    # between sets
-    # when larger: bits of one set are weakly correlated)
-    n, p, n_sets = 200, 27, 40
-    rates = np.array([_one_step_flip_rate(n, p, np.random.default_rng(s)) for s in range(n_sets)])
-    expected = _exact_flip_probability(n, p)
-    sd = max(np.sqrt(expected * (1 - expected) / (n_sets * n * p)),
-             rates.std(ddof=1) / np.sqrt(n_sets))
-    assert abs(rates.mean() - expected) < 4 * sd
-
-
 def test_library_one_step_error_at_large_n_approaches_textbook_formula():
     # Hertz, Krogh & Palmer 1991; derived exact flip probability: at N = 1000, p/N = 0.185 the
     # simulation matches the exact
@@ -356,29 +344,35 @@ def test_polynomial_degree_two_is_the_hebbian_memory(rng):
 
 
 def test_polynomial_n3_one_step_error_far_above_classic_capacity():
-    # Krotov & Hopfield, "Dense Associative Memory for Pattern Recognition", NeurIPS 2016 (F(x)
-    # = x^3). "One-step bit error about
-    # 0.001 at N = 100, K = 361" is a value this project measured earlier (not
-    # a published figure). The reference here is derived, the crosstalk argument of that
-    # paper (from memory) worked out for n = 3: starting at pattern 1, the energy gap of
-    # bit i is sum_mu xi_mu,i (6 a_mu^2 + 2) with a_mu = sum_{j != i} xi_mu,j xi_1,j. Pattern
-    # 1 gives the signal 6 m^2 + 2 (m = N - 1); the K - 1 others are independent, mean 0,
-    # variance E(6a^2 + 2)^2 = 108 m^2 - 48 m + 4 (E a^2 = m, E a^4 = 3 m^2 - 2 m), so by
-    # the central limit theorem P(flip) ~ Phi(-z) = 0.00127. Bits of one pattern set are
-    # correlated, so one set scatters widely around it: a factor-3 band.
-    n, k = 100, 361
+    # Krotov & Hopfield, "Dense Associative Memory for Pattern Recognition", NeurIPS 2016
+    # (F(x) = x^3). The reference is derived, the crosstalk argument of that paper (from
+    # memory) worked out for n = 3: starting at pattern 1, the energy gap of bit i is
+    # sum_mu xi_mu,i (6 a_mu^2 + 2) with a_mu = sum_{j != i} xi_mu,j xi_1,j. Pattern 1 gives
+    # the signal 6 m^2 + 2 (m = N - 1); the K - 1 others are independent, mean 0, variance
+    # E(6a^2 + 2)^2 = 108 m^2 - 48 m + 4 (E a^2 = m, E a^4 = 3 m^2 - 2 m), so by the central
+    # limit theorem P(flip) ~ Phi(-z) = 0.00127 at N = 100, K = 361. The crosstalk terms are
+    # heavy-tailed (a^2), so the Gaussian tail is a little low: over 20 sets the measured
+    # mean is 1.15x it. Band: [derived, 1.3 x derived], widened by 4 standard errors of the
+    # mean between sets.
+    n, k, n_sets = 100, 361, 20
     m = n - 1
     z = (6 * m**2 + 2) / np.sqrt((k - 1) * (108 * m**2 - 48 * m + 4))
     derived = erfc(z / np.sqrt(2)) / 2
-    rng = np.random.default_rng(0)
-    x = pm1(rng, (k, n))
-    err = (DenseBinaryMemory(x, degree=3).retrieve(x, mode="sync", max_sweeps=1).states != x)
-    assert derived / 3 <= err.mean() <= 3 * derived
-    # K / N = 3.61 is far above alpha_c = 0.138 (Amit, Gutfreund & Sompolinsky 1987), where the
-    # Hebbian memory's
-    # one-step error is large: the exact finite-N value (derived), 0.300 here
-    hebb = (BinaryMemory(x).retrieve(x, mode="sync", max_sweeps=1).states != x).mean()
-    assert hebb == pytest.approx(_exact_flip_probability(n, k), abs=0.02)
+    errs, hebb = [], []
+    for s in range(n_sets):
+        x = pm1(np.random.default_rng(s), (k, n))
+        errs.append((DenseBinaryMemory(x, degree=3).retrieve(x, mode="sync", max_sweeps=1)
+                     .states != x).mean())
+        if s < 3:
+            hebb.append((BinaryMemory(x).retrieve(x, mode="sync", max_sweeps=1).states != x).mean())
+    errs = np.array(errs)
+    se = errs.std(ddof=1) / np.sqrt(n_sets)
+    assert derived - 4 * se <= errs.mean() <= 1.3 * derived + 4 * se, (errs.mean(), derived, se)
+    # K / N = 3.61 is far above alpha_c = 0.138 (Amit, Gutfreund & Sompolinsky 1987): there
+    # the Hebbian memory's one-step error is the exact finite-N value (derived), 0.300 here,
+    # within 4 binomial standard errors of 3 sets.
+    exact = _exact_flip_probability(n, k)
+    assert abs(np.mean(hebb) - exact) < 4 * np.sqrt(exact * (1 - exact) / (3 * n * k))
 
 
 def test_exponential_memory_keeps_hundreds_of_patterns_at_n30():
@@ -463,28 +457,44 @@ def test_dense_sync_product_form_equals_unit_by_unit_rule(rng):
 
 
 # -------------------------------------------------------------- completion and damage
+def _retrieved_and_wrong(states, target):
+    """Probes that reached the retrieval state (overlap > 0.8) and their wrong bits."""
+    wrong = states != target
+    retrieved = wrong.mean(axis=1) < 0.1
+    return retrieved, int(wrong[retrieved].sum())
+
+
+def _rs_wrong_bit_ceiling(alpha, n_bits):
+    # Amit, Gutfreund & Sompolinsky 1987: the retrieval state's wrong-bit fraction at load
+    # alpha is (1 - m)/2 on the replica-symmetric branch (3.9e-6 at alpha = 0.05); the
+    # count over n_bits bits is at most the Poisson 99.9% quantile of that mean.
+    return int(poisson.ppf(0.999, ags_retrieval_error(alpha) * n_bits))
+
+
 @pytest.mark.parametrize("fraction", [0.1, 0.2, 0.3])
 def test_completion_from_flipped_bits(fraction):
-    # Amit, Gutfreund & Sompolinsky, Ann. Phys. 173 (1987) (published abstract: retrieval
-    # for alpha < 0.14 with error below 1.5%). The bound 0.0163 is the wrong-bit fraction at
-    # alpha_c derived from their replica-symmetric equations (not a figure from the paper);
-    # the retrieval state's error grows with alpha, so below alpha_c it is smaller. Here
-    # alpha = 0.05, and the check also needs the probe to fall in the basin (large at 0.05).
+    # Amit, Gutfreund & Sompolinsky, Ann. Phys. 173 (1987): at alpha = 0.05 the retrieval
+    # state has a wrong-bit fraction of 3.9e-6 (replica-symmetric equations, solved by the
+    # library), so probes that reach it carry at most 1 wrong bit in their 10000 bits (the
+    # Poisson 99.9% quantile). Which probes reach it is a basin question the theory leaves
+    # open: every probe from 10% and 20% flips (measured), at least 90% from 30%.
     rng = np.random.default_rng(int(fraction * 10))
     x = pm1(rng, (10, 200))
-    probes = flip(rng, np.repeat(x, 5, axis=0), fraction)
+    target = np.repeat(x, 5, axis=0)
+    probes = flip(rng, target, fraction)
     r = BinaryMemory(x).retrieve(probes, seed=0)
-    assert (r.states != np.repeat(x, 5, axis=0)).mean() < 0.0163
     assert r.converged.all()
+    retrieved, wrong = _retrieved_and_wrong(r.states, target)
+    assert retrieved.mean() >= (1.0 if fraction <= 0.2 else 0.9)
+    assert wrong <= _rs_wrong_bit_ceiling(0.05, retrieved.sum() * 200)
 
 
 def test_completion_with_half_the_bits_unknown():
-    # Hebbian: Amit, Gutfreund & Sompolinsky 1987 as above (0.0163, derived from the
-    # replica-symmetric
-    # equations, at alpha = 0.05 < alpha_c); unknown bits are set at random (about 25% wrong).
-    # Storkey: Amit-Gutfreund-Sompolinsky is a Hebbian result and says nothing about it; its
-    # reference is the
-    # Hebbian memory on the same probes: p = 10 is far below Storkey's capacity
+    # Hebbian: Amit, Gutfreund & Sompolinsky 1987 as above (alpha = 0.05, the retrieval
+    # state's wrong-bit count at most the Poisson ceiling of 3.9e-6 per bit); unknown bits
+    # are set at random (about 25% wrong), and every probe reaches the retrieval state here.
+    # Storkey: that theory is a Hebbian result and says nothing about it; its reference is
+    # the Hebbian memory on the same probes: p = 10 is far below Storkey's capacity
     # n/sqrt(2 ln n) = 61 (Storkey 1997, from memory), so it should do no worse than Hebb
     # (slack: one wrong bit per probe).
     rng = np.random.default_rng(7)
@@ -494,10 +504,12 @@ def test_completion_with_half_the_bits_unknown():
     for row in probes:
         unknown = rng.choice(200, 100, replace=False)
         row[unknown] = pm1(rng, 100)
-    wrong = {rule: (BinaryMemory(x, rule=rule).retrieve(probes, seed=1).states != target).mean()
-             for rule in ("hebbian", "storkey")}
-    assert wrong["hebbian"] < 0.0163
-    assert wrong["storkey"] <= wrong["hebbian"] + 1 / 200
+    states = {rule: BinaryMemory(x, rule=rule).retrieve(probes, seed=1).states
+              for rule in ("hebbian", "storkey")}
+    retrieved, wrong = _retrieved_and_wrong(states["hebbian"], target)
+    assert retrieved.all() and wrong <= _rs_wrong_bit_ceiling(0.05, target.size)
+    wrong_frac = {rule: (st != target).mean() for rule, st in states.items()}
+    assert wrong_frac["storkey"] <= wrong_frac["hebbian"] + 1 / 200
 
 
 def test_dense_polynomial_completion():
@@ -535,10 +547,9 @@ def test_retrieval_with_damaged_units(unit_mode, mode):
     # damaged units keep the probe's value.
     # delete: derived, Hebbian w_ij depends only on coordinates i and j, and the 1/N factor
     # never changes a sign, so the surviving units are exactly the Hebbian memory of the
-    # restricted patterns (same sync states); that memory has alpha = 10/300 < alpha_c, so
-    # the replica-symmetric wrong-bit fraction (Amit, Gutfreund & Sompolinsky 1987) at alpha_c,
-    # 0.0163 (derived, see
-    # test_completion_from_flipped_bits), is its upper reference.
+    # restricted patterns (same sync states); that memory has alpha = 10/300, where the
+    # replica-symmetric retrieval state (Amit, Gutfreund & Sompolinsky 1987) has 1e-7 wrong
+    # bits per bit: the Poisson ceiling of test_completion_from_flipped_bits applies.
     # clamp: stuck units feed their probe values into the fields, which that theory does not
     # cover; the reference is the undamaged memory on the same probes (slack 0.01: fewer
     # live units, larger crosstalk per unit of signal).
@@ -555,7 +566,8 @@ def test_retrieval_with_damaged_units(unit_mode, mode):
     assert np.array_equal(r.states[:, dead], probes[:, dead])
     if unit_mode == "delete":
         assert not dm.weights[dead].any() and not dm.weights[:, dead].any()
-        assert wrong < 0.0163
+        retrieved, n_wrong = _retrieved_and_wrong(r.states[:, alive], target[:, alive])
+        assert retrieved.all() and n_wrong <= _rs_wrong_bit_ceiling(10 / 300, alive.size * len(target))
         if mode == "sync":
             ref = BinaryMemory(x[:, alive]).retrieve(probes[:, alive], mode="sync")
             assert np.array_equal(r.states[:, alive], ref.states)
