@@ -177,5 +177,8 @@ def test_entropy_identity_dh_dbeta_at_1e12_in_float64():
         want, _ = integrate.quad(rate, b1, b2, args=(j,), epsabs=1e-14, epsrel=1e-13, limit=200)
         got = rep.entropy[1, j] - rep.entropy[0, j]
         assert got == pytest.approx(want, abs=1e-12) and got < 0
+    # non-increasing over a grid of dyadic betas (exact products again), at 1e-12
+    grid = tu.sweep_beta(mem, q, betas=np.arange(1, 33) / 8.0, steps=1).entropy
+    assert (np.diff(grid, axis=0) <= 1e-12).all() and (np.diff(grid, axis=0) < 0).any()
     zero = tu.sweep_beta(mem, q, betas=[2.0**-30], steps=1).entropy[0]  # H = ln N - O(beta^2)
     np.testing.assert_allclose(zero, np.log(50), atol=1e-12)
