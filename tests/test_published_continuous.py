@@ -17,10 +17,19 @@ import numpy as np
 import pytest
 from scipy import integrate
 from scipy.special import softmax
+from threadpoolctl import threadpool_limits
 
 import densemem
 import densemem.tuning as tu
 from densemem.tuning._theory import _beta_separated, storage_bound
+
+
+@pytest.fixture(autouse=True, scope="module")
+def _one_blas_thread():
+    """These experiments run many small products: one BLAS thread is faster and keeps a
+    shared machine responsive (the results do not depend on it)."""
+    with threadpool_limits(limits=1, user_api="blas"):
+        yield
 
 
 def _unit(rng: np.random.Generator, n: int, d: int) -> np.ndarray:

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from threadpoolctl import threadpool_limits
 
 from densemem.binary import BinaryMemory
 from densemem.capacity._theory import (
@@ -24,6 +25,14 @@ from densemem.capacity._theory import (
     hebbian_load_for_error,
     hebbian_one_step_error_large_n,
 )
+
+
+@pytest.fixture(autouse=True, scope="module")
+def _one_blas_thread():
+    """These experiments run many small matrix products: one BLAS thread is faster for them
+    and keeps a shared machine responsive (the results do not depend on it)."""
+    with threadpool_limits(limits=1, user_api="blas"):
+        yield
 
 
 def _pm1(rng: np.random.Generator, shape) -> np.ndarray:

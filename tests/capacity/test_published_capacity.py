@@ -24,6 +24,7 @@ import math
 import numpy as np
 import pytest
 from scipy import stats
+from threadpoolctl import threadpool_limits
 
 from densemem.binary import BinaryMemory
 from densemem.capacity import estimate_capacity
@@ -35,6 +36,14 @@ from densemem.capacity._theory import (
 )
 
 ONE_STEP = dict(mode="sync", steps=1)
+
+
+@pytest.fixture(autouse=True, scope="module")
+def _one_blas_thread():
+    """These experiments run many small matrix products: one BLAS thread is faster for them
+    and keeps a shared machine responsive (the results do not depend on it)."""
+    with threadpool_limits(limits=1, user_api="blas"):
+        yield
 
 
 def _log_slope(xs, caps) -> float:
@@ -198,3 +207,16 @@ def test_exponential_capacity_exponent_from_flipped_bits():
     assert 0.85 * a <= slope <= 1.15 * a, (caps, slope, a)
     for wrong in (2 * a, math.log(2) / 2):  # the same band around each wrong reference
         assert not 0.85 * wrong <= slope <= 1.15 * wrong
+
+
+def test_scope_is_checked_and_reported():
+    # the criterion is part of the report, its table row and its repr; a bad value is refused
+    # at the public boundary, naming the function, the argument and the choices
+    from densemem import InputValueError
+
+    rep = estimate_capacity("hebbian", 16, scope="all", n_trials=4, **ONE_STEP)
+    assert rep.scope == "all" and rep.trials == (4,) * len(rep.counts)
+    assert rep.probes == rep.trials  # one judged unit (a whole set) per trial
+    assert "scope='all'" in repr(rep) and rep.to_dict()["scope"] == "all"
+    with pytest.raises(InputValueError, match=r"^estimate_capacity: `scope` must be one of 'pattern', 'all'"):
+        estimate_capacity("hebbian", 16, scope="each")
