@@ -161,7 +161,20 @@ def _async_fixed_points(n: int, p: int, n_sets: int, seed: int):
 def ags_runs():
     n = 1000
     return {alpha: _async_fixed_points(n, int(round(alpha * n)), 6, seed=7)
-            for alpha in (0.08, 0.10, 0.12, 0.13)}  # 6 sets each
+            for alpha in (0.05, 0.08, 0.10, 0.12, 0.13)}  # 6 sets each
+
+
+def test_fixed_point_error_at_alpha_005_is_the_replica_symmetric_ceiling(ags_runs):
+    # Amit, Gutfreund & Sompolinsky 1987: at alpha = 0.05 the retrieval state has 3.9e-6
+    # wrong bits per bit; over 6 sets of 50 patterns x 1000 bits (300000 bits, 1.2 expected)
+    # the count is at most the Poisson 99.9% quantile (6). The value at alpha_c (0.0163)
+    # would allow 4900.
+    from scipy.stats import poisson
+
+    errs, lost = ags_runs[0.05]
+    assert lost.max() == 0.0
+    n_wrong = round(float(errs.sum()) * 50 * 1000)
+    assert n_wrong <= poisson.ppf(0.999, ags_retrieval_error(0.05) * 6 * 50 * 1000)
 
 
 @pytest.mark.parametrize("alpha", [0.08, 0.10, 0.12, 0.13])
