@@ -197,26 +197,11 @@ def test_01_patterns_store_like_their_pm1_form(rng):
 
 
 # ----------------------------------------------------------- one-step errors
-def _one_step_flip_rate(n, p, rng):
-    x = pm1(rng, (p, n))
-    r = BinaryMemory(x).retrieve(x, mode="sync", max_sweeps=1)
-    return float((r.states != x).mean())
-
-
+# (the one-step error table, the load curve and the replica-symmetric fixed-point errors are in
+# tests/binary/test_published_hebbian.py)
 def _exact_flip_probability(n, p):
     # derived exact finite-N one-step flip probability, as the library computes it
     return hebbian_flip_probability(n, p)
-
-
-def test_library_one_step_error_at_large_n_approaches_textbook_formula():
-    # Hertz, Krogh & Palmer 1991; derived exact flip probability: at N = 1000, p/N = 0.185 the
-    # simulation matches the exact
-    # finite-N value within Monte Carlo error and the large-N erfc value within 10%.
-    n, p = 1000, 185
-    rate = _one_step_flip_rate(n, p, np.random.default_rng(0))
-    exact = _exact_flip_probability(n, p)
-    assert abs(rate - exact) < 5 * np.sqrt(exact / (n * p))
-    assert rate == pytest.approx(erfc(np.sqrt(n / (2 * p))) / 2, rel=0.10)
 
 
 # ---------------------------------------------------------- capacity and rules
