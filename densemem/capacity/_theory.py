@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 from scipy import optimize, special, stats
@@ -138,6 +139,7 @@ def _ags_alpha_of_y(y: float) -> float:
     return float((special.erf(y) / y - 2.0 / np.sqrt(np.pi) * np.exp(-y * y)) ** 2 / 2.0)
 
 
+@lru_cache(maxsize=1)
 def ags_alpha_c() -> tuple[float, float]:
     """Critical load and overlap of the Hebbian retrieval state, (alpha_c, m_c).
 
@@ -148,7 +150,8 @@ def ags_alpha_c() -> tuple[float, float]:
     they reduce to ``sqrt(2 alpha) y = erf(y) - (2 / sqrt(pi)) y exp(-y^2)``, so the
     retrieval solution exists while ``alpha <= max_y alpha(y)``,
     ``alpha(y) = (erf(y) / y - (2 / sqrt(pi)) exp(-y^2))^2 / 2``. The maximum is found
-    numerically (bounded scalar minimisation to 1e-12 in y): alpha_c ~ 0.1379, m_c = erf(y_c).
+    numerically (bounded scalar minimisation to 1e-12 in y, once; the result is cached):
+    alpha_c ~ 0.1379, m_c = erf(y_c).
     """
     res = optimize.minimize_scalar(lambda y: -_ags_alpha_of_y(y), bounds=(0.5, 4.0),
                                    method="bounded", options={"xatol": 1e-12})
