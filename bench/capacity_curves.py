@@ -3,7 +3,8 @@
 Invented scenario: random -1/+1 patterns (seeded), no real data. Curves measured:
   binary   hebbian, storkey, poly3 at N = 25, 50, 100, 200: exact fixed points, one
            synchronous step from the stored pattern (no corruption); pseudo_inverse likewise,
-           the search capped at N (CHECKS.md 22: every pattern is a fixed point up to N).
+           the search capped at N (Personnaz et al. 1985; Kanter & Sompolinsky 1987: every
+           pattern is a fixed point up to N).
   dense    exp (binary, F = exp) at N = 8..24: one-step retrieval from a probe with Gaussian
            noise sigma 0.5 (about 2% of bits flipped); softmax(beta=50) at d = 8..24: top-1
            correct from a probe with a quarter of its coordinates zeroed.
@@ -39,7 +40,8 @@ from densemem.capacity import (
 
 HERE = Path(__file__).resolve().parent
 
-ASYMPTOTIC = {  # CHECKS.md 20-23 (McEliece 1987; Storkey 1997 and Krotov-Hopfield 2016 from memory)
+ASYMPTOTIC = {  # McEliece et al. 1987; Storkey 1997 and Krotov & Hopfield 2016 (from memory);
+    # Kanter & Sompolinsky 1987 for the pseudo-inverse
     "hebbian": lambda n: n / (2 * math.log(n)),
     "storkey": lambda n: n / math.sqrt(2 * math.log(n)),
     "pseudo_inverse": lambda n: float(n),

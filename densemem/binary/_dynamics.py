@@ -13,8 +13,9 @@ point (or, synchronously, a 2-cycle), and records the energy after every sweep.
 
 Asynchronous sweeps use **one random order per sweep, shared by every probe in the batch**
 (``free_units[rng.permutation(n_free)]``, one call per sweep). Each probe still sees the
-latest states of all units (sequential in effect), which is what the guarantees of CHECKS.md
-entries 14-15 need; sharing the order is what lets the work be vectorised across probes.
+latest states of all units (sequential in effect), which is what the descent guarantees of Hopfield
+(PNAS 1982) and Bruck (Proc. IEEE 1990) need; sharing the order is what lets the work be
+vectorised across probes.
 """
 
 from __future__ import annotations

@@ -46,7 +46,7 @@ class BinaryMemory:
     thresholds : float or array_like of shape (n_units,), optional
         Unit thresholds in the memory's form. ``None`` means zero thresholds in the -1/+1
         form; for ``states="01"`` that is U = T 1 / 2, the 0/1 network exactly equivalent to
-        the -1/+1 one (CHECKS.md entry 16). An explicit ``0`` gives the classic unbiased 0/1
+        the -1/+1 one (derived 0/1 <-> +-1 map). An explicit ``0`` gives the classic unbiased 0/1
         network, which is a different network.
 
     Notes
@@ -130,7 +130,7 @@ class BinaryMemory:
         self._w = w
         if self._user_thr is None:
             self._theta = np.zeros(w.shape[0])
-        elif self._states == "01":  # theta = U/2 - T 1/4 with T = 4 W (entry 16)
+        elif self._states == "01":  # theta = U/2 - T 1/4 with T = 4 W (derived 0/1 <-> +-1 map)
             self._theta = self._user_thr / 2.0 - w.sum(axis=1)
         else:
             self._theta = self._user_thr.copy()

@@ -96,7 +96,7 @@ def retrieve_batch(owner: str, engine: Engine, free: np.ndarray, states: str, n_
                    return_trajectory: bool, offset: float = 0.0) -> BinaryRetrieval:
     """Validate the retrieve arguments of `owner`, run the dynamics, wrap the result.
 
-    `offset` is added to every energy (the 0/1 form's constant, CHECKS.md entry 16).
+    `offset` is added to every energy (the 0/1 form's constant, derived 0/1 <-> +-1 map).
     """
     where = f"{owner}.retrieve"
     mode = chk.check_choice(mode, "mode", chk.MODES, where)

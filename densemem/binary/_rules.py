@@ -60,13 +60,13 @@ def pseudo_inverse_weights(patterns: np.ndarray) -> np.ndarray:
 def from_01(t_weights: np.ndarray, u_thresholds: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """0/1 network (T, U) -> the +-1 network (W, theta) with the same dynamics.
 
-    CHECKS.md entry 16: W = T / 4, theta = U / 2 - T 1 / 4 (with s = 2 v - 1).
+    Derived 0/1 <-> +-1 map: W = T / 4, theta = U / 2 - T 1 / 4 (with s = 2 v - 1).
     """
     return t_weights / 4.0, u_thresholds / 2.0 - t_weights.sum(axis=1) / 4.0
 
 
 def to_01(weights: np.ndarray, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """+-1 network (W, theta) -> 0/1 network T = 4 W, U = 2 theta + 2 W 1 (entry 16)."""
+    """+-1 network (W, theta) -> 0/1 network T = 4 W, U = 2 theta + 2 W 1 (derived)."""
     return 4.0 * weights, 2.0 * theta + 2.0 * weights.sum(axis=1)
 
 

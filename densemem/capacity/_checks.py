@@ -106,7 +106,7 @@ def progress_bar(progress: Any, total: int | None, desc: str, where: str) -> Any
 
 def setup(where: str, model: Any, dim: Any, patterns: Any, corruption: Any, damage: Any,
            success: Any, eps: Any, steps: Any, mode: Any, max_probes: Any, seed: Any,
-           ci: Any, confidence: Any) -> tuple[cm.Model, cm.Setup]:
+           ci: Any, confidence: Any, scope: Any = "pattern") -> tuple[cm.Model, cm.Setup]:
     m = cm.parse_model(model, where)
     success = choice(success, "success", cm.SUCCESS, where)
     if m.kind == "custom":
@@ -129,7 +129,7 @@ def setup(where: str, model: Any, dim: Any, patterns: Any, corruption: Any, dama
         source=source, corruption=check_corruption(corruption, where), damage=damage,
         success=success, eps=eps, steps=steps, mode=choice(mode, "mode", cm.MODES, where),
         max_probes=check_positive_int(max_probes, name="max_probes", where=where), seed=seed,
-        where=where)
+        scope=choice(scope, "scope", cm.SCOPES, where), where=where)
     return m, out
 
 
@@ -154,10 +154,11 @@ def capacity_plan(where: str, model: Any, dim: Any, *, patterns: Any = "pm1", co
                   success: Any = "fixed_point", eps: Any = None, delta: Any = 0.05, n_trials: Any = 5,
                   min_probes: Any = 256, max_probes: Any = 256, seed: Any = 0, max_patterns: Any = 4096,
                   steps: Any = None, mode: Any = "async", ci: Any = "wilson", confidence: Any = 0.95,
-                  decide: Any = "estimate", rel_tol: Any = 0.0, progress: Any = None) -> CapacityPlan:
+                  decide: Any = "estimate", rel_tol: Any = 0.0, progress: Any = None,
+                  scope: Any = "pattern") -> CapacityPlan:
     """Check every argument of :func:`densemem.capacity.estimate_capacity` (defaults match)."""
     m, st = setup(where, model, dim, patterns, corruption, None, success, eps, steps, mode,
-                  max_probes, seed, ci, confidence)
+                  max_probes, seed, ci, confidence, scope)
     delta = check_nonneg_float(delta, name="delta", where=where, strict=True)
     if delta >= 1:
         raise InputValueError(f"{where}: `delta` must be in (0, 1); got {delta!r}.")

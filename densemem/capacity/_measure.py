@@ -72,6 +72,7 @@ def estimate_capacity(
     decide: str = "estimate",
     rel_tol: float = 0.0,
     progress: bool | None = None,
+    scope: str = "pattern",
 ) -> CapacityReport:
     """Largest number of stored patterns retrieved with probability >= 1 - delta.
 
@@ -113,6 +114,13 @@ def estimate_capacity(
         Bisection stops when the bracket is within max(1, rel_tol * capacity).
     progress : bool or None
         tqdm bar on stderr (None: only when stderr is a terminal).
+    scope : {"pattern", "all"}, default "pattern"
+        "pattern": the rate is over probed patterns (a statement about a typical pattern,
+        as in "most memories are recoverable"). "all": every stored pattern of a trial is
+        probed and the trial succeeds only when all of them do; the rate is over trials (a
+        statement about whole sets, as in "every memory is recoverable" or "exp(alpha N)
+        patterns are all stable"). `min_probes` and `max_probes` do not apply; `n_trials`
+        sets are judged at each count.
 
     Returns
     -------
@@ -139,7 +147,7 @@ def estimate_capacity(
         "estimate_capacity", model, dim, patterns=patterns, corruption=corruption, success=success,
         eps=eps, delta=delta, n_trials=n_trials, min_probes=min_probes, max_probes=max_probes,
         seed=seed, max_patterns=max_patterns, steps=steps, mode=mode, ci=ci, confidence=confidence,
-        decide=decide, rel_tol=rel_tol, progress=progress)
+        decide=decide, rel_tol=rel_tol, progress=progress, scope=scope)
     return _search(plan)
 
 
@@ -151,7 +159,7 @@ def _search(plan: ck.CapacityPlan) -> CapacityReport:
     trials: list[int] = []
 
     def evaluate(k: int) -> tuple[int, int]:
-        t = cm.trials_at(k, plan.n_trials, plan.min_probes, setup.max_probes)
+        t = cm.trials_at(k, plan.n_trials, plan.min_probes, setup.max_probes, setup.scope)
         trials.append(t)
         return cm.pooled(m, setup, k, t)
 
@@ -175,7 +183,7 @@ def _search(plan: ck.CapacityPlan) -> CapacityReport:
         ci_low=tuple(c[0] for c in cis), ci_high=tuple(c[1] for c in cis),
         patterns=setup.source.kind, corruption=ck.corruption_tag(setup.corruption),
         success=setup.success, eps=setup.eps, delta=plan.delta, confidence=conf, ci=plan.ci,
-        decide=plan.decide, n_trials=plan.n_trials, seed=setup.seed)
+        decide=plan.decide, n_trials=plan.n_trials, seed=setup.seed, scope=setup.scope)
 
 
 def capacity_curve(
@@ -264,7 +272,7 @@ def plot_capacity(table: CapacityCurve, path: Any, *, title: str | None = None) 
     """PNG of capacity against dimension (log y) with the published asymptotic curves.
 
     Each measured model is drawn with markers (open triangles: capped at max_patterns); in
-    the same colour, dashed, the curves of CHECKS.md entries 19-24 for that model, each
+    the same colour, dashed, the published asymptotic curves for that model, each
     labelled with its source and "asymptotic": Amit-Gutfreund-Sompolinsky 0.138 N and
     McEliece N/(2 ln N), N/(4 ln N) (Hebbian); Storkey N/sqrt(2 ln N); pseudo-inverse N;
     Krotov-Hopfield N^(n-1)/(2 (2n-3)!! ln N); Demircigil exp(N ln2/2) (and exp(N I(1-2rho)/2)

@@ -28,6 +28,7 @@ PAIRWISE = ("hebbian", "storkey", "pseudo_inverse")
 PATTERN_KINDS = ("pm1", "unit", "gaussian")
 CORRUPTIONS = ("flip", "gauss", "mask")
 SUCCESS = ("fixed_point", "overlap", "top1")
+SCOPES = ("pattern", "all")  # judge each probed pattern, or each stored set as a whole
 DAMAGES = ("damage_units", "zero_weights", "zero_coords")
 MODES = ("async", "sync")
 
@@ -168,6 +169,7 @@ class Setup:
     mode: str
     max_probes: int
     seed: int
+    scope: str = "pattern"  # "all": a trial is one judged unit, every stored pattern probed
     where: str = "estimate_capacity"  # the public function, for errors raised during trials
 
 
@@ -267,7 +269,7 @@ def run_trial(model: Model, setup: Setup, k: int, trial: int) -> np.ndarray:
             )
         return ok
     x = setup.source.draw(_stream(setup, trial, 0), k)
-    targets = x[: min(k, setup.max_probes)]
+    targets = x if setup.scope == "all" else x[: min(k, setup.max_probes)]
     probes = corrupt(targets, setup.corruption, model.binary, _stream(setup, trial, 1),
                      _stream(setup, trial, 4))
     stored = x
@@ -277,19 +279,25 @@ def run_trial(model: Model, setup: Setup, k: int, trial: int) -> np.ndarray:
         stored = x.copy()
         stored[:, cut] = 0.0
     if not model.binary:
-        return _continuous(model, stored, probes, targets, setup)
-    mem = _binary_memory(model, stored, setup, trial)
-    res = mem.retrieve(probes.astype(np.int8), mode=setup.mode, max_sweeps=setup.steps,
-                       seed=_stream(setup, trial, 2))
-    return _judge_binary(res.states.astype(np.float64), targets, stored, setup)
+        ok = _continuous(model, stored, probes, targets, setup)
+    else:
+        mem = _binary_memory(model, stored, setup, trial)
+        res = mem.retrieve(probes.astype(np.int8), mode=setup.mode, max_sweeps=setup.steps,
+                           seed=_stream(setup, trial, 2))
+        ok = _judge_binary(res.states.astype(np.float64), targets, stored, setup)
+    return np.array([ok.all()]) if setup.scope == "all" else ok
 
 
-def trials_at(k: int, n_trials: int, min_probes: int, max_probes: int) -> int:
+def trials_at(k: int, n_trials: int, min_probes: int, max_probes: int, scope: str = "pattern") -> int:
     """Trials run at count k: `n_trials`, raised so at least `min_probes` probes are judged.
 
     A trial probes min(k, max_probes) patterns, so small counts get more (cheap) trials
     instead of re-probing the same memory, which keeps the probes close to independent.
+    With ``scope="all"`` a trial is one judged unit (a whole set), so `n_trials` trials run
+    and `min_probes` does not apply.
     """
+    if scope == "all":
+        return n_trials
     return max(n_trials, -(-min_probes // min(k, max_probes)))
 
 

@@ -41,13 +41,14 @@ def plot_curve(curve: Any, path: Any, *, title: str | None = None) -> Path:
     fig, ax = plt.subplots(figsize=(12, 6))
     groups: dict[tuple[str, str], list[Any]] = {}
     for r in curve.reports:
-        groups.setdefault((r.model, r.corruption), []).append(r)
-    for j, ((label, corruption), reps) in enumerate(groups.items()):
+        groups.setdefault((r.model, r.corruption, r.scope), []).append(r)
+    for j, ((label, corruption, scope), reps) in enumerate(groups.items()):
         color = f"C{j % 10}"
         reps = sorted(reps, key=lambda r: r.dim)
         dims = np.array([r.dim for r in reps], float)
         caps = np.array([max(r.capacity, 0.5) for r in reps], float)
-        tag = f"{label} measured ({reps[0].success}, corruption {corruption})"
+        per = "every pattern of a set" if scope == "all" else "per probed pattern"
+        tag = f"{label} measured ({reps[0].success}, {per}, corruption {corruption})"
         ax.plot(dims, caps, "o-", color=color, label=tag)
         capped = np.array([r.capped for r in reps])
         if capped.any():

@@ -20,7 +20,7 @@ from ..errors import InputTypeError, InputValueError
 
 TABLE_COLUMNS = (
     "model", "dim", "capacity", "rate", "ci_low", "ci_high", "first_fail", "fail_rate",
-    "capped", "patterns", "corruption", "success", "delta", "n_trials", "seed",
+    "capped", "patterns", "corruption", "success", "scope", "delta", "n_trials", "seed",
 )
 
 
@@ -113,6 +113,9 @@ class CapacityReport(_Plain):
     model, dim, patterns, corruption, success, eps, delta : the experiment's settings
         (``corruption`` as "flip:0.1" or "none"; ``patterns`` "pm1", "unit", "gaussian" or
         "array").
+    scope : {"pattern", "all"}
+        What one judged unit is: a probed pattern, or a whole stored set (every pattern of a
+        trial must succeed); ``probes`` then counts sets.
     capacity : int
         Largest count found whose success rate passed (>= 1 - delta); 0 if even one pattern
         failed.
@@ -149,6 +152,7 @@ class CapacityReport(_Plain):
     decide: str
     n_trials: int
     seed: int
+    scope: str = "pattern"
 
     def _at(self, n: int | None) -> tuple[float, float, float] | None:
         if n is None or n not in self.counts:
@@ -165,13 +169,13 @@ class CapacityReport(_Plain):
             "ci_high": at[2] if at else None, "first_fail": self.first_fail,
             "fail_rate": fail[0] if fail else None, "capped": self.capped,
             "patterns": self.patterns, "corruption": self.corruption, "success": self.success,
-            "delta": self.delta, "n_trials": self.n_trials, "seed": self.seed,
+            "scope": self.scope, "delta": self.delta, "n_trials": self.n_trials, "seed": self.seed,
         }
 
     def __repr__(self) -> str:
         cap = f">={self.capacity} (capped)" if self.capped else str(self.capacity)
         return (f"CapacityReport(model={self.model!r}, dim={self.dim}, capacity={cap}, "
-                f"success={self.success!r}, corruption={self.corruption!r}, "
+                f"success={self.success!r}, scope={self.scope!r}, corruption={self.corruption!r}, "
                 f"evaluations={len(self.counts)})")
 
 

@@ -28,7 +28,7 @@ A partial over rows ``R`` is ``(m, l, acc, top)`` with ``m`` a reference
 (the largest ``z = beta * score``), ``l = sum_R e^(z - m)`` and
 ``acc = sum_R e^(z - m) x``. For disjoint ``A`` and ``B`` the partial of
 ``A u B`` is ``m = max(m_A, m_B)``, ``l = l_A e^(m_A - m) + l_B e^(m_B - m)``,
-``acc`` likewise, ``top`` = the best k of both (CHECKS.md entry 11): an
+``acc`` likewise, ``top`` = the best k of both (derived merge of partials): an
 identity, not an approximation, and associative and commutative, so any tree
 gives the single-machine normaliser, state and top list up to float rounding.
 Certified shards bound their own omitted mass; the merged bound is the merged

@@ -359,7 +359,7 @@ def choose_beta(
     With ``steps=1`` both quantities are monotone in beta, so bisection finds
     the crossing: the top weight ``1 / sum_j exp(beta (s_j - s_max))`` never
     falls as beta grows and the top-1 item does not depend on beta; the
-    entropy never rises (``dH/dbeta = -beta Var_p(s)``, CHECKS.md entry 12),
+    entropy never rises (``dH/dbeta = -beta Var_p(s)``, derived identity),
     so neither does the mean blend size. With ``steps > 1`` the same search
     runs but monotonicity is not guaranteed. Sharp: returns the upper end of
     the final bracket (a beta known to meet the goal). Blend: returns the end

@@ -192,7 +192,8 @@ def predict_beta(
 
     Notes
     -----
-    *Well-separated condition* (CHECKS.md entry 8, from memory):
+    *Well-separated condition* (Ramsauer et al., "Hopfield Networks is All You Need",
+    ICLR 2021; from memory):
     ``Delta_i >= 2/(beta N) + ln(2 (N-1) N beta M^2) / beta``; then the update
     maps the ball of radius ``1/(beta N M)`` around ``x_i`` into itself.
     Multiplying by beta, it reads ``g(beta) >= 0`` with
@@ -207,7 +208,7 @@ def predict_beta(
     ``beta_hi = -W_{-1}(-Delta_i e^{-c}) / Delta_i`` (closed form, vectorised;
     the tests check it against ``scipy.optimize.brentq`` on the inequality).
 
-    *One-step bound* (entry 7, derived): for ``||xi - x_i|| <= r``,
+    *One-step bound* (derived from the same paper's argument): for ``||xi - x_i|| <= r``,
     ``||f(xi) - x_i|| <= 2 M (N-1) exp(-beta (Delta_i - 2 M r))``, which is at
     most ``error_tol`` from ``beta = ln(2 M (N-1) / error_tol) / (Delta_i - 2 M r)``
     (inf when ``Delta_i <= 2 M r``; 0 when the bound holds at every beta).
@@ -249,3 +250,22 @@ def predict_beta(
         summary={**_quantiles(b_sep, "separated"), **_quantiles(b_bound, "bound")},
     )
 
+
+# ------------------------------------------------------ storage theorem
+def storage_bound(beta: float, k: float, dim: int, p: float) -> tuple[float, float, bool]:
+    """Patterns the storage theorem guarantees, for patterns uniform on a sphere (private).
+
+    Ramsauer et al., "Hopfield Networks is All You Need", ICLR 2021, storage theorem (the
+    formula from memory): N patterns uniform on the sphere of radius ``M = k sqrt(dim - 1)``,
+    failure probability ``p``; with ``a = (2 / (dim - 1)) (1 + ln(2 beta k^2 p (dim - 1)))``,
+    ``b = 2 k^2 beta / 5`` and ``c = b / W0(exp(a + ln b))`` (W0 the principal Lambert W
+    branch), if ``c >= (2 / sqrt(p))^(4 / (dim - 1))`` then with probability ``1 - p`` at
+    least ``sqrt(p) c^((dim - 1) / 4)`` patterns are stored (well separated).
+
+    Returns ``(c, n_stored, side_condition_holds)``.
+    """
+    a = (2.0 / (dim - 1)) * (1.0 + math.log(2.0 * beta * k * k * p * (dim - 1)))
+    b = 2.0 * k * k * beta / 5.0
+    c = b / float(lambertw(math.exp(a + math.log(b)), k=0).real)
+    n_stored = math.sqrt(p) * c ** ((dim - 1) / 4.0)
+    return c, n_stored, bool(c >= (2.0 / math.sqrt(p)) ** (4.0 / (dim - 1)))

@@ -1,7 +1,7 @@
 """The benchmark harness: recall@k, the record schema, a tiny run end to end, the CLI.
 
 Outside references: faiss exact search (IndexFlatIP) as ground truth; faiss IVF
-rebuilt here with the same settings; scikit-learn's bundled digits (CHECKS.md 25);
+rebuilt here with the same settings; scikit-learn's bundled digits (UCI optdigits);
 the recall@k definition |returned top-k & true top-k| / k is common practice in
 nearest-neighbour benchmarks. Timing is never asserted.
 """
@@ -153,7 +153,7 @@ def test_float64_reference_matches_scipy_softmax(rng: np.random.Generator) -> No
     x = rng.standard_normal((300, 5)).astype(np.float32)
     q = rng.standard_normal((4, 5)).astype(np.float32)
     x64, q64 = x.astype(np.float64), q.astype(np.float64)
-    ref = softmax(7.0 * q64 @ x64.T, axis=1) @ x64  # scipy.special.softmax reference (CHECKS.md 13)
+    ref = softmax(7.0 * q64 @ x64.T, axis=1) @ x64  # scipy.special.softmax reference
     np.testing.assert_allclose(float64_states(x, q, 7.0, chunk=64), ref, rtol=1e-10, atol=1e-12)
 
 

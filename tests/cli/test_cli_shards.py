@@ -2,7 +2,7 @@
 
 Reference: the single-store CLI run on the same data (itself checked against scipy in
 test_cli.py), and a faiss IndexFlatIP top-1 (exact search). Shards merge exactly
-(CHECKS.md entry 11), so answers must agree.
+(derived merge of partials), so answers must agree.
 """
 
 from __future__ import annotations

@@ -1,10 +1,10 @@
 """Certified top-k retrieval (method="certified" / "auto") against outside references.
 
-References (CHECKS.md): scipy.special.softmax and faiss IndexFlatIP exact search (entry 13);
-the continuous Hopfield update and energy of Ramsauer et al., ICLR 2021 (entry 1, energy from
-memory); the fixed points near stored patterns of well-separated data (entries 8-9, from
-memory); the online-softmax identity behind partial merging (entries 10-11); scikit-learn's
-bundled digits, a copy of UCI optdigits (entry 25).
+References: scipy.special.softmax and faiss IndexFlatIP exact search; the continuous
+Hopfield update and energy of Ramsauer et al., "Hopfield Networks is All You Need", ICLR 2021
+(energy from memory); the fixed points near stored patterns of well-separated data (same
+paper, from memory); the online-softmax identity behind partial merging (Milakov &
+Gimelshein, arXiv:1805.02867, 2018); scikit-learn's bundled digits, a copy of UCI optdigits.
 
 The certified bound under test (issue 3, derived in densemem/_candidates.py): with candidates
 C = faiss's exact top-kc rows, every omitted weight is at most exp(beta (s_kc - s_1)) relative
@@ -76,7 +76,7 @@ def ref_iterate(x: np.ndarray, q: np.ndarray, beta: float, steps: int, tol: floa
 
 
 def ref_energy(x: np.ndarray, states: np.ndarray, beta: float) -> np.ndarray:
-    """CHECKS.md entry 1 (from memory), float64 with scipy.special.logsumexp."""
+    """Energy of Ramsauer et al., ICLR 2021 (from memory), float64 with scipy.special.logsumexp."""
     x64, s64 = np.asarray(x, np.float64), np.atleast_2d(np.asarray(states, np.float64))
     m = np.sqrt(np.max(np.sum(x64 * x64, axis=1)))
     lse = logsumexp(beta * s64 @ x64.T, axis=1)
@@ -91,7 +91,7 @@ def score_delta(x: np.ndarray, q: np.ndarray, beta: float) -> np.ndarray:
 
 
 def faiss_top(x: np.ndarray, q: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
-    """faiss IndexFlatIP exact inner-product search (CHECKS.md 13)."""
+    """faiss IndexFlatIP exact inner-product search."""
     index = faiss.IndexFlatIP(x.shape[1])
     index.add(np.ascontiguousarray(x, dtype=np.float32))
     return index.search(np.ascontiguousarray(q, dtype=np.float32), k)
@@ -154,7 +154,8 @@ def check_certified_against_reference(mem: DenseMemory, x: np.ndarray, q: np.nda
         slack_ex = slack + m * (np.expm1(2 * delta[i]) + 2 * gamma(n + 4))
         assert err_ex <= res.state_bound[i] * grow[i] + slack_ex, (err_ex, res.state_bound[i], slack_ex)
 
-    # Energy of the returned states (CHECKS.md 1), computed by a certified pass: its lse misses at
+    # Energy of the returned states (Ramsauer et al. 2021 energy, from memory), computed by a
+    # certified pass: its lse misses at
     # most -log(1 - tol_mass e^(2 Delta)) and float32 scores move it by Delta.
     if res.energy is not None:
         lost = -np.log1p(-np.minimum(tol_mass * np.exp(2 * score_delta(x, res.states, beta)), 0.99))
@@ -162,7 +163,8 @@ def check_certified_against_reference(mem: DenseMemory, x: np.ndarray, q: np.nda
 
 
 def energy_slack(x: np.ndarray, states: np.ndarray, beta: float) -> np.ndarray:
-    """Float32 slack of a log-sum-exp energy (CHECKS.md 1) against the float64 reference.
+    """Float32 slack of a log-sum-exp energy (Ramsauer et al. 2021 energy, from memory) against
+    the float64 reference.
 
     lse moves by at most Delta (float32 scores) plus the relative error of the float32 sum of
     n positive terms: numpy's pairwise summation (numpy PR 3685) adds blocks of at most 128 in
@@ -205,7 +207,7 @@ def certified_cases(draw):
 @given(certified_cases())
 def test_certified_never_violates_its_bound(case) -> None:
     # References: scipy.special.softmax in float64 (untiled), method="exact", faiss IndexFlatIP
-    # (CHECKS.md 13); the bound of issue 3. Large tol_mass values accept loose, large bounds, so
+    # the bound of issue 3. Large tol_mass values accept loose, large bounds, so
     # the inequality is tested where it is not trivially tiny; small k_max forces fallbacks.
     seed, beta, n, d, scale, spread, noise, n_q, k, k_max, tol_mass = case
     rng = np.random.default_rng(seed)
@@ -229,7 +231,7 @@ def _gauss_case(seed: int = 3, n: int = 800, d: int = 16) -> tuple[np.ndarray, n
 
 
 def test_growth_beyond_k_stays_within_bound() -> None:
-    # References: scipy softmax float64, faiss IndexFlatIP (CHECKS.md 13). At beta=2 on Gaussian
+    # References: scipy softmax float64, faiss IndexFlatIP. At beta=2 on Gaussian
     # patterns (|x| ~ 4) top-1 carries most but not all mass: kc must double past k=1.
     x, q = _gauss_case()
     mem = DenseMemory.from_array(x)
@@ -239,7 +241,7 @@ def test_growth_beyond_k_stays_within_bound() -> None:
 
 
 def test_fallback_answers_exactly() -> None:
-    # References: method="exact" and scipy softmax float64 (CHECKS.md 13). k_max=2 is too few
+    # References: method="exact" and scipy softmax float64. k_max=2 is too few
     # candidates at beta=1, so every query falls back and is answered by the tiled exact path.
     x, q = _gauss_case()
     mem = DenseMemory.from_array(x)
@@ -273,7 +275,7 @@ def test_loose_bound_still_holds() -> None:
 
 
 def test_certified_weights_are_probabilities() -> None:
-    # Reference: scipy.special.softmax weights lie in [0, 1] and sum to 1 (CHECKS.md 13); the
+    # Reference: scipy.special.softmax weights lie in [0, 1] and sum to 1; the
     # reported top weights (float64) are part of one softmax, so their sum cannot exceed 1 by more
     # than float32-level rounding of the normaliser: 16 u = 2^-20 ~ 9.5e-7 (the exact path, whose
     # normaliser is a float32 sum, stays well inside it). beta * score ~ 80 here.
@@ -290,7 +292,8 @@ def test_certified_weights_are_probabilities() -> None:
 
 @pytest.mark.parametrize("method", ["exact", "certified", "auto"])
 def test_energy_of_blended_results_keeps_float32_accuracy(method: str) -> None:
-    # CHECKS.md 1 (energy, from memory) against scipy.special.logsumexp in float64, with the
+    # Energy of Ramsauer et al. 2021 (from memory) against scipy.special.logsumexp in float64,
+    # with the
     # float32 slack of energy_slack(). beta=20 on 20k unit vectors: the bound cannot hold, so
     # certified/auto answer (and compute the energy) by the exact path; states sit near one row,
     # so most of the 20k terms of the lse are far below its max.
@@ -305,9 +308,9 @@ def test_energy_of_blended_results_keeps_float32_accuracy(method: str) -> None:
 
 # --------------------------------------------------------------- digits and 100k unit vectors
 def test_digits_beta60_matches_faiss_top1_and_exact(digits_unit: np.ndarray) -> None:
-    # Open data: scikit-learn's digits (UCI optdigits, CHECKS.md 25), L2-normalised. Stored: the
+    # Open data: scikit-learn's digits (UCI optdigits), L2-normalised. Stored: the
     # first 1500 rows; queries: the other 297 real digits plus noisy copies of stored ones.
-    # References: faiss IndexFlatIP top-1 (CHECKS.md 13) and method="exact".
+    # References: faiss IndexFlatIP top-1 and method="exact".
     rng = np.random.default_rng(5)
     x = np.ascontiguousarray(digits_unit[:1500])
     copies = _unit(x[rng.choice(1500, 100, replace=False)] + 0.05 * rng.standard_normal((100, 64)))
@@ -334,7 +337,7 @@ def unit_100k() -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 
 def test_100k_unit_beta60_matches_faiss_top1_and_exact(unit_100k) -> None:
-    # References: faiss IndexFlatIP top-1 (CHECKS.md 13) and method="exact"; the beta=60 regime
+    # References: faiss IndexFlatIP top-1 and method="exact"; the beta=60 regime
     # of issue 3 where the bound holds (score gap ~0.5, 60 * 0.5 >> ln(1e5 / 1e-6)).
     x, q, rows = unit_100k
     mem = DenseMemory.from_array(x)
@@ -352,7 +355,8 @@ def test_100k_unit_beta60_matches_faiss_top1_and_exact(unit_100k) -> None:
 
 # ----------------------------------------------------------------------- low beta and auto
 def test_low_beta_falls_back_and_auto_picks_exact(digits_unit: np.ndarray) -> None:
-    # CHECKS.md 9 (published abstract): small beta gives blended (global average) fixed points,
+    # Ramsauer et al., "Hopfield Networks is All You Need", ICLR 2021 (published abstract):
+    # small beta gives blended (global average) fixed points,
     # where no small candidate set carries the mass. References: method="exact", scipy softmax.
     # N = 1500 > k_max = 1024, so growth cannot reach every row and the queries must fall back.
     x = np.ascontiguousarray(digits_unit[:1500])
@@ -374,7 +378,7 @@ def test_low_beta_falls_back_and_auto_picks_exact(digits_unit: np.ndarray) -> No
 
 def test_low_beta_small_store_uses_every_row(digits_unit: np.ndarray) -> None:
     # With N = 1000 <= k_max the doubling reaches kc = N: nothing is omitted (bound 0) and the
-    # answer must equal exact. Reference: scipy softmax float64 (CHECKS.md 13), method="exact".
+    # answer must equal exact. Reference: scipy softmax float64, method="exact".
     x = np.ascontiguousarray(digits_unit[:1000])
     q = np.ascontiguousarray(digits_unit[1000:1030])
     mem = DenseMemory.from_array(x)
@@ -417,7 +421,8 @@ def test_auto_follows_its_documented_rule() -> None:
 # ----------------------------------------------------------------------------- steps > 1
 @pytest.mark.parametrize("method", ["exact", "certified", "index", "auto"])
 def test_iterated_retrieval_reaches_the_same_fixed_points(method: str) -> None:
-    # CHECKS.md 8 (from memory): on well-separated data the iteration from near x_i converges to a
+    # Ramsauer et al. 2021 (from memory): on well-separated data the iteration from near x_i
+    # converges to a
     # fixed point near x_i. Reference: a float64 scipy-softmax iteration with the same stop rule.
     rng = np.random.default_rng(21)
     x = _unit(rng.standard_normal((3000, 64)))  # > 2048 rows, so auto really certifies
@@ -433,10 +438,11 @@ def test_iterated_retrieval_reaches_the_same_fixed_points(method: str) -> None:
     assert 2 <= res.steps <= steps and np.all(res.converged)
     np.testing.assert_array_equal(res.top_ids[:, 0], rows)
     np.testing.assert_allclose(res.states, want, rtol=0, atol=1e-5)
-    # A fixed point of the reference update (CHECKS.md 1): one more step moves it by < 1e-5.
+    # A fixed point of the reference update (Ramsauer et al. 2021 energy, from memory): one more
+    # step moves it by < 1e-5.
     _, again = ref_softmax(x, res.states, beta)
     assert np.max(np.linalg.norm(again - res.states, axis=1)) < 1e-5
-    # Energy of the fixed points (CHECKS.md 1, from memory) in float64.
+    # Energy of the fixed points (Ramsauer et al. 2021, from memory) in float64.
     np.testing.assert_allclose(res.energy, ref_energy(x, res.states, beta), rtol=1e-5, atol=1e-6)
 
 

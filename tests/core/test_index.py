@@ -1,7 +1,7 @@
 """Index-backed retrieval (method="index", nearest(index=True), build_index) against faiss.
 
 References: faiss IndexFlatIP exact search and faiss's own IndexHNSWFlat / IndexIVFFlat built
-with the same parameters (CHECKS.md 13); scipy.special.softmax in float64 (CHECKS.md 13); the
+with the same parameters; scipy.special.softmax in float64; the
 certified path (method="certified"), itself checked against scipy in tests/test_certified.py.
 All data are invented: random unit vectors and noisy copies of them.
 """
@@ -24,7 +24,7 @@ from densemem.errors import DenseMemWarning, IndexStaleError, InputTypeError, In
 
 # ----------------------------------------------------------------------------- helpers
 def flat_ip_search(x: np.ndarray, q: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
-    """faiss IndexFlatIP exact inner-product search (CHECKS.md 13)."""
+    """faiss IndexFlatIP exact inner-product search."""
     index = faiss.IndexFlatIP(x.shape[1])
     index.add(np.ascontiguousarray(x, dtype=np.float32))
     return index.search(np.ascontiguousarray(q, dtype=np.float32), k)
@@ -119,7 +119,7 @@ def test_index_parameters_reach_faiss(separated) -> None:
     ],
 )
 def test_candidate_recall_matches_faiss(separated, kind: str, params: dict) -> None:
-    # Reference: faiss IndexFlatIP exact top-kc (CHECKS.md 13) intersected with the index's own
+    # Reference: faiss IndexFlatIP exact top-kc intersected with the index's own
     # faiss search (the payload index), kc = max(n_candidates, k). 120 queries <= the default
     # sample of 256, so every query is measured.
     x, _, _ = separated

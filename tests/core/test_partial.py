@@ -1,10 +1,10 @@
 """The partial-softmax kernel (densemem.core.partial) and its exact merge, tested directly.
 
-References: scipy.special.softmax / scipy.special.logsumexp (CHECKS.md entry 13) for the
-one-pass values, and the derived merge identity of CHECKS.md entry 11 (partials over
+References: scipy.special.softmax / scipy.special.logsumexp for the
+one-pass values, and the derived merge identity (partials over
 disjoint row sets merge exactly; associative and commutative, so any tree order gives the
 same answer up to rounding) together with Milakov & Gimelshein, arXiv:1805.02867
-(CHECKS.md entry 10, published: running max and rescaled sum give softmax in one pass).
+(Milakov & Gimelshein 2018, published: running max and rescaled sum give softmax in one pass).
 """
 
 from __future__ import annotations
@@ -66,7 +66,7 @@ def _tree_merge(parts: list[P.Partial], rng: np.random.Generator) -> P.Partial:
 
 @pytest.mark.parametrize("seed", range(4))
 def test_block_matches_scipy_softmax(seed: int) -> None:
-    # Reference: scipy.special.softmax / logsumexp in float64 (CHECKS.md entry 13).
+    # Reference: scipy.special.softmax / logsumexp in float64.
     q, x, z = _data(seed)
     k = 7
     fin = P.finish(_block(z, x, k))
@@ -95,7 +95,7 @@ def test_block_top_list_is_the_k_largest(width: int) -> None:
 
 @pytest.mark.parametrize("k", [1, 4, 9])
 def test_block_tile_exactly_k_wide(k: int) -> None:
-    # Reference: scipy.special.softmax (CHECKS.md entry 13). A tile whose width equals k
+    # Reference: scipy.special.softmax. A tile whose width equals k
     # (every memory of <= 10 patterns under the default k, or one-row tiles with k=1);
     # the kept top scores must be the scores, not the tile's exponentiated buffer.
     rng = np.random.default_rng(k)
@@ -119,7 +119,8 @@ def test_block_tile_exactly_k_wide(k: int) -> None:
 
 @pytest.mark.parametrize("seed", range(6))
 def test_merge_any_tree_order_equals_one_pass(seed: int) -> None:
-    # Derived (CHECKS.md entry 11): partials over disjoint row sets merge exactly, in any
+    # Derived (merge of partials over disjoint rows): partials over disjoint row sets merge
+    # exactly, in any
     # tree order (associative and commutative). Splits are random and non-contiguous.
     rng = np.random.default_rng(100 + seed)
     q, x, z = _data(seed, n=60)
@@ -132,7 +133,8 @@ def test_merge_any_tree_order_equals_one_pass(seed: int) -> None:
 
 
 def test_merge_contiguous_blocks_equals_one_pass() -> None:
-    # Derived (CHECKS.md entry 11), through block() with offsets as the tiled path uses it.
+    # Derived (merge of partials over disjoint rows), through block() with offsets as the tiled
+    # path uses it.
     q, x, z = _data(7, n=53)
     k = 4
     one = P.finish(_block(z, x, k))
@@ -149,7 +151,8 @@ def test_merge_contiguous_blocks_equals_one_pass() -> None:
 
 
 def test_merge_is_commutative_and_associative_on_the_partials() -> None:
-    # Derived (CHECKS.md entry 11): the merged statistics themselves (lse = m + log l, the
+    # Derived (merge of partials over disjoint rows): the merged statistics themselves (lse = m
+    # + log l, the
     # weighted sum normalised by l) do not depend on the order.
     rng = np.random.default_rng(3)
     q, x, z = _data(11, n=45)
@@ -162,7 +165,8 @@ def test_merge_is_commutative_and_associative_on_the_partials() -> None:
 
 
 def test_empty_partial_is_the_identity() -> None:
-    # Derived (CHECKS.md entry 11): the partial of an empty row set (m = -inf, l = 0) is
+    # Derived (merge of partials over disjoint rows): the partial of an empty row set (m = -inf,
+    # l = 0) is
     # the identity of the merge, on either side.
     q, x, z = _data(5)
     k = 6
@@ -212,7 +216,8 @@ def test_gathered_with_inf_padding_agrees_with_block(seed: int) -> None:
 
 
 def test_gathered_all_missing_row_merges_as_identity() -> None:
-    # Derived (CHECKS.md entry 11): a query whose candidate set is empty (all -inf) has
+    # Derived (merge of partials over disjoint rows): a query whose candidate set is empty (all
+    # -inf) has
     # the empty partial, so merging it into a real partial leaves that partial unchanged.
     q, x, z = _data(9, n=20)
     k = 3
@@ -244,7 +249,7 @@ def test_merge_of_far_apart_scales_stays_finite() -> None:
 
 @pytest.mark.parametrize("n_threads,chunk", [(1, 512), (1, 4), (2, 4), (2, 7), (2, 512)])
 def test_exact_reduce_chunks_and_threads_match_scipy(n_threads: int, chunk: int) -> None:
-    # Reference: scipy.special.softmax / logsumexp in float64 (CHECKS.md entry 13), for
+    # Reference: scipy.special.softmax / logsumexp in float64, for
     # several query-chunk sizes and thread counts, with tiles of a few rows (uneven).
     rng = np.random.default_rng(chunk + n_threads)
     x = rng.standard_normal((41, 5)).astype(np.float32)

@@ -2,7 +2,7 @@
 
 One LocalCluster (2 worker processes, 1 thread each, loopback) is shared by the module.
 References: the single-machine DenseMemory (itself tested against scipy and faiss), faiss
-IndexFlatIP / IndexFlatL2 (CHECKS.md 13), the exact merge of partials (CHECKS.md 11, derived).
+IndexFlatIP / IndexFlatL2, the exact merge of partials (derived).
 Dask's rescheduling of a lost worker's tasks is documented Dask behaviour (common practice).
 """
 
@@ -77,7 +77,8 @@ def data(tmp_path_factory):
 
 
 def _same(a, b) -> None:
-    # derived (CHECKS.md 11): the merge is an identity; only float32 rounding may differ
+    # derived (merge of partials over disjoint rows): the merge is an identity; only float32
+    # rounding may differ
     np.testing.assert_allclose(b.states, a.states, atol=1e-5)
     np.testing.assert_array_equal(b.top_ids, a.top_ids)
     np.testing.assert_allclose(b.top_weights, a.top_weights, atol=1e-5)
@@ -110,7 +111,7 @@ def test_empty_shards_and_a_path_argument(client, data, method):
 def test_nearest_equals_faiss_flat(client, data, metric):
     mem, sm, *_ = data
     q = data[4]
-    # outside reference: faiss flat index over all rows (CHECKS.md 13)
+    # outside reference: faiss flat index over all rows
     index = faiss.IndexFlatIP(24) if metric == "ip" else faiss.IndexFlatL2(24)
     index.add(mem.patterns)
     scores, pos = index.search(q / np.linalg.norm(q, axis=1, keepdims=True), 9)  # the memory normalises

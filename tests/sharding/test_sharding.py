@@ -1,9 +1,9 @@
 """Sharded stores and local (cluster-free) sharded retrieval (densemem.sharding).
 
-References: faiss IndexFlatIP / IndexFlatL2 exact search (CHECKS.md 13), scipy.special.logsumexp
-(CHECKS.md 13), the exact merge of partials over disjoint rows (CHECKS.md 11, derived), the
+References: faiss IndexFlatIP / IndexFlatL2 exact search, scipy.special.logsumexp, the exact
+merge of partials over disjoint rows (derived), the
 certified bound of densemem.core.candidates and its sharded form in densemem.sharding._ops (derived),
-hashlib's sha256 for the manifest checksums, scikit-learn's bundled digits (CHECKS.md 25).
+hashlib's sha256 for the manifest checksums, scikit-learn's bundled digits (UCI optdigits).
 """
 
 from __future__ import annotations
@@ -25,7 +25,8 @@ from densemem.sharding import open_sharded, shard_memory
 
 
 def _ref_energy(x: np.ndarray, s: np.ndarray, beta: float) -> np.ndarray:
-    """CHECKS.md 1 (from memory), computed in float64 with scipy.special.logsumexp."""
+    """Energy of Ramsauer et al., ICLR 2021 (from memory), computed in float64 with
+    scipy.special.logsumexp."""
     x64, s64 = x.astype(np.float64), s.astype(np.float64)
     lse = logsumexp(beta * s64 @ x64.T, axis=1)
     m = np.sqrt((x64 * x64).sum(1).max())
@@ -33,7 +34,8 @@ def _ref_energy(x: np.ndarray, s: np.ndarray, beta: float) -> np.ndarray:
 
 
 def _same(a, b, *, energy_atol: float = 2e-5) -> None:
-    # derived (CHECKS.md 11): the merge is an identity, so only float32 rounding differs
+    # derived (merge of partials over disjoint rows): the merge is an identity, so only float32
+    # rounding differs
     np.testing.assert_allclose(b.states, a.states, atol=1e-5)
     np.testing.assert_array_equal(b.top_ids, a.top_ids)
     np.testing.assert_allclose(b.top_weights, a.top_weights, atol=1e-5)
@@ -88,7 +90,7 @@ def digits_sharded(tmp_path_factory, digits_mem):
 
 @pytest.mark.parametrize("method,beta,steps", [("exact", 20.0, 1), ("exact", 20.0, 3), ("certified", 60.0, 2), ("auto", 60.0, 2)])
 def test_local_retrieve_equals_single_machine_on_digits(digits_mem, digits_sharded, method, beta, steps):
-    # open data: scikit-learn digits (CHECKS.md 25)
+    # open data: scikit-learn's bundled digits (UCI optdigits)
     q = digits_mem.patterns[::90] + 0.05
     a = digits_mem.retrieve(q, beta, steps=steps, k=7, method=method)
     b = digits_sharded.retrieve(q, beta, steps=steps, k=7, method=method)
@@ -114,7 +116,7 @@ def test_uneven_and_empty_shards(tmp_path, rng):
 
 @pytest.mark.parametrize("seed", range(5))
 def test_random_merge_order_gives_the_same_answer(tmp_path, rng, seed):
-    # derived (CHECKS.md 11): the merge is associative and commutative
+    # derived (merge of partials over disjoint rows): the merge is associative and commutative
     x = rng.standard_normal((300, 8)).astype(np.float32)
     mem = DenseMemory.from_array(x, ids=[f"r{i}" for i in range(300)], beta=3.0)
     sm = shard_memory(mem, tmp_path / "s", 5, by="contiguous")
@@ -158,7 +160,7 @@ def test_nearest_equals_faiss_flat(tmp_path, rng, metric):
     x = rng.standard_normal((500, 12)).astype(np.float32)
     sm = shard_memory(DenseMemory.from_array(x), tmp_path / "s", 3, by="contiguous")
     q = rng.standard_normal((9, 12)).astype(np.float32)
-    # outside reference: faiss IndexFlatIP / IndexFlatL2 over every row (CHECKS.md 13)
+    # outside reference: faiss IndexFlatIP / IndexFlatL2 over every row
     index = faiss.IndexFlatIP(12) if metric == "ip" else faiss.IndexFlatL2(12)
     index.add(x)
     scores, pos = index.search(q, 8)

@@ -65,7 +65,7 @@ def test_separation_matches_numpy_bruteforce(rng: np.random.Generator) -> None:
 
 
 def test_separation_digits_matches_faiss_top2(digits_unit: np.ndarray) -> None:
-    # Reference: faiss IndexFlatIP exact top-2 (CHECKS.md entry 13) on UCI optdigits (entry 25).
+    # Reference: faiss IndexFlatIP exact top-2 on scikit-learn's bundled digits (UCI optdigits).
     mem = densemem.DenseMemory.from_array(digits_unit)
     rep = tu.separation(mem)
     flat = faiss.IndexFlatIP(64)
@@ -104,7 +104,7 @@ def test_separation_index_backed_never_underestimates(rng: np.random.Generator, 
 
 # ------------------------------------------------------- predicted beta
 def test_beta_separated_is_the_large_root_of_the_condition(rng: np.random.Generator) -> None:
-    # CHECKS.md entry 8 (from memory): Delta >= 2/(beta N) + ln(2 (N-1) N beta M^2) / beta.
+    # Ramsauer et al. 2021 (from memory): Delta >= 2/(beta N) + ln(2 (N-1) N beta M^2) / beta.
     # Reference: scipy.optimize.brentq on that inequality as written, on [1/Delta, 1e9];
     # and the Lambert W closed form from scipy.special.lambertw.
     x = unit_rows(rng, 40, 6) * np.float32(1.7)
@@ -146,8 +146,8 @@ def _check_sphere_maps_into_itself(mem: densemem.DenseMemory, x: np.ndarray, rng
 
 
 def test_predicted_beta_is_conservative_random(rng: np.random.Generator) -> None:
-    # CHECKS.md entry 8, the well-separated condition (from memory), with the separation
-    # Delta_i of entry 7 (definition from memory; entry 7's one-step bound is derived): at or
+    # Ramsauer et al. 2021, the well-separated condition (from memory), with the separation
+    # Delta_i (definition from memory; the one-step bound is derived): at or
     # above the predicted beta the
     # update maps the ball of radius 1/(beta N M) around x_i into itself; checked with exact
     # one-step retrieval from points on the ball's surface (random and towards the rival).
@@ -156,14 +156,14 @@ def test_predicted_beta_is_conservative_random(rng: np.random.Generator) -> None
 
 
 def test_predicted_beta_is_conservative_digits(digits_unit: np.ndarray, rng: np.random.Generator) -> None:
-    # Same claim on UCI optdigits (CHECKS.md entry 25), first 120 normalised rows.
+    # Same claim on scikit-learn's bundled digits (UCI optdigits), first 120 normalised rows.
     x = np.ascontiguousarray(digits_unit[:120])
     assert _check_sphere_maps_into_itself(densemem.DenseMemory.from_array(x), x, rng) == 240
 
 
 @pytest.mark.parametrize("data", ["random", "digits"])
 def test_one_step_bound_beta_is_conservative(data: str, rng: np.random.Generator, digits_unit: np.ndarray) -> None:
-    # CHECKS.md entry 7: the one-step bound (derived) ||f(xi) - x_i|| <= 2 M (N-1)
+    # Ramsauer et al. 2021: the one-step bound (derived) ||f(xi) - x_i|| <= 2 M (N-1)
     # exp(-beta (Delta_i - 2 M r)) for ||xi - x_i|| <= r, with the separation Delta_i defined
     # as in Ramsauer et al. 2021 (definition from memory); at beta_bound the exact one-step
     # error is within error_tol.
@@ -201,7 +201,7 @@ def test_target_beta_covers_the_fraction(rng: np.random.Generator) -> None:
 
 # ------------------------------------------------------- weights / sweep
 def test_weight_stats_match_scipy_on_uneven_tiles(rng: np.random.Generator) -> None:
-    # Reference: scipy.special.softmax and scipy.stats.entropy (CHECKS.md entry 13); tiles of a
+    # Reference: scipy.special.softmax and scipy.stats.entropy; tiles of a
     # few rows and query chunks of 7 over 2 threads make every tile and chunk boundary uneven.
     x = rng.standard_normal((1003, 10)).astype(np.float32)
     q = rng.standard_normal((37, 10)).astype(np.float32)
@@ -213,7 +213,7 @@ def test_weight_stats_match_scipy_on_uneven_tiles(rng: np.random.Generator) -> N
 
 
 def test_entropy_non_increasing_in_beta_and_ln_n_at_zero(rng: np.random.Generator) -> None:
-    # CHECKS.md entry 12 (derived): dH/dbeta = -beta Var_p(s) <= 0 per query, H(0) = ln N.
+    # Derived (textbook identity): dH/dbeta = -beta Var_p(s) <= 0 per query, H(0) = ln N.
     x = unit_rows(rng, 400, 16)
     mem = densemem.DenseMemory.from_array(x)
     rep = tu.sweep_beta(mem, betas=np.geomspace(1e-8, 1e3, 40), n_queries=64, level=0.3)
@@ -224,7 +224,7 @@ def test_entropy_non_increasing_in_beta_and_ln_n_at_zero(rng: np.random.Generato
 
 
 def test_small_beta_gives_the_mean(rng: np.random.Generator) -> None:
-    # CHECKS.md entry 5 (derived): beta -> 0 returns the mean of the stored patterns exactly;
+    # Derived (Ramsauer et al. 2021): beta -> 0 returns the mean of the stored patterns exactly;
     # the nearest-pattern distance is then the numpy distance of the mean to its nearest row.
     x = unit_rows(rng, 100, 8) + np.float32(0.3)
     mem = densemem.DenseMemory.from_array(x)
@@ -236,7 +236,8 @@ def test_small_beta_gives_the_mean(rng: np.random.Generator) -> None:
 
 
 def test_metastable_blends_are_exactly_the_planted_clusters(rng: np.random.Generator) -> None:
-    # CHECKS.md entry 9 (published): global average, metastable averages of subsets,
+    # Ramsauer et al., "Hopfield Networks is All You Need", ICLR 2021 (abstract, published):
+    # global average, metastable averages of subsets,
     # single-pattern states. Planted: 6 tight clusters of 4 around random unit centres.
     n_c, size, d = 6, 4, 32
     centres = unit_rows(rng, n_c, d)
@@ -301,7 +302,8 @@ def test_sweep_does_not_modify_inputs(rng: np.random.Generator) -> None:
 
 # ---------------------------------------------------------- choose beta
 def test_auto_sharp_beta_holds_on_held_out_digits(digits_unit: np.ndarray) -> None:
-    # UCI optdigits (CHECKS.md entry 25): beta chosen on one noisy query set (seed 0) reaches
+    # scikit-learn's bundled digits (UCI optdigits): beta chosen on one noisy query set (seed 0)
+    # reaches
     # the sharpness target on a held-out one (seed 1): top-1 >= 99% and the sharp fraction
     # within 3 binomial standard errors of the 99% target.
     mem = densemem.DenseMemory.from_array(digits_unit)
@@ -339,7 +341,7 @@ def test_sharp_bisection_equals_dense_grid(rng: np.random.Generator) -> None:
 
 def test_blend_bisection_equals_dense_grid(rng: np.random.Generator) -> None:
     # Reference: scipy softmax + entropy over a dense grid; mean exp(H) is non-increasing
-    # (CHECKS.md entry 12), so the beta closest to the goal is within one grid step.
+    # (derived: dH/dbeta = -beta Var_p(s)), so the beta closest to the goal is within one grid step.
     x = unit_rows(rng, 150, 16)
     mem = densemem.DenseMemory.from_array(x)
     q, src = _queries(rng, x, 40, 0.3)
