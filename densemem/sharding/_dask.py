@@ -314,6 +314,12 @@ class ClusterShards(Retriever):
         return self._layout_
 
     def _source(self, opts: RetrievalOptions, *, where: str) -> _DaskShards:
+        if opts.method == "index":
+            for i, entry in enumerate(self._store._man["shards"]):
+                if int(entry["count"]) and not entry.get("index"):
+                    raise InputValueError(
+                        f"{where}: shard {i} at {self._store.shard_folders[i]!r} has no candidate index; "
+                        "call build_index('hnsw') or build_index('ivf') on the sharded store first.")
         self._session.start_call(where)
         shards = [(f, c, i, v, where) for f, c, i, v, _ in self._shards]
         return _DaskShards(self._session, shards, opts.method, opts.n_candidates)

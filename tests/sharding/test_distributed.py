@@ -157,7 +157,7 @@ def test_argument_errors(client, data):
     _, sm, *_ = data
     with pytest.raises(InputTypeError, match=r"ShardedMemory.on_cluster: `client` must be a dask.distributed.Client"):
         _retrieve(sm, np.ones(24), client=42)
-    with pytest.raises(InputValueError, match=r"ClusterShards.retrieve: `method` 'index' is not available on a sharded"):
+    with pytest.raises(InputValueError, match=r"ClusterShards.retrieve: shard 0 at .* has no candidate index"):
         _retrieve(sm, np.ones(24), method="index", client=client)  # type: ignore[arg-type]
     with pytest.raises(InputValueError, match=r"ShardedMemory.on_cluster: `retries` must be an integer >= 0; got -1"):
         _retrieve(sm, np.ones(24), client=client, retries=-1)
@@ -212,3 +212,18 @@ def test_killing_a_worker_mid_query_still_gives_the_right_answer(client, tmp_pat
     np.testing.assert_allclose(got.states, expect.states, atol=1e-5)
     np.testing.assert_array_equal(got.top_ids, expect.top_ids)
     np.testing.assert_allclose(got.energy, expect.energy, atol=1e-5)
+
+
+def test_index_method_on_the_cluster_equals_local_shards(client, tmp_path):
+    # Same per-shard HNSW indexes (persisted beside each shard), so the workers and this process
+    # see the same candidates and the exact merge gives the same answer (float32 rounding aside).
+    rng = np.random.default_rng(4)
+    x = rng.standard_normal((6000, 24)).astype(np.float32)
+    sm = shard_memory(DenseMemory.from_array(x, normalize=True, beta=20.0), tmp_path / "ix", 3)
+    sm.build_index("hnsw", M=16, ef_search=64)
+    q = x[::300] + 0.05
+    local = open_sharded(sm.path).retrieve(q, k=5, method="index")
+    remote = _retrieve(sm.path, q, k=5, method="index", client=client, timeout=60)
+    np.testing.assert_array_equal(local.top_ids, remote.top_ids)
+    np.testing.assert_allclose(local.states, remote.states, atol=1e-6)
+    assert remote.method == "index"
