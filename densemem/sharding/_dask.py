@@ -354,7 +354,7 @@ class ClusterShards(Retriever):
         'hnsw'
         """
         from ..core.index import default_settings
-        from ._store import commit, tidy
+        from ._store import tidy
 
         where = f"{self._name}.build_index"
         settings = {"kind": kind, **params}
