@@ -277,11 +277,11 @@ def _binary(run: _Run) -> None:
         chunk = max(1, int(_BINARY_CHUNK_MIB * 2**20 / (8 * 6 * run.n))) if dense else qcodes.shape[0]
 
         def fn(qb: np.ndarray, mem: Any = mem, chunk: int = chunk) -> tuple[np.ndarray, ...]:
-            parts = [mem.retrieve(qb[a:a + chunk], mode="sync", max_sweeps=s.binary_sweeps).states
+            parts = [mem.retrieve(qb[a:a + chunk], mode="sync", steps=s.binary_sweeps).states
                      for a in range(0, qb.shape[0], chunk)]
             return (np.concatenate(parts),)
 
-        params: dict[str, Any] = {"mode": "sync", "max_sweeps": s.binary_sweeps}
+        params: dict[str, Any] = {"mode": "sync", "steps": s.binary_sweeps}
         if dense:
             params["degree"] = 3 if model == "polynomial" else "-"
         run.add(library="densemem", method=f"binary-{model}", label=f"sign codes {model}", params=params,

@@ -282,7 +282,7 @@ def run_trial(model: Model, setup: Setup, k: int, trial: int) -> np.ndarray:
         ok = _continuous(model, stored, probes, targets, setup)
     else:
         mem = _binary_memory(model, stored, setup, trial)
-        res = mem.retrieve(probes.astype(np.int8), mode=setup.mode, max_sweeps=setup.steps,
+        res = mem.retrieve(probes.astype(np.int8), mode=setup.mode, steps=setup.steps,
                            seed=_stream(setup, trial, 2))
         ok = _judge_binary(res.states.astype(np.float64), targets, stored, setup)
     return np.array([ok.all()]) if setup.scope == "all" else ok
