@@ -255,8 +255,11 @@ class DenseMemory:
         return self._table.positions(ids, where="DenseMemory.positions")
 
     # ------------------------------------------------------------------ disk
-    def save(self, path: Any, *, overwrite: bool = True) -> None:
+    def save(self, path: Any, *, overwrite: bool = False) -> None:
         """Write the memory to a store folder (atomic; see :mod:`densemem.store`).
+
+        An existing store at ``path`` is refused unless ``overwrite=True`` (the
+        rule of every writer in densemem).
 
         Examples
         --------

@@ -172,7 +172,8 @@ def add_bench(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
     p.add_argument("--scaling", action="store_true", help="scaling run over N = 10k, 100k (1M with --large)")
     p.add_argument("--large", action="store_true", help="allow N above 200k (adds 1M to --scaling)")
     p.add_argument("--no-normalize", dest="normalize", action="store_false", help="keep raw norms")
-    p.add_argument("--quick", action="store_true", help="a tiny run (N 1000 and 2000, 100 queries, 1 repeat)")
+    p.add_argument("--quick", action="store_true",
+                   help="a tiny run: 100 queries, 1 repeat; N 1000 and 2000 of generated data, all rows of a file")
     p.add_argument("--out", help="folder for bench.json and the PNG plots")
     p.add_argument("--no-plots", dest="plots", action="store_false", help="skip the PNG plots")
     p.add_argument("--overwrite", action="store_true", help="replace bench files already in --out")
@@ -184,8 +185,10 @@ def _run_bench(a: argparse.Namespace) -> tuple[Any, str]:
     names = {"queries": "n_queries", "query_file": "queries", "k": "ks", "binary": "include_binary"}
     values = {names.get(k, k): v for k, v in vars(a).items() if v is not None}
     if a.quick:
-        values = {**_BENCH_QUICK, **values}
-        if a.dataset in ("unit", "clustered") and a.n is None and a.sizes is None and not a.scaling:
+        generated = a.dataset in ("unit", "clustered")
+        quick = _BENCH_QUICK if generated else {k: v for k, v in _BENCH_QUICK.items() if k not in ("n", "dim")}
+        values = {**quick, **values}  # a file or bundled set keeps its own rows and width
+        if generated and a.n is None and a.sizes is None and not a.scaling:
             values["sizes"] = [1000, 2000]
     try:
         spec = make_spec(benchmark.BenchSpec, values)

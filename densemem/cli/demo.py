@@ -37,7 +37,7 @@ import numpy as np
 
 from .._validation import as_rng, check_positive_int
 from ..dense import DenseMemory
-from ..errors import InputValueError
+from ..errors import InputTypeError, InputValueError
 
 __all__ = ["Archive", "make_archive", "faded_prints", "DemoReport", "run_demo", "THEMES", "LABEL"]
 
@@ -327,14 +327,15 @@ def run_demo(
     seed: Any = 0,
     plots: bool = True,
     quiet: bool = True,
+    overwrite: bool = False,
 ) -> DemoReport:
     """Run the invented archive scenario and write the report folder ``out``.
 
     Parameters
     ----------
     out : str or os.PathLike
-        Report folder (created; files the demo writes are replaced, each atomically: a temp
-        file in the folder, then os.replace; other files are kept).
+        Report folder (created if missing; each file is written atomically: a temp
+        file in the folder, then os.replace).
     n_photos : int, default 4000
         Original photos (rescans and crops are added on top).
     n_queries : int, default 200
@@ -344,6 +345,9 @@ def run_demo(
         Draw PNG plots (skipped silently when matplotlib is missing).
     quiet : bool, default True
         No progress bar on stderr.
+    overwrite : bool, default False
+        Write into ``out`` even when it holds files (the demo's own files are
+        replaced; others are kept). Without it a non-empty ``out`` is refused.
 
     Returns
     -------
@@ -361,6 +365,13 @@ def run_demo(
     out = Path(out)
     if out.exists() and not out.is_dir():
         raise InputValueError(f"run_demo: `out` must be a folder; {str(out)!r} is a file.")
+    if not isinstance(overwrite, bool):
+        raise InputTypeError(f"run_demo: `overwrite` must be True or False; got {overwrite!r}.")
+    if out.is_dir() and any(out.iterdir()) and not overwrite:
+        raise InputValueError(
+            f"run_demo: `out` {str(out)!r} is a folder that already holds files; pass overwrite=True to write "
+            "into it or choose a new folder."
+        )
     out.mkdir(parents=True, exist_ok=True)
     from ._output import progress
 
@@ -370,7 +381,7 @@ def run_demo(
     q, src = faded_prints(arc, n_queries, seed=as_rng(seed).integers(1 << 31))
     sharp_beta, blended_beta = 40.0, 10.0
     mem = DenseMemory.from_array(arc.vectors, arc.ids, normalize=True, beta=sharp_beta)
-    mem.save(out / "store")
+    mem.save(out / "store", overwrite=overwrite)
     files = {"store": str(out / "store")}
     next(steps, None)
     sharp = _retrieval_stats(mem, arc, q, src, sharp_beta)

@@ -113,13 +113,13 @@ _CRASH_HELPER = textwrap.dedent(
     rng = np.random.default_rng(seed)
     mems = [DenseMemory.from_array(np.full((n, 32), v, np.float32), beta=2.0) for n, v in ((60000, 1.0), (40000, 2.0))]
     mems[0].save(path)
-    t0 = time.perf_counter(); mems[1].save(path); mems[0].save(path); span = (time.perf_counter() - t0) / 2
+    t0 = time.perf_counter(); mems[1].save(path, overwrite=True); mems[0].save(path, overwrite=True); span = (time.perf_counter() - t0) / 2
     print("ready", span, flush=True)
     for t in range(trials):
         sys.stdin.readline()
         pid = os.fork()
         if pid == 0:
-            mems[(t + 1) % 2].save(path)
+            mems[(t + 1) % 2].save(path, overwrite=True)
             os._exit(0)
         time.sleep(rng.uniform(0.0, 1.1 * span))
         os.kill(pid, signal.SIGKILL)
