@@ -49,7 +49,7 @@ def collapse_check(memory: Any, *, sample: int = SAMPLE, seed: int = 0) -> dict[
     }
 
 
-def collapse_hint(memory: Any, rebuild: str = "rebuild the store with `densemem build ... --normalize`") -> str | None:
+def collapse_hint(memory: Any, rebuild: str = "build the store again with --normalize (cosine geometry)") -> str | None:
     """One warning line when stored rows do not retrieve themselves on ``memory``, else None.
 
     Examples
@@ -71,4 +71,4 @@ def collapse_hint(memory: Any, rebuild: str = "rebuild the store with `densemem 
         what = "rows of larger norm win the inner products, so retrieval favours them at any beta"
     return (f"warning: only {c['own_first']:.1%} of {c['rows']} stored rows used as queries find themselves "
             f"first by inner product: {what} (largest norm {c['norm_ratio']:.3g} x the median). "
-            f"Hint: {rebuild} to compare by cosine.")
+            f"Hint: {rebuild}.")

@@ -45,29 +45,67 @@ def add_tune(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
                    help="what the automatic choice aims for (default sharp; none: sweep only)")
     p.add_argument("--n-betas", type=int, default=25, help="betas in the sweep (default 25)")
     p.add_argument("--n-queries", type=int, default=256, help="generated noisy queries (default 256)")
-    p.add_argument("--corruption", choices=["gaussian", "mask", "mix"], default="gaussian")
+    p.add_argument("--corruption", choices=["gaussian", "mask", "mix"], default="gaussian",
+                   help="how the noisy queries are made from stored rows: gaussian noise, masked entries, "
+                        "or a mix (default gaussian)")
     p.add_argument("--level", type=float, default=0.1, help="corruption level (default 0.1)")
     p.add_argument("--steps", type=int, default=1, help="updates per query (default 1)")
     p.add_argument("--blend-size", type=float, default=5.0, help="blend size aimed for with --target blend")
-    p.add_argument("--seed", type=int, default=0)
-    p.add_argument("--plot", help="write the sweep as a PNG here (needs matplotlib)")
+    p.add_argument("--seed", type=int, default=0, help="random seed of the noisy queries (default 0)")
+    p.add_argument("--plot", help="write the sweep as a new .png file here (needs matplotlib)")
+    p.add_argument("--write-beta", action="store_true",
+                   help="store the chosen beta as the store's default (retrieve then uses it)")
     p.set_defaults(run=_run_tune)
+
+
+def _new_png(flag: str, path: Any) -> None:
+    """A plot path must be a new file named .png (the format written)."""
+    if path is None:
+        return
+    if Path(path).suffix.lower() != ".png":
+        raise SpecError(f"{flag} must name a .png file (the plot is a PNG); got {str(path)!r}.")
+    if Path(path).exists():
+        raise SpecError(f"{flag} must name a new file; {str(path)!r} exists.")
+    if not Path(path).absolute().parent.is_dir():
+        raise SpecError(f"{flag} must be in an existing folder; the folder of {str(path)!r} does not exist.")
 
 
 def _run_tune(a: argparse.Namespace) -> tuple[Any, str]:
     from ..tuning import _tune as tuning
     from ..dense import DenseMemory
+    from ._hints import collapse_hint
 
     values = dict(vars(a))
     values["target"] = None if a.target == "none" else a.target
     spec = make_spec(tuning.TuneSpec, values)
-    if a.plot is not None and Path(a.plot).exists():
-        raise SpecError(f"--plot must name a new file; {a.plot!r} exists.")
-    rep = tuning.tune_beta(DenseMemory.load(a.store, mmap=True), spec)
+    _new_png("--plot", a.plot)
+    if a.write_beta and spec.target is None:
+        raise SpecError("--write-beta needs a chosen beta; drop --target none.")
+    mem = DenseMemory.load(a.store, mmap=True)
+    hint = collapse_hint(mem, "build the store again with --normalize --overwrite (cosine geometry), then tune it")
+    rep = tuning.tune_beta(mem, spec, progress=None if not a.quiet else False)
+    data = rep.to_dict()
+    data["verdict"] = tuning.verdict(rep)
+    data["warnings"] = [] if hint is None else [hint]
+    chosen = rep.choice.beta if rep.choice is not None and rep.choice.reached else None
     if a.plot is not None and rep.sweep is not None:
         tuning.plot_sweep(rep.sweep, a.plot, predicted_beta=rep.prediction.beta_target_separated,
-                          chosen_beta=rep.choice.beta if rep.choice else None)
-    return rep.to_dict(), tuning.format_report(rep)
+                          chosen_beta=chosen)
+    apply_hint = None
+    if chosen is not None:
+        apply_hint = (f"apply it: densemem tune {a.store} --write-beta  (stores it as the store's default beta), "
+                      f"or pass --beta {chosen:.4g} to retrieve")
+    data["written_beta"] = None
+    if a.write_beta and chosen is not None:  # last: nothing else can fail after the store changed
+        from ..store._folder import set_stored_beta
+
+        before = set_stored_beta(a.store, float(chosen))
+        data["written_beta"] = float(chosen)
+        apply_hint = f"wrote beta = {chosen:.4g} into {a.store} (was {before:g}); `densemem retrieve` now uses it."
+    elif a.write_beta:
+        apply_hint = "nothing written: no beta met the goal."
+    text = tuning.tune_text(rep, apply_hint=apply_hint, extra=[hint] if hint else None)
+    return data, text
 
 
 # ------------------------------------------------------------------ dedup
@@ -79,12 +117,18 @@ def add_dedup(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
     p.add_argument("--column", help="array/column holding the vectors (embeddings files)")
     p.add_argument("--id-column", help="array/column holding ids (embeddings files)")
     p.add_argument("--threshold", type=float, default=0.98, help="cosine similarity for a near-duplicate (0.98)")
-    p.add_argument("--method", choices=["graph", "attractor"], default="graph")
-    p.add_argument("--candidates", choices=["auto", "exact", "ivf", "hnsw"], default="auto")
+    p.add_argument("--method", choices=["graph", "attractor"], default="graph",
+                   help="graph: groups of pairs above the threshold; attractor: items whose retrieval ends on "
+                        "the same state (default graph)")
+    p.add_argument("--candidates", choices=["auto", "exact", "ivf", "hnsw"], default="auto",
+                   help="how pairs are found: exact search, or an IVF / HNSW index (default auto: by size)")
     p.add_argument("--k", type=int, default=32, help="candidate neighbours per item (default 32)")
-    p.add_argument("--no-chaining", choices=["off", "star", "complete"], default="off")
-    p.add_argument("--representative", choices=["medoid", "first"], default="medoid")
-    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--grouping", choices=["linked", "star", "complete"], default="linked",
+                   help="linked: A~B~C joins A and C even below the threshold; star: every member within the "
+                        "threshold of its kept item; complete: every pair within it (default linked)")
+    p.add_argument("--representative", choices=["medoid", "first"], default="medoid",
+                   help="the item kept per group: the most central (medoid) or the first in input order")
+    p.add_argument("--seed", type=int, default=0, help="random seed (index training, sampled checks)")
     p.add_argument("--overwrite", action="store_true", help="replace plan files already in OUT")
     p.set_defaults(run=_run_dedup)
 
@@ -92,7 +136,12 @@ def add_dedup(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
 def _run_dedup(a: argparse.Namespace) -> tuple[Any, str]:
     from ..duplicates._find import DedupSpec
 
-    spec = make_spec(DedupSpec, vars(a))
+    values = dict(vars(a))
+    values["no_chaining"] = {"linked": "off"}.get(a.grouping, a.grouping)
+    try:
+        spec = make_spec(DedupSpec, values)
+    except SpecError as exc:
+        raise SpecError(str(exc).replace("--no-chaining", "--grouping")) from None
     data, ids = _load_data(a.input, a.column, a.id_column)
     plan = spec.run(data, ids=ids, progress=None if not a.quiet else False)
     files = plan.write(a.out, overwrite=a.overwrite)
@@ -109,11 +158,16 @@ def add_capacity(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None
             "densemem capacity --models hebbian storkey --dims 25 50 --n-trials 3 --csv capacity.csv")
     p.add_argument("--models", nargs="+", default=["hebbian", "storkey", "pseudo_inverse"],
                    help="models, e.g. hebbian storkey pseudo_inverse softmax:50")
-    p.add_argument("--dims", nargs="+", type=int, default=[25, 50, 100, 200])
-    p.add_argument("--patterns", choices=["pm1", "unit", "gaussian"], default="pm1")
+    p.add_argument("--dims", nargs="+", type=int, default=[25, 50, 100, 200],
+                   help="pattern dimensions (units N) to measure, each >= 2 (default 25 50 100 200)")
+    p.add_argument("--patterns", choices=["pm1", "unit", "gaussian"], default="pm1",
+                   help="random patterns: pm1 (+-1 entries), unit (unit vectors) or gaussian (default pm1)")
     p.add_argument("--corruption", help="query corruption, e.g. flip:0.1, mask:0.25, gauss:0.5")
-    p.add_argument("--n-trials", type=int, default=5)
-    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--n-trials", type=int, default=5,
+                   help="independent pattern sets per count, pooled (default 5)")
+    p.add_argument("--max-patterns", type=int, default=4096,
+                   help="search cap: the largest pattern count tried (default 4096)")
+    p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     p.add_argument("--csv", dest="csv_path", help="also write the table as CSV (new file)")
     p.add_argument("--json-out", dest="json_path", help="also write the table as JSON (new file)")
     p.add_argument("--plot", dest="plot_path", help="also draw the curve as PNG (new file)")
@@ -123,17 +177,40 @@ def add_capacity(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None
 def _run_capacity(a: argparse.Namespace) -> tuple[Any, str]:
     from ..capacity import _measure as capacity
     spec = make_spec(capacity.CapacitySpec, vars(a))
-    for flag, path in (("--csv", spec.csv_path), ("--json-out", spec.json_path), ("--plot", spec.plot_path)):
+    for flag, path in (("--csv", spec.csv_path), ("--json-out", spec.json_path)):
         if path is not None and Path(path).exists():
             raise SpecError(f"{flag} must name a new file; {path!r} exists.")
+    _new_png("--plot", spec.plot_path)
     curve = capacity.capacity_curve(spec.models, spec.dims, csv_path=spec.csv_path, json_path=spec.json_path,
                                     progress=None if not a.quiet else False, **spec.curve_options())
     if spec.plot_path is not None:
         capacity.plot_capacity(curve, spec.plot_path)
     rows = curve.rows()
-    keys = list(rows[0]) if rows else []
-    shown = [k for k in keys if not isinstance(rows[0][k], (list, dict))][:8]
-    return {"rows": rows}, out.table(shown, [[r[k] for k in shown] for r in rows], title="capacity")
+    return {"rows": rows}, capacity_table(rows)
+
+
+#: Capacity table columns: (row key, heading).
+_CAPACITY_COLUMNS = (
+    ("model", "model"), ("dim", "dim"), ("capacity", "capacity"), ("success_rate", "success at capacity"),
+    ("ci_low", "ci low"), ("ci_high", "ci high"), ("first_fail", "first failing count"),
+    ("success_at_first_fail", "success there"),
+)
+
+
+def capacity_table(rows: list[dict[str, Any]]) -> str:
+    """The capacity table as text: a capped search shows ">= N (cap)", never a bare N."""
+    cells = []
+    for r in rows:
+        line = [r[k] for k, _ in _CAPACITY_COLUMNS]
+        if r["capped"]:
+            line[2] = f">= {r['capacity']} (cap)"
+        cells.append(line)
+    text = out.table([h for _, h in _CAPACITY_COLUMNS], cells, title="capacity")
+    notes = ["success = share of probes that passed the success test; ci = its confidence interval."]
+    if any(r["capped"] for r in rows):
+        notes.append(">= N (cap): every count up to the search cap passed, so the capacity is at least N "
+                     "(raise the cap to measure it).")
+    return text + "\n\n" + "\n".join(notes)
 
 
 # ------------------------------------------------------------------ bench

@@ -156,7 +156,7 @@ def _run_build(a: argparse.Namespace) -> Result:
     if s.shards is not None and s.index:
         raise SpecError("--index cannot be combined with --shards (shards use exact or certified retrieval).")
     mem = DenseMemory.from_array(emb.vectors, emb.ids, normalize=s.normalize, beta=s.beta)
-    hint = collapse_hint(mem, "build again with --normalize --overwrite")
+    hint = collapse_hint(mem, "build again with --normalize --overwrite (cosine geometry)")
     if s.shards is not None:
         from ..sharding._memory import shard_memory
 

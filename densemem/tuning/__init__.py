@@ -18,6 +18,7 @@ from ._tune import (
     separation,
     sweep_beta,
     tune_beta,
+    tune_text,
 )
 
 __all__ = [
@@ -34,4 +35,5 @@ __all__ = [
     "separation",
     "sweep_beta",
     "tune_beta",
+    "tune_text",
 ]
