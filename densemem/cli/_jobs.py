@@ -55,7 +55,32 @@ def add_tune(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
     p.add_argument("--plot", help="write the sweep as a new .png file here (needs matplotlib)")
     p.add_argument("--write-beta", action="store_true",
                    help="store the chosen beta as the store's default (retrieve then uses it)")
+    _html_option(p)
     p.set_defaults(run=_run_tune)
+
+
+def _html_target(a: argparse.Namespace, overwrite: bool = False) -> Any:
+    """The --html path checked before the job runs (a new .html file unless --overwrite)."""
+    if getattr(a, "html", None) is None:
+        return None
+    from .._html import check_html_path
+    from ..errors import InputValueError
+
+    try:
+        return check_html_path(a.html, overwrite=overwrite, where="--html")
+    except InputValueError as exc:
+        raise SpecError(str(exc).replace("--html: `path` ", "--html ").replace("--html: ", "--html: ")
+                        .replace("pass overwrite=True", "pass --overwrite")) from None
+
+
+def _write_html(path: Any, text: str, overwrite: bool = False) -> str:
+    from .._html import write_page
+
+    return str(write_page(path, text, overwrite=overwrite, where="--html"))
+
+
+def _html_option(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--html", help="also write the report as one self-contained .html file (a new file)")
 
 
 def _new_png(flag: str, path: Any) -> None:
@@ -79,6 +104,7 @@ def _run_tune(a: argparse.Namespace) -> tuple[Any, str]:
     values["target"] = None if a.target == "none" else a.target
     spec = make_spec(tuning.TuneSpec, values)
     _new_png("--plot", a.plot)
+    html = _html_target(a)
     if a.write_beta and spec.target is None:
         raise SpecError("--write-beta needs a chosen beta; drop --target none.")
     mem = DenseMemory.load(a.store, mmap=True)
@@ -105,6 +131,12 @@ def _run_tune(a: argparse.Namespace) -> tuple[Any, str]:
     elif a.write_beta:
         apply_hint = "nothing written: no beta met the goal."
     text = tuning.tune_text(rep, apply_hint=apply_hint, extra=[hint] if hint else None)
+    if html is not None:
+        from ._pages import tune_page
+
+        data["html"] = _write_html(html, tune_page(rep, str(a.store), warnings=data["warnings"],
+                                                   apply_hint=apply_hint))
+        text += f"\n\nwrote {data['html']}"
     return data, text
 
 
@@ -129,7 +161,8 @@ def add_dedup(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
     p.add_argument("--representative", choices=["medoid", "first"], default="medoid",
                    help="the item kept per group: the most central (medoid) or the first in input order")
     p.add_argument("--seed", type=int, default=0, help="random seed (index training, sampled checks)")
-    p.add_argument("--overwrite", action="store_true", help="replace plan files already in OUT")
+    p.add_argument("--overwrite", action="store_true", help="replace plan files already in OUT (and --html)")
+    _html_option(p)
     p.set_defaults(run=_run_dedup)
 
 
@@ -142,6 +175,7 @@ def _run_dedup(a: argparse.Namespace) -> tuple[Any, str]:
         spec = make_spec(DedupSpec, values)
     except SpecError as exc:
         raise SpecError(str(exc).replace("--no-chaining", "--grouping")) from None
+    html = _html_target(a, overwrite=a.overwrite)
     data, ids = _load_data(a.input, a.column, a.id_column)
     plan = spec.run(data, ids=ids, progress=None if not a.quiet else False)
     files = plan.write(a.out, overwrite=a.overwrite)
@@ -149,6 +183,11 @@ def _run_dedup(a: argparse.Namespace) -> tuple[Any, str]:
     text = out.table(["items", "groups", "keep", "drop", "threshold", "candidates"],
                      [[s["n_items"], s["n_groups"], s["n_keep"], s["n_drop"], s["threshold"], s["candidates"]]],
                      title=f"near-duplicates -> {a.out}")
+    if html is not None:
+        from ._pages import dedup_page
+
+        files["html"] = _write_html(html, dedup_page(plan, str(a.input), str(a.out)), overwrite=a.overwrite)
+        text += f"\n\nwrote {files['html']}"
     return {"summary": s, "files": files}, text
 
 
@@ -170,7 +209,8 @@ def add_capacity(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None
     p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     p.add_argument("--csv", dest="csv_path", help="also write the table as CSV (new file)")
     p.add_argument("--json-out", dest="json_path", help="also write the table as JSON (new file)")
-    p.add_argument("--plot", dest="plot_path", help="also draw the curve as PNG (new file)")
+    p.add_argument("--plot", dest="plot_path", help="also draw the curve as PNG (new .png file)")
+    _html_option(p)
     p.set_defaults(run=_run_capacity)
 
 
@@ -181,12 +221,20 @@ def _run_capacity(a: argparse.Namespace) -> tuple[Any, str]:
         if path is not None and Path(path).exists():
             raise SpecError(f"{flag} must name a new file; {path!r} exists.")
     _new_png("--plot", spec.plot_path)
+    html = _html_target(a)
     curve = capacity.capacity_curve(spec.models, spec.dims, csv_path=spec.csv_path, json_path=spec.json_path,
                                     progress=None if not a.quiet else False, **spec.curve_options())
     if spec.plot_path is not None:
         capacity.plot_capacity(curve, spec.plot_path)
     rows = curve.rows()
-    return {"rows": rows}, capacity_table(rows)
+    data: dict[str, Any] = {"rows": rows}
+    text = capacity_table(rows)
+    if html is not None:
+        from ._pages import capacity_page
+
+        data["html"] = _write_html(html, capacity_page(curve))
+        text += f"\n\nwrote {data['html']}"
+    return data, text
 
 
 #: Capacity table columns: (row key, heading).
@@ -253,14 +301,16 @@ def add_bench(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
                    help="a tiny run: 100 queries, 1 repeat; N 1000 and 2000 of generated data, all rows of a file")
     p.add_argument("--out", help="folder for bench.json and the PNG plots")
     p.add_argument("--no-plots", dest="plots", action="store_false", help="skip the PNG plots")
-    p.add_argument("--overwrite", action="store_true", help="replace bench files already in --out")
+    p.add_argument("--overwrite", action="store_true", help="replace bench files already in --out (and --html)")
+    _html_option(p)
     p.set_defaults(run=_run_bench)
 
 
 def _run_bench(a: argparse.Namespace) -> tuple[Any, str]:
     from ..benchmark import _run as benchmark
     names = {"queries": "n_queries", "query_file": "queries", "k": "ks", "binary": "include_binary"}
-    values = {names.get(k, k): v for k, v in vars(a).items() if v is not None}
+    html = _html_target(a, overwrite=a.overwrite)
+    values = {names.get(k, k): v for k, v in vars(a).items() if v is not None and k != "html"}
     if a.quick:
         generated = a.dataset in ("unit", "clustered")
         quick = _BENCH_QUICK if generated else {k: v for k, v in _BENCH_QUICK.items() if k not in ("n", "dim")}
@@ -277,7 +327,13 @@ def _run_bench(a: argparse.Namespace) -> tuple[Any, str]:
     if a.out is not None:
         files = rep.write(a.out, plots=a.plots, overwrite=a.overwrite)
         text += "\n\n" + "\n".join(f"wrote {p}" for p in files.values())
-    return rep.to_dict(), text
+    data = rep.to_dict()
+    if html is not None:
+        from ._pages import bench_page
+
+        data["html"] = _write_html(html, bench_page(rep, plots=a.plots), overwrite=a.overwrite)
+        text += f"\nwrote {data['html']}"
+    return data, text
 
 
 ADDERS: list[tuple[str, Callable[..., None]]] = [

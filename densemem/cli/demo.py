@@ -11,8 +11,9 @@ visitors are the queries.
 betas), checks sharp retrieval against faiss exact nearest-neighbour search,
 and, when :mod:`densemem.duplicates` and :mod:`densemem.tuning` are present,
 groups the near-duplicates and tunes beta on the de-duplicated archive. It
-writes a report folder: ``summary.md``, PNG plots (with matplotlib), the store
-folder and the de-duplication plan.
+writes a report folder: ``summary.md``, ``report.html`` (one self-contained
+page, plots embedded), PNG plots (with matplotlib), the store folder and the
+de-duplication plan.
 
 Examples
 --------
@@ -403,12 +404,16 @@ def run_demo(
         files["weights_png"] = str(out / "weights-sharp-vs-blended.png")
         files["curve_png"] = str(out / "retrieval-vs-beta.png")
     files["summary"] = str(out / "summary.md")
+    files["html"] = str(out / "report.html")
     report = DemoReport(
         out=str(out), label=LABEL, n_scans=len(arc.ids), n_photos=int(n_photos), n_queries=int(q.shape[0]),
         sharp_beta=sharp_beta, blended_beta=blended_beta, sharp=sharp, blended=blended, faiss=faiss_stats,
         dedup=dedup, tuning=tuned, files=files, seconds=time.perf_counter() - t0,
     )
     _write_text(out / "summary.md", _markdown(report))
+    from ._pages import demo_page
+
+    _write_text(out / "report.html", demo_page(report, out))
     for _ in steps:
         pass
     return report

@@ -385,8 +385,9 @@ def plot_sweep(
 ) -> Any:
     """Draw a sweep as a PNG: metrics against beta on a log axis.
 
-    Top panel: top-1 accuracy, sharp fraction, mean top weight and the
-    fractions of single / metastable / global states. Bottom panel: mean
+    Top panel: sharp fraction, mean top weight and the fractions of single /
+    metastable / global states (top-1 accuracy is left out: after one step
+    from a noisy copy it is flat in beta by construction). Bottom panel: mean
     effective blend size exp(H) and participation ratio (log scale). Vertical
     lines mark the predicted beta (default: ``report.predicted_beta``) and a
     chosen beta when given. Needs matplotlib (``pip install densemem[plot]``).
@@ -415,10 +416,10 @@ def plot_sweep(
     out = Path(path)
     if not out.parent.is_dir():
         raise InputValueError(f"plot_sweep: the folder of `path` does not exist; got {str(out)!r}.")
-    fig = Figure(figsize=(7.5, 6.5), layout="constrained")
+    fig = Figure(figsize=(9.5, 6.5), layout="constrained")
     top, bottom = fig.subplots(2, 1, sharex=True)
     b = report.betas
-    for label, y in [("top-1 accuracy", report.accuracy), ("sharp fraction", report.sharp_fraction),
+    for label, y in [("sharp fraction", report.sharp_fraction),
                      ("mean top weight", report.top_weight), ("single", report.fraction_single),
                      ("metastable", report.fraction_metastable), ("global", report.fraction_global)]:
         top.plot(b, y, marker=".", label=label)
@@ -436,7 +437,18 @@ def plot_sweep(
         if pred is not None and math.isfinite(pred):
             ax.axvline(pred, color="k", linestyle="--", linewidth=1, label="predicted beta")
         if chosen_beta is not None:
-            ax.axvline(chosen_beta, color="r", linestyle=":", linewidth=1.2, label="chosen beta")
-        ax.legend(fontsize=7, loc="best")
+            ax.axvline(chosen_beta, color="r", linestyle=":", linewidth=1.2, label=f"chosen beta {chosen_beta:.4g}")
+        ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)  # beside, not over
     fig.savefig(out, format="png", dpi=110)
     return out
+
+
+def plot_sweep_figure(report: SweepReport, *, predicted_beta: float | None = None,
+                      chosen_beta: float | None = None) -> bytes:
+    """The PNG bytes of :func:`plot_sweep` (for reports that embed the figure)."""
+    import tempfile
+    from pathlib import Path
+
+    with tempfile.TemporaryDirectory() as d:
+        path = plot_sweep(report, Path(d) / "sweep.png", predicted_beta=predicted_beta, chosen_beta=chosen_beta)
+        return path.read_bytes()
