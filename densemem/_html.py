@@ -9,7 +9,7 @@ Examples
 --------
 >>> from densemem._html import Section, page
 >>> html = page("t", [Section("one", paragraphs=["a < b"], tables=[(["x"], [[1]], "")])])
->>> "<td>1</td>" in html and "a &lt; b" in html
+>>> '<td class="num">1</td>' in html and "a &lt; b" in html
 True
 """
 
