@@ -330,6 +330,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     except (DenseMemError, OSError, ValueError) as exc:
         if args.debug:
             traceback.print_exc()
+        usage = _as_usage(parser, args, argv, exc)
+        if usage is not None:  # the library refused a value the user gave as an option
+            sys.stderr.write(f"{prog}: error: {usage}\n")
+            return 2
         sys.stderr.write(f"{prog}: error: {as_flags(_one_line(exc))}\n")
         return 1
     except KeyboardInterrupt:
@@ -342,6 +346,36 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 1
     sys.stdout.write((out.to_json(data) if args.json else text) + "\n")
     return 0
+
+
+_ARG_ERROR = re.compile(r"^[\w.]+: `(\w+)` (.*)$", re.S)
+
+
+def _as_usage(parser: argparse.ArgumentParser, args: argparse.Namespace, argv: Sequence[str] | None,
+              exc: BaseException) -> str | None:
+    """``--flag <reason>`` when ``exc`` is the library refusing an argument the user gave as an option, else None.
+
+    The library names its argument (``DenseMemory.retrieve: `k` must be ...``); when that name is an
+    option of this command and the option is on the command line, the error is a usage error.
+    """
+    from ..errors import InputTypeError, InputValueError
+
+    if not isinstance(exc, (InputValueError, InputTypeError)):
+        return None
+    m = _ARG_ERROR.match(_one_line(exc))
+    if m is None:
+        return None
+    name, reason = m.groups()
+    given = list(sys.argv[1:] if argv is None else argv)
+    sub = next((a.choices[args.command] for a in parser._actions
+                if isinstance(a, argparse._SubParsersAction) and args.command in a.choices), None)
+    for action in [] if sub is None else sub._actions:
+        if action.dest == name and action.option_strings:
+            used = [o for o in action.option_strings if any(g == o or g.startswith(o + "=") for g in given)]
+            if used:
+                sep = " " if reason.startswith(("must", "applies", "is ", "needs", "cannot")) else ": "
+                return f"{max(action.option_strings, key=len)}{sep}{reason}"
+    return None
 
 
 def _show_warning(prog: str) -> Any:

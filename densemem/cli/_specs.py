@@ -128,7 +128,12 @@ def make_spec(model: type[BaseModel], values: dict[str, Any], *, positional: tup
     except ValidationError as exc:
         err = exc.errors()[0]
         name = str(err["loc"][0]) if err["loc"] else "?"
-        raise SpecError(f"{_flag(name, set(positional))} {_reason(err)}") from None
+        reason = _reason(err)
+        sep = " " if reason.startswith(_VERBS) else ": "
+        raise SpecError(f"{_flag(name, set(positional))}{sep}{reason}") from None
+
+
+_VERBS = ("must", "applies", "is ", "needs", "should", "cannot")
 
 
 def _reason(err: Any) -> str:
@@ -139,7 +144,7 @@ def _reason(err: Any) -> str:
     msg = str(err["msg"])
     msg = msg.replace("Value error, ", "").replace("Input should be", "must be")
     # a job spec's own check names itself and its field ("CapacitySpec: `model` must ..."): keep the reason
-    msg = re.sub(r"^\w+Spec: `\w+` ", "", msg)
+    msg = re.sub(r"^\w+Spec: (`\w+` )?", "", msg)
     msg = re.sub(r"^\w+: `\w+` ", "", msg) if msg.startswith(tuple("ABCDEFGHIJKLMNOPQRSTUVWXYZ")) else msg
     msg = msg[0].lower() + msg[1:] if msg else msg
     if "; got " in msg or (isinstance(given, str) and given and given in msg):

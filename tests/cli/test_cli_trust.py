@@ -130,6 +130,10 @@ def test_nan_threshold_must_be_finite(data, capsys):
     (["tune", "STORE", "--html", "t.txt"], "--html must name an .html file"),
     (["build", "DIGITS", "SHARDED", "--shards", "5000"], "--shards must be at most the number of rows (1797"),
     (["tune", "STORE", "--target", "none", "--write-beta"], "--write-beta needs a chosen beta"),
+    # values the library refuses are usage errors too when they came as options
+    (["nearest", "STORE", "QUERIES", "-k", "99999"], "--k must be at most the number of stored patterns (1797)"),
+    (["build", "DIGITS", "SHARDED", "--column", "x"], "--column applies to .npz and .parquet files"),
+    (["capacity", "--corruption", "flip:2"], "--corruption: the flip fraction must be in [0, 1]; got 2.0."),
 ])
 def test_usage_errors_exit_2_and_name_the_option(data, tmp_path, capsys, args, flag):
     d, _, _ = data
