@@ -356,14 +356,15 @@ def _as_usage(parser: argparse.ArgumentParser, args: argparse.Namespace, argv: S
     """``--flag <reason>`` when ``exc`` is the library refusing an argument the user gave as an option, else None.
 
     The library names its argument (``DenseMemory.retrieve: `k` must be ...``); when that name is an
-    option of this command and the option is on the command line, the error is a usage error.
+    option of this command and the option is on the command line, the error is a usage error. A refusal
+    to replace existing files stays a failure (exit 1), the same for every writer.
     """
     from ..errors import InputTypeError, InputValueError
 
     if not isinstance(exc, (InputValueError, InputTypeError)):
         return None
     m = _ARG_ERROR.match(_one_line(exc))
-    if m is None:
+    if m is None or "overwrite" in m.group(2):  # refusing to replace files is a failure (1), as in build
         return None
     name, reason = m.groups()
     given = list(sys.argv[1:] if argv is None else argv)
