@@ -143,7 +143,7 @@ def _run_tune(a: argparse.Namespace) -> tuple[Any, str]:
 # ------------------------------------------------------------------ dedup
 def add_dedup(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
     p = sub(subs, "dedup", "group near-duplicates and write a keep/drop plan (nothing is removed)",
-            "densemem dedup archive-store plan/ --threshold 0.97 --no-chaining star")
+            "densemem dedup archive-store plan/ --threshold 0.97 --grouping star")
     p.add_argument("input", help="store folder or embeddings file (.npy, .npz, .parquet, .csv, .tsv)")
     p.add_argument("out", help="folder for the plan files (groups.csv/json, keep.txt, drop.txt)")
     p.add_argument("--column", help="array/column holding the vectors (embeddings files)")

@@ -289,3 +289,17 @@ def test_tune_progress_bar_on_request_only(capsys):
     assert "tune" in capsys.readouterr().err
     t.tune_beta(mem, t.TuneSpec(n_betas=4, n_queries=8))  # default: no bar
     assert capsys.readouterr().err == ""
+
+
+def test_every_option_has_help():
+    import argparse
+
+    from densemem.cli._main import build_parser
+
+    parser = build_parser()
+    subs = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    missing = [f"{name} {'/'.join(act.option_strings) or act.dest}"
+               for name, sub in subs.choices.items() for act in sub._actions
+               if not isinstance(act, argparse._HelpAction) and not act.help]
+    assert missing == []
+    assert "--no-chaining" not in subs.choices["dedup"].format_help()  # read as a double negative
