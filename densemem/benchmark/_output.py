@@ -122,11 +122,18 @@ def plot_scaling(records: Sequence[BenchRecord], path: Path) -> Path:
     for r in records:
         curves.setdefault(f"{r.method} {r.label}", []).append(r)
     fig, ax = plt.subplots(figsize=(10, 6))
-    for j, (name, group) in enumerate(curves.items()):
+    # one colour per method, and per setting of that method its own marker and dash pattern,
+    # so that many curves stay distinguishable (colour alone would repeat look-alike shades)
+    methods = list(dict.fromkeys(g[0].method for g in curves.values()))
+    markers, dashes = "osD^vP*X", ["-", "--", "-.", ":"]
+    seen: dict[str, int] = {}
+    for name, group in curves.items():
         group = sorted(group, key=lambda r: r.n)
-        style = "--" if group[0].library == "faiss" else "-"
-        ax.plot([r.n for r in group], [r.time_s for r in group], style, marker="o", ms=4,
-                color=plt.cm.tab20(j % 20), label=name)
+        method = group[0].method
+        j = seen[method] = seen.get(method, -1) + 1
+        ax.plot([r.n for r in group], [r.time_s for r in group], linestyle=dashes[j % len(dashes)],
+                marker=markers[j % len(markers)], ms=5, color=plt.cm.tab10(methods.index(method) % 10),
+                label=name)
     ax.set_xscale("log")
     ax.set_yscale("log")
     ax.set_xlabel("stored rows N (log scale)")

@@ -288,7 +288,8 @@ def _plot_weights(mem: DenseMemory, q: np.ndarray, betas: tuple[float, float], p
         r = mem.retrieve(q, beta, k=20, method="exact")
         ax.bar(np.arange(20), r.top_weights[0], color="#3a6ea5" if name == "sharp" else "#c9783a")
         ax.set_title(f"{name}: beta = {beta:g}")
-        ax.set_xlabel("stored scans, heaviest first")
+        ax.set_xlabel("rank of the stored scan (heaviest first)")
+        ax.xaxis.get_major_locator().set_params(integer=True)  # ranks are whole numbers
     axes[0].set_ylabel("softmax weight")
     fig.suptitle("One faded print (invented data)", fontsize=10)
     fig.tight_layout()

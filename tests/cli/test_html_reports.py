@@ -107,3 +107,19 @@ def test_report_renders_in_a_browser(reports, job, tmp_path):
     assert res.returncode == 0, res.stderr[-2000:]
     assert shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (open standard)
     assert shot.stat().st_size > 20_000  # a blank 1280x2000 page compresses far below this
+
+
+def test_reports_hold_the_printed_tables(reports, capsys, tmp_path):
+    """Without a browser: each page carries the words and columns its command prints."""
+    text = {job: reports[job].read_text(encoding="utf-8") for job in reports}
+    assert "verdict: for sharp recall use beta = " in text["tune"] and "predicted against measured" in text["tune"]
+    assert "<th>metastable</th>" in text["tune"] and "<dl class=\"legend\">" in text["tune"]
+    assert "&gt;= 64 (cap)" in text["capacity"] and "<th>success at capacity</th>" in text["capacity"]
+    assert "<th>base ms</th>" in text["bench"] and "<th>held MiB</th>" in text["bench"]
+    assert "<th>kept item</th>" in text["dedup"]
+    assert "Invented data" in text["demo"] and text["demo"].count("<img") == 3
+    # the --html file is new unless asked, like every writer
+    assert main(["capacity", "--models", "hebbian", "--dims", "8", "--n-trials", "1", "-q",
+                 "--html", str(reports["capacity"])]) == 2
+    assert "exists" in capsys.readouterr().err
+    assert reports["capacity"].read_text(encoding="utf-8") == text["capacity"]
