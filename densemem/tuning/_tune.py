@@ -55,6 +55,7 @@ __all__ = [
     "format_report",
     "plot_sweep",
     "tune_text",
+    "verdict",
     "KINDS",
     "METHODS",
 ]
@@ -164,6 +165,9 @@ def tune_beta(
     finally:
         TICK.reset(token)
         if bar is not None:
+            if bar.n != bar.total:  # the bisection stopped early (goal met at an end of the range)
+                bar.total = bar.n
+                bar.refresh()
             bar.close()
 
 

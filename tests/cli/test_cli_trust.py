@@ -303,3 +303,45 @@ def test_every_option_has_help():
                if not isinstance(act, argparse._HelpAction) and not act.help]
     assert missing == []
     assert "--no-chaining" not in subs.choices["dedup"].format_help()  # read as a double negative
+
+
+def _stderr_on_a_terminal(args: list[str]) -> str:
+    """Run the command with stderr on a pseudo-terminal of 120 columns; return what it wrote there."""
+    import os
+    import subprocess
+    import sys
+
+    fcntl = pytest.importorskip("fcntl")
+    termios = pytest.importorskip("termios")
+    import struct
+
+    master, slave = os.openpty()
+    fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", 40, 120, 0, 0))
+    proc = subprocess.Popen([sys.executable, "-m", "densemem", *args], stdout=subprocess.DEVNULL, stderr=slave)
+    os.close(slave)
+    out = b""
+    while True:
+        try:
+            chunk = os.read(master, 65536)
+        except OSError:  # the terminal closed with the process
+            break
+        if not chunk:
+            break
+        out += chunk
+    os.close(master)
+    assert proc.wait(timeout=120) == 0
+    return out.decode(errors="replace")
+
+
+def test_tune_progress_on_a_terminal_only(data):
+    pytest.importorskip("tqdm")
+    d, _, _ = data
+    args = ["tune", str(d / "store"), "--n-betas", "4", "--n-queries", "32"]
+    shown = _stderr_on_a_terminal(args)
+    assert "tune: 100%" in shown  # the bar reached its planned number of runs
+    assert _stderr_on_a_terminal([*args, "-q"]) == ""
+    import subprocess
+    import sys
+
+    piped = subprocess.run([sys.executable, "-m", "densemem", *args], capture_output=True, text=True, timeout=120)
+    assert piped.returncode == 0 and piped.stderr == ""
