@@ -98,6 +98,7 @@ def _new_png(flag: str, path: Any) -> None:
 def _run_tune(a: argparse.Namespace) -> tuple[Any, str]:
     from ..tuning import _tune as tuning
     from ..dense import DenseMemory
+    from ..errors import InputValueError
     from ._hints import collapse_hint
 
     values = dict(vars(a))
@@ -107,6 +108,11 @@ def _run_tune(a: argparse.Namespace) -> tuple[Any, str]:
     html = _html_target(a)
     if a.write_beta and spec.target is None:
         raise SpecError("--write-beta needs a chosen beta; drop --target none.")
+    from ._main import _is_sharded
+
+    if _is_sharded(a.store):
+        raise InputValueError(f"STORE: tune works on a single store; {str(a.store)!r} is a sharded store "
+                              "(tune the store before sharding it, then build the shards with --beta).")
     mem = DenseMemory.load(a.store, mmap=True)
     hint = collapse_hint(mem, "build the store again with --normalize --overwrite (cosine geometry), then tune it")
     rep = tuning.tune_beta(mem, spec, progress=None if not a.quiet else False)

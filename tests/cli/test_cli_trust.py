@@ -345,3 +345,11 @@ def test_tune_progress_on_a_terminal_only(data):
 
     piped = subprocess.run([sys.executable, "-m", "densemem", *args], capture_output=True, text=True, timeout=120)
     assert piped.returncode == 0 and piped.stderr == ""
+
+
+def test_tune_refuses_a_sharded_store_by_name(data, tmp_path, capsys):
+    d, _, _ = data
+    assert main(["build", str(d / "digits.npy"), str(tmp_path / "sh"), "--normalize", "--shards", "2", "-q"]) == 0
+    capsys.readouterr()
+    assert main(["tune", str(tmp_path / "sh"), "--write-beta"]) == 1
+    assert "STORE: tune works on a single store; " in capsys.readouterr().err
