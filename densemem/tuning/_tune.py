@@ -165,9 +165,8 @@ def tune_beta(
     finally:
         TICK.reset(token)
         if bar is not None:
-            if bar.n != bar.total:  # the bisection stopped early (goal met at an end of the range)
-                bar.total = bar.n
-                bar.refresh()
+            bar.total = bar.n  # the bisection can stop early (goal met at an end of the range)
+            bar.refresh()  # show the finished count before the bar is cleared
             bar.close()
 
 
