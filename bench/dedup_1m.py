@@ -3,7 +3,7 @@
 Invented data: clustered embeddings (Gaussian clouds around random unit
 centres) with planted near-copies of some rows (cosine to their source spread
 over [0.97, 1], a quarter of them exact copies). Reports the wall time of
-``find_duplicates`` (index training, assignment and search included), its pair
+``plan_duplicates`` (index training, assignment and search included), its pair
 recall against exact brute-force pairs of a sample of query rows (faiss
 ``IndexFlatIP.range_search`` + the same float64 rule), peak memory, and, last,
 the speed ratio to an exact brute-force search extrapolated from that sample.
@@ -27,7 +27,7 @@ from pathlib import Path
 import faiss
 import numpy as np
 
-from densemem.duplicates import find_duplicates
+from densemem.duplicates import plan_duplicates
 
 SLACK = 1e-6  # the library's documented edge rule: cosine >= threshold - 1e-6
 
@@ -107,7 +107,7 @@ def main(argv: list[str] | None = None) -> dict:
     times, plan = [], None
     for _ in range(args.repeats):
         t0 = time.perf_counter()
-        plan = find_duplicates(x, args.threshold, candidates="ivf", return_pairs=True, seed=args.seed)
+        plan = plan_duplicates(x, args.threshold, candidates="ivf", return_pairs=True, seed=args.seed)
         times.append(time.perf_counter() - t0)
     assert plan is not None and plan.pair_ids is not None
     sample = np.sort(np.random.default_rng(args.seed + 1).choice(args.n, min(args.sample, args.n), replace=False))
@@ -122,6 +122,7 @@ def main(argv: list[str] | None = None) -> dict:
         "wall_seconds": wall, "wall_seconds_runs": times, "generate_seconds": gen_s,
         "candidates": plan.candidates, "candidate_params": plan.summary()["candidate_params"],
         "n_pairs": plan.n_pairs, "n_groups": plan.n_groups, "n_drop": int(plan.drop_ids.size),
+        "grouping": plan.grouping, "lowest_kept_similarity": plan.summary()["lowest_kept_similarity"],
         "sample_rows": int(sample.size), "sample_exact_pairs": len(exact),
         "pair_recall": recall, "pair_precision": precision,
         "exact_sample_seconds": exact_s, "exact_full_seconds_extrapolated": exact_full_s,

@@ -14,12 +14,9 @@ errors. Each job package keeps its own option and report classes:
 :mod:`densemem.errors`.
 """
 
-from ._version import __version__
-from .benchmark import run_benchmark
-from .binary import BinaryMemory, BinaryRetrieval, DenseBinaryMemory
-from .capacity import estimate_capacity
-from .dense import DenseMemory
-from .duplicates import find_duplicates
+from typing import TYPE_CHECKING, Any
+
+from ._version import __version__ as __version__
 from .errors import (
     DenseMemError,
     InputTypeError,
@@ -28,10 +25,52 @@ from .errors import (
     StoreFormatError,
     UnknownIdError,
 )
-from .results import NearestResult, RetrievalResult
-from .sharding import ShardedMemory, open_sharded, shard_memory
-from .store import read_embeddings
-from .tuning import tune_beta
+
+# Heavy modules (faiss, scipy, pydantic) load when a name is first used, not at
+# ``import densemem`` (PEP 562 module __getattr__); each name's home is below.
+_HOMES = {
+    "DenseMemory": ".dense",
+    "ShardedMemory": ".sharding",
+    "BinaryMemory": ".binary",
+    "DenseBinaryMemory": ".binary",
+    "BinaryRetrieval": ".binary",
+    "RetrievalResult": ".results",
+    "NearestResult": ".results",
+    "tune_beta": ".tuning",
+    "plan_duplicates": ".duplicates",
+    "estimate_capacity": ".capacity",
+    "run_benchmark": ".benchmark",
+    "shard_memory": ".sharding",
+    "open_sharded": ".sharding",
+    "read_embeddings": ".store",
+}
+
+if TYPE_CHECKING:  # pragma: no cover - for type checkers and IDEs only
+    from .benchmark import run_benchmark
+    from .binary import BinaryMemory, BinaryRetrieval, DenseBinaryMemory
+    from .capacity import estimate_capacity
+    from .dense import DenseMemory
+    from .duplicates import plan_duplicates
+    from .results import NearestResult, RetrievalResult
+    from .sharding import ShardedMemory, open_sharded, shard_memory
+    from .store import read_embeddings
+    from .tuning import tune_beta
+
+
+def __getattr__(name: str) -> Any:
+    home = _HOMES.get(name)
+    if home is None:
+        raise AttributeError(f"module 'densemem' has no attribute {name!r}")
+    import importlib
+
+    value = getattr(importlib.import_module(home, __name__), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_HOMES))
+
 
 __all__ = [
     "DenseMemory",
@@ -42,7 +81,7 @@ __all__ = [
     "NearestResult",
     "BinaryRetrieval",
     "tune_beta",
-    "find_duplicates",
+    "plan_duplicates",
     "estimate_capacity",
     "run_benchmark",
     "shard_memory",

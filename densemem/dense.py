@@ -8,33 +8,20 @@ from typing import Any, Literal
 import faiss
 import numpy as np
 
-from .core import partial as P
-from .core import steps as R
-from .core.candidates import CertifiedOptions
-from .core.index import CandidateIndex, default_settings
+from ._front import Retriever
+from .core.index import CandidateIndex, IndexSettings, default_settings
+from .core.rows import RowSource, TableRows
 from .core.table import PatternTable
 from .core.tiles import DEFAULT_TILE_MIB, n_threads_default
-from ._validation import (
-    check_beta,
-    check_fraction,
-    check_k,
-    check_nonneg_float,
-    check_positive_int,
-    check_queries,
-    check_score_range,
-    max_row_norm,
-    unit_rows,
-)
+from .options import Layout, RetrievalOptions
+from ._validation import check_beta, check_nonneg_float, check_positive_int
 from .errors import DenseMemWarning, IndexStaleError, InputTypeError, InputValueError
-from .results import NearestResult, RetrievalResult
+from .store._folder import StoreContent, read_store, write_store
 
 __all__ = ["DenseMemory"]
 
-Method = Literal["auto", "exact", "certified", "index"]
-_METHODS = ("auto", "exact", "certified", "index")
 
-
-class DenseMemory:
+class DenseMemory(Retriever):
     """A store of real-valued patterns retrieved by the softmax (modern Hopfield) update.
 
     Parameters
@@ -269,9 +256,13 @@ class DenseMemory:
         >>> len(densemem.DenseMemory.load(folder))
         3
         """
-        from .store._folder import save_memory
-
-        save_memory(self, path, overwrite=overwrite)
+        payload = self._index_payload()
+        content = StoreContent(
+            x=self._table.x, ids=self._table.ids, normalize=self.normalize, beta=self._beta,
+            next_id=self._table.next_id,
+            index_meta=None if payload is None else payload[0], index=None if payload is None else payload[1],
+        )
+        write_store(content, path, overwrite=overwrite, where="DenseMemory.save")
 
     @classmethod
     def load(cls, path: Any, *, mmap: bool = False, verify: bool = True) -> "DenseMemory":
@@ -288,162 +279,51 @@ class DenseMemory:
         >>> densemem.DenseMemory.load(folder, mmap=True).ids.tolist()
         ['x', 'y']
         """
-        from .store._folder import load_memory
+        where = "DenseMemory.load"
+        return cls._from_content(read_store(path, mmap=mmap, verify=verify, where=where), where=where)
 
-        return load_memory(path, mmap=mmap, verify=verify)
+    @classmethod
+    def _from_table(cls, table: PatternTable, *, beta: float, **options: Any) -> "DenseMemory":
+        """A memory around an already-checked table (trusted: store and shard readers)."""
+        mem = cls(table.dim, normalize=table.normalize, beta=beta, **options)
+        mem._table = table
+        return mem
+
+    @classmethod
+    def _from_content(cls, content: StoreContent, *, where: str) -> "DenseMemory":
+        """A memory from what a store folder holds (arrays checked by the reader)."""
+        table = PatternTable.trusted(content.x, content.ids, normalize=content.normalize, next_id=content.next_id)
+        mem = cls._from_table(table, beta=content.beta)
+        if content.index is not None:
+            mem._restore_index(content.index_meta or {}, content.index, where=where)
+        return mem
 
     # -------------------------------------------------------------- retrieval
-    def _prepare_queries(self, queries: Any, *, where: str) -> tuple[np.ndarray, bool]:
-        if len(self) == 0:
-            raise InputValueError(f"{where}: the memory is empty; add patterns first.")
-        q, was_1d = check_queries(queries, where=where, dim=self.dim)
-        if self.normalize:
-            q = unit_rows(q, where=where, what="query")
-        return q, was_1d
+    _name = "DenseMemory"
 
-    def _reduce(
-        self, states: np.ndarray, beta: float, *, k: int, method: str, need_acc: bool, opts: dict[str, Any]
-    ) -> tuple[P.Finished, dict[str, Any]]:
-        return R.reduce(self, states, beta, k=k, method=method, need_acc=need_acc, opts=opts)
+    def _layout(self) -> Layout:
+        return Layout(dim=self.dim, normalize=self.normalize, count=len(self), max_norm=self.max_norm,
+                      beta=self._beta, tile_mib=self.tile_mib)
 
-    def retrieve(
-        self,
-        queries: Any,
-        beta: float | None = None,
-        *,
-        steps: int = 1,
-        tol: float = 1e-6,
-        k: int | None = None,
-        method: Method = "auto",
-        return_energy: bool = True,
-        tol_mass: float = 1e-6,
-        k_max: int = 1024,
-        n_candidates: int | None = None,
-        measure: bool | int = False,
-    ) -> RetrievalResult:
-        """Retrieve by the softmax update ``xi <- X.T softmax(beta X xi)``.
+    def _source(self, opts: RetrievalOptions, *, where: str) -> TableRows:
+        index = None
+        if opts.method == "index":
+            self._fresh_index(where=where)  # fails (or rebuilds) before any pass
+            index = lambda: self._fresh_index(where=where)  # noqa: E731
+        return TableRows(self._table.x, self._table.ids, self.max_norm, opts.method, self.tile_mib,
+                         self.n_threads, opts.n_candidates, index)
 
-        Parameters
-        ----------
-        queries : array-like of shape (n_queries, dim) or (dim,)
-            Start states. A 1-D query gives results without the query axis.
-        beta : float, optional
-            Inverse temperature; None uses the memory's :attr:`beta`. Large beta returns the
-            best-matching stored pattern; small beta blends many.
-        steps : int, default 1
-            Most updates to do. With ``steps > 1`` a query stops once its state
-            moves by at most ``tol * M`` (M: largest stored norm).
-        tol : float, default 1e-6
-        k : int, optional
-            Heaviest stored items to report per query (default: 10, or every
-            stored item when fewer are held). An explicit ``k`` above the
-            number of stored patterns is an error.
-        method : {"auto", "exact", "certified", "index"}, default "auto"
-            - "exact": every stored row, in tiles (two matrix products).
-            - "certified": softmax over faiss's exact top-kc rows with a bound
-              on the omitted mass; kc doubles (up to ``k_max``) until the bound
-              is at most ``tol_mass``, then the query falls back to "exact".
-            - "index": softmax over the candidates of the index made by
-              :meth:`build_index` (approximate, no bound).
-            - "auto": "exact" below 2048 stored rows; otherwise "certified"
-              for the queries where the bound can hold at all (``2 beta M |q| >= ln((N - k) / tol_mass)``, since scores lie
-              in ``[-M|q|, M|q|]``), "exact" for the others. Certified
-              queries start at ``max(k, 16)`` candidates; one whose first
-              bound exceeds ``1e4 * tol_mass`` goes to "exact" without
-              growing, the others grow as in "certified".
-        return_energy : bool, default True
-            Compute the energy of the returned states (one more pass over the
-            stored rows, without the weighted sum).
-        tol_mass : float, default 1e-6
-            Certified/auto: largest omitted softmax fraction accepted.
-        k_max : int, default 1024
-            Certified/auto: most candidates per query before falling back.
-        n_candidates : int, optional
-            Index: candidates fetched per query (default ``max(k, 32)``).
-        measure : bool or int, default False
-            Index: also report candidate recall against faiss exact top-kc on
-            a sample of queries (``True``: up to 256; an int: that many).
+    def _candidate_recall(self, source: RowSource, q: np.ndarray, opts: RetrievalOptions) -> float:
+        assert isinstance(source, TableRows)
+        return source.candidate_recall(q, opts.k, opts.measure)
 
-        Returns
-        -------
-        RetrievalResult
-
-        Raises
-        ------
-        InputValueError
-            Empty memory, wrong query width, NaN/inf, beta <= 0, k out of range,
-            unknown method, "index" without :meth:`build_index`.
-
-        Examples
-        --------
-        >>> import numpy as np, densemem
-        >>> mem = densemem.DenseMemory.from_array(np.eye(4), beta=40.0)
-        >>> res = mem.retrieve([[0.0, 0.8, 0.2, 0.0]], k=2)
-        >>> res.top_ids.tolist(), np.round(res.states, 3).tolist()
-        ([[1, 2]], [[0.0, 1.0, 0.0, 0.0]])
-        """
-        where = "DenseMemory.retrieve"
-        q, was_1d = self._prepare_queries(queries, where=where)
-        beta = self._beta if beta is None else check_beta(beta, where=where)
-        steps = check_positive_int(steps, name="steps", where=where)
-        tol = check_nonneg_float(tol, name="tol", where=where)
-        k = min(10, len(self)) if k is None else check_k(k, n=len(self), where=where)
-        check_score_range(beta, max_row_norm(q), self.max_norm, where=where)
-        if method not in _METHODS:
-            raise InputValueError(f"{where}: unknown `method` {method!r}; use one of {', '.join(_METHODS)}.")
-        opts: dict[str, Any] = {
-            "certified": CertifiedOptions(
-                tol_mass=check_fraction(tol_mass, name="tol_mass", where=where),
-                k_max=check_positive_int(k_max, name="k_max", where=where),
-                tile_mib=self.tile_mib,
-            ),
-            "n_candidates": max(k, 32)
-            if n_candidates is None
-            else check_positive_int(n_candidates, name="n_candidates", where=where),
-        }
-        if method == "index":
-            self._fresh_index(where=where)
-        result = R.iterate(self, q, was_1d, beta, steps, tol, k, method, return_energy, opts)
-        if measure is not False and method != "index":
-            raise InputValueError(f"{where}: `measure` applies to method='index' only; got method={method!r}.")
-        if not isinstance(measure, (bool, int, np.integer)):
-            raise InputTypeError(f"{where}: `measure` must be True/False or a number of queries; got {measure!r}.")
-        if method == "index" and measure:
-            n_sample = 256 if measure is True else check_positive_int(int(measure), name="measure", where=where)
-            recall = R.candidate_recall(self, q, opts["n_candidates"], k, n_sample)
-            result = R.replace(result, candidate_recall=recall)
-        return result
-
-    def energy(self, states: Any, beta: float | None = None) -> np.ndarray:
-        """Log-sum-exp energy of states (computed exactly, tile by tile).
-
-        ``E(xi) = -lse(beta, X xi)/beta + xi.xi/2 + log(N)/beta + M^2/2``;
-        ``E >= 0`` and one update never raises it.
-
-        Parameters
-        ----------
-        states : array-like of shape (n_states, dim) or (dim,)
-        beta : float, optional
-
-        Returns
-        -------
-        ndarray of shape (n_states,), float64 (a float for a 1-D state)
-
-        Examples
-        --------
-        >>> import numpy as np, densemem
-        >>> mem = densemem.DenseMemory.from_array(np.eye(2), beta=1.0)
-        >>> bool(mem.energy([1.0, 0.0]) >= 0)
-        True
-        """
-        where = "DenseMemory.energy"
-        if len(self) == 0:
-            raise InputValueError(f"{where}: the memory is empty; add patterns first.")
-        s, was_1d = check_queries(states, where=where, dim=self.dim, name="states")
-        beta = self._beta if beta is None else check_beta(beta, where=where)
-        check_score_range(beta, max_row_norm(s), self.max_norm, where=where)
-        e = R.energy_of(self, s, beta, "exact", {})
-        return float(e[0]) if was_1d else e
+    def _nearest_batch(self, q: np.ndarray, k: int, metric: str, index: bool, *, where: str) -> tuple[np.ndarray, np.ndarray]:
+        if index:
+            scores, pos = self._fresh_index(where=where).search(q, k)
+        else:
+            fm = faiss.METRIC_INNER_PRODUCT if metric == "ip" else faiss.METRIC_L2
+            scores, pos = faiss.knn(q, self._table.x, k, metric=fm)
+        return self._table.ids_at(pos), scores
 
     # ----------------------------------------------------------------- index
     def build_index(self, kind: Literal["hnsw", "ivf"] = "hnsw", **params: Any) -> dict[str, Any]:
@@ -502,67 +382,10 @@ class DenseMemory:
             return None
         return self._index.meta(), self._index.faiss_index
 
-    def _restore_index(self, meta: dict[str, Any], index: Any) -> None:
+    def _restore_index(self, meta: dict[str, Any], index: Any, *, where: str = "DenseMemory.load") -> None:
         """Attach an index read from a store folder (checked against the rows)."""
-        from .core.index import IndexSettings
-
         if int(meta.get("n_rows", -1)) != len(self) or int(index.ntotal) != len(self):
             raise IndexStaleError(
-                f"DenseMemory.load: the stored index covers {index.ntotal} rows but the store holds {len(self)}."
+                f"{where}: the stored index covers {index.ntotal} rows but the store holds {len(self)}."
             )
         self._index = CandidateIndex(IndexSettings(**meta["settings"]), index, len(self), self._table.version)
-
-    def nearest(
-        self,
-        queries: Any,
-        k: int | None = None,
-        *,
-        metric: Literal["ip", "l2"] = "ip",
-        index: bool = False,
-    ) -> NearestResult:
-        """Exact k nearest stored patterns by faiss brute-force search.
-
-        Parameters
-        ----------
-        queries : array-like of shape (n_queries, dim) or (dim,)
-        k : int, optional
-            Default 10, or every stored item when fewer are held.
-        metric : {"ip", "l2"}, default "ip"
-            Inner product (cosine when ``normalize=True``; faiss
-            ``METRIC_INNER_PRODUCT``) or squared Euclidean distance
-            (``METRIC_L2``).
-        index : bool, default False
-            Search the approximate index of :meth:`build_index` instead
-            (inner product only), for like-for-like baselines. An index may
-            find fewer than k results: the missing ones have id -1 (int ids)
-            or "" (str ids) and the score faiss gives them.
-
-        Returns
-        -------
-        NearestResult
-
-        Examples
-        --------
-        >>> import numpy as np, densemem
-        >>> mem = densemem.DenseMemory.from_array(np.eye(3), ids=["a", "b", "c"])
-        >>> mem.nearest([0.1, 0.9, 0.0], k=1).ids.tolist()
-        ['b']
-        """
-        where = "DenseMemory.nearest"
-        q, was_1d = self._prepare_queries(queries, where=where)
-        k = min(10, len(self)) if k is None else check_k(k, n=len(self), where=where)
-        if metric not in ("ip", "l2"):
-            raise InputValueError(f"{where}: `metric` must be 'ip' or 'l2'; got {metric!r}.")
-        if index:
-            if metric != "ip":
-                raise InputValueError(f"{where}: the candidate index ranks by inner product; use metric='ip'.")
-            scores, pos = self._fresh_index(where=where).search(q, k)
-        else:
-            fm = faiss.METRIC_INNER_PRODUCT if metric == "ip" else faiss.METRIC_L2
-            scores, pos = faiss.knn(q, self._table.x, k, metric=fm)
-        ids = self._table.ids_at(pos)
-        if was_1d:
-            return NearestResult(ids=ids[0], scores=scores[0], metric=metric)
-        return NearestResult(ids=ids, scores=scores, metric=metric)
-
-

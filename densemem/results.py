@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, fields
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 
@@ -24,16 +24,41 @@ def _plain(value: Any) -> Any:
     return value
 
 
+class Deferred:
+    """A value computed on first read (see :attr:`RetrievalResult.energy`)."""
+
+    __slots__ = ("_make",)
+
+    def __init__(self, make: Callable[[], Any]) -> None:
+        self._make = make
+
+    def __call__(self) -> Any:
+        return self._make()
+
+
+def resolve(value: Any) -> Any:
+    """``value``, or what a :class:`Deferred` computes."""
+    return value() if isinstance(value, Deferred) else value
+
+
+def _public(name: str) -> str:
+    return name[1:] if name.startswith("_") else name
+
+
 class _ResultMixin:
+    """One base for results and reports: a short repr and ``to_dict()`` over the public fields."""
+
     __slots__ = ()
 
     def __repr__(self) -> str:
-        body = ", ".join(f"{f.name}={_short(getattr(self, f.name))}" for f in fields(self))  # type: ignore[arg-type]
+        body = ", ".join(
+            f"{_public(f.name)}={_short(getattr(self, _public(f.name)))}" for f in fields(self)  # type: ignore[arg-type]
+        )
         return f"{type(self).__name__}({body})"
 
     def to_dict(self) -> dict[str, Any]:
         """Plain-Python (JSON-ready) copy of every field."""
-        return {f.name: _plain(getattr(self, f.name)) for f in fields(self)}  # type: ignore[arg-type]
+        return {_public(f.name): _plain(getattr(self, _public(f.name))) for f in fields(self)}  # type: ignore[arg-type]
 
 
 @dataclass(frozen=True, slots=True, repr=False)
@@ -75,12 +100,14 @@ class RetrievalResult(_ResultMixin):
         Index path with ``measure=True``: fraction of faiss's exact top-kc
         (kc = the candidates fetched, ``max(n_candidates, k)``) that the index
         found, averaged over a sample of queries.
+    beta : float or None
+        The inverse temperature used (the memory's own when the call gave none).
     """
 
     states: np.ndarray
     top_ids: np.ndarray
     top_weights: np.ndarray
-    energy: np.ndarray | None
+    _energy: Any  # ndarray, None, or a Deferred computed on first read
     steps: int
     converged: np.ndarray
     method: str = "exact"
@@ -89,6 +116,20 @@ class RetrievalResult(_ResultMixin):
     k_used: np.ndarray | None = None
     fell_back: np.ndarray | None = None
     candidate_recall: float | None = None
+    beta: float | None = None
+
+    def __reduce__(self) -> Any:  # pickles with its energy computed (a Deferred holds the rows)
+        values = [self.energy if f.name == "_energy" else getattr(self, f.name) for f in fields(self)]
+        return (type(self), tuple(values))
+
+    @property
+    def energy(self) -> Any:
+        """Log-sum-exp energy of ``states`` (see the class Attributes)."""
+        value = self._energy
+        if isinstance(value, Deferred):
+            value = value()
+            object.__setattr__(self, "_energy", value)
+        return value
 
 
 @dataclass(frozen=True, slots=True, repr=False)

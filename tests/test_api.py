@@ -25,7 +25,7 @@ PUBLIC = [
     "NearestResult",
     "BinaryRetrieval",
     "tune_beta",
-    "find_duplicates",
+    "plan_duplicates",
     "estimate_capacity",
     "run_benchmark",
     "shard_memory",
@@ -82,7 +82,7 @@ def test_every_public_name_has_a_docstring(name: str) -> None:
 
 def _public_members(cls: type) -> list[tuple[str, object]]:
     out = []
-    fields = {f.name for f in dataclasses.fields(cls)} if dataclasses.is_dataclass(cls) else set()
+    fields = {f.name.lstrip("_") for f in dataclasses.fields(cls)} if dataclasses.is_dataclass(cls) else set()
     for name, value in vars(cls).items():
         if name.startswith("_") or name in fields:  # dataclass fields: see the Attributes test
             continue
@@ -131,7 +131,7 @@ def test_result_fields_are_documented_under_attributes(cls: type) -> None:
     assert "Attributes\n----------" in doc
     attrs = doc.split("Attributes\n----------", 1)[1]
     listed = {line.split(":")[0].strip() for line in attrs.splitlines() if line and not line.startswith(" ")}
-    missing = [f.name for f in dataclasses.fields(cls) if f.name not in listed]
+    missing = [f.name.lstrip("_") for f in dataclasses.fields(cls) if f.name.lstrip("_") not in listed]
     assert not missing, f"{cls.__name__}: undocumented fields {missing}"
 
 
@@ -140,3 +140,16 @@ def test_results_are_frozen_dataclasses_with_to_dict() -> None:
         assert dataclasses.is_dataclass(cls)
         assert cls.__dataclass_params__.frozen  # type: ignore[attr-defined]
         assert callable(getattr(cls, "to_dict"))
+
+
+def test_import_loads_no_heavy_module() -> None:
+    # Project rule (fast start): `import densemem` loads neither faiss, scipy nor pydantic; they load
+    # when a name that needs them is first used. Checked in a fresh interpreter.
+    import subprocess
+    import sys
+
+    code = "import sys, densemem; print(sorted(m for m in ('faiss', 'scipy', 'pydantic') if m in sys.modules))"
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "[]"
+    code = "import densemem; densemem.DenseMemory; densemem.tune_beta; print(densemem.DenseMemory.__name__)"
+    assert subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.strip() == "DenseMemory"

@@ -635,3 +635,23 @@ def test_beta_property_and_override() -> None:
     assert mem.max_norm == pytest.approx(float(np.linalg.norm(x.astype(np.float64), axis=1).max()), rel=1e-6)
     mem.remove([int(np.argmax(np.linalg.norm(x, axis=1)))])
     assert mem.max_norm == pytest.approx(float(np.sort(np.linalg.norm(x.astype(np.float64), axis=1))[-2]), rel=1e-6)
+
+
+def test_energy_is_computed_when_first_read_and_survives_pickling() -> None:
+    # The default call costs the retrieval alone; the energy pass runs when `energy` is first read and
+    # equals the eager value and DenseMemory.energy of the same states (same code path; scipy-checked above).
+    import pickle
+
+    rng = np.random.default_rng(5)
+    mem = DenseMemory.from_array(rng.standard_normal((300, 16)), beta=2.0)
+    q = rng.standard_normal((7, 16))
+    lazy = mem.retrieve(q, steps=2)
+    assert type(lazy._energy).__name__ == "Deferred"
+    np.testing.assert_array_equal(lazy.energy, mem.energy(lazy.states))
+    assert lazy._energy is lazy.energy  # computed once, then kept
+    back = pickle.loads(pickle.dumps(mem.retrieve(q, steps=2)))
+    np.testing.assert_array_equal(back.energy, lazy.energy)
+    assert mem.retrieve(q, return_energy=False).energy is None
+    one = mem.retrieve(q[0])
+    assert isinstance(one.energy, float)
+    np.testing.assert_allclose(one.energy, mem.energy(one.states))

@@ -38,23 +38,12 @@ from typing import Any
 from pydantic import ValidationError
 
 from ._data import load_data
-from ._measure import load_average, machine_facts, recall_at_k
+from ._measure import load_average, machine_facts
 from ._methods import count_rows, run_rows
 from ._output import format_table, plot_recall_speed, plot_scaling
 from ._spec import BenchRecord, BenchResults, BenchSpec, MachineFacts
 from ..errors import InputTypeError, InputValueError
 
-__all__ = [
-    "BenchRecord",
-    "BenchReport",
-    "BenchResults",
-    "BenchSpec",
-    "MachineFacts",
-    "load_results",
-    "plot_benchmark",
-    "recall_at_k",
-    "run_benchmark",
-]
 
 
 def _pydantic_message(exc: ValidationError) -> str:

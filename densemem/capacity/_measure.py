@@ -45,16 +45,6 @@ from ._report import (
 from ._search import interval, search_capacity
 from ..errors import InputTypeError, InputValueError
 
-__all__ = [
-    "CapacityCurve",
-    "CapacityReport",
-    "CapacitySpec",
-    "RobustnessReport",
-    "capacity_curve",
-    "estimate_capacity",
-    "plot_capacity",
-    "robustness_curve",
-]
 
 ROBUSTNESS_KINDS = cm.CORRUPTIONS + cm.DAMAGES
 DEFAULT_LEVELS = (0.0, 0.05, 0.1, 0.15, 0.2, 0.3, 0.4)

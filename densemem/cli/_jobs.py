@@ -96,7 +96,7 @@ def _new_png(flag: str, path: Any) -> None:
 
 
 def _run_tune(a: argparse.Namespace) -> tuple[Any, str]:
-    from ..tuning import _tune as tuning
+    from .. import tuning
     from ..dense import DenseMemory
     from ..errors import InputValueError
     from ._hints import collapse_hint
@@ -149,21 +149,24 @@ def _run_tune(a: argparse.Namespace) -> tuple[Any, str]:
 # ------------------------------------------------------------------ dedup
 def add_dedup(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
     p = sub(subs, "dedup", "group near-duplicates and write a keep/drop plan (nothing is removed)",
-            "densemem dedup archive-store plan/ --threshold 0.97 --grouping star")
+            "densemem dedup new.npy plan/ --stored archive-store --threshold 0.97")
     p.add_argument("input", help="store folder or embeddings file (.npy, .npz, .parquet, .csv, .tsv)")
     p.add_argument("out", help="folder for the plan files (groups.csv/json, keep.txt, drop.txt)")
+    p.add_argument("--stored", metavar="STORE",
+                   help="compare INPUT (a new batch) with this store folder and with itself; "
+                        "the store is read only (a .npy batch is memory-mapped and read in chunks)")
     p.add_argument("--column", help="array/column holding the vectors (embeddings files)")
     p.add_argument("--id-column", help="array/column holding ids (embeddings files)")
     p.add_argument("--threshold", type=float, default=0.98, help="cosine similarity for a near-duplicate (0.98)")
     p.add_argument("--method", choices=["graph", "attractor"], default="graph",
-                   help="graph: groups of pairs above the threshold; attractor: items whose retrieval ends on "
-                        "the same state (default graph)")
+                   help="graph: groups of pairs above the threshold; attractor: pairs judged by where their "
+                        "retrieval ends (default graph)")
+    p.add_argument("--grouping", choices=["star", "complete", "chain"], default="star",
+                   help="star (default): every dropped item meets the threshold against the item kept "
+                        "for it; complete: every pair in a group does; chain: connected components")
     p.add_argument("--candidates", choices=["auto", "exact", "ivf", "hnsw"], default="auto",
                    help="how pairs are found: exact search, or an IVF / HNSW index (default auto: by size)")
     p.add_argument("--k", type=int, default=32, help="candidate neighbours per item (default 32)")
-    p.add_argument("--grouping", choices=["linked", "star", "complete"], default="linked",
-                   help="linked: A~B~C joins A and C even below the threshold; star: every member within the "
-                        "threshold of its kept item; complete: every pair within it (default linked)")
     p.add_argument("--representative", choices=["medoid", "first"], default="medoid",
                    help="the item kept per group: the most central (medoid) or the first in input order")
     p.add_argument("--seed", type=int, default=0, help="random seed (index training, sampled checks)")
@@ -172,23 +175,44 @@ def add_dedup(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
     p.set_defaults(run=_run_dedup)
 
 
+def _load_batch(path: str, column: str | None, id_column: str | None) -> tuple[Any, Any]:
+    """A new batch: a .npy file memory-mapped (read in chunks later), other files read whole."""
+    p = Path(path)
+    if p.suffix.lower() == ".npy" and p.is_file() and column is None and id_column is None:
+        import numpy as np
+
+        arr = np.load(p, mmap_mode="r", allow_pickle=False)
+        return arr, None
+    return _load_data(path, column, id_column)
+
+
 def _run_dedup(a: argparse.Namespace) -> tuple[Any, str]:
     from ..duplicates._find import DedupSpec
 
-    values = dict(vars(a))
-    values["no_chaining"] = {"linked": "off"}.get(a.grouping, a.grouping)
-    try:
-        spec = make_spec(DedupSpec, values)
-    except SpecError as exc:
-        raise SpecError(str(exc).replace("--no-chaining", "--grouping")) from None
+    values = {k: v for k, v in vars(a).items() if k not in ("stored", "html")}
+    spec = make_spec(DedupSpec, values)
     html = _html_target(a, overwrite=a.overwrite)
-    data, ids = _load_data(a.input, a.column, a.id_column)
-    plan = spec.run(data, ids=ids, progress=None if not a.quiet else False)
+    stored = None
+    if a.stored is not None:
+        from ..dense import DenseMemory
+
+        if not Path(a.stored).is_dir():
+            raise SpecError(f"--stored must name a store folder; got {a.stored!r}.")
+        stored = DenseMemory.load(a.stored, mmap=True)
+        data, ids = _load_batch(a.input, a.column, a.id_column)
+    else:
+        data, ids = _load_data(a.input, a.column, a.id_column)
+    plan = spec.run(data, ids=ids, progress=None if not a.quiet else False, stored=stored)
     files = plan.write(a.out, overwrite=a.overwrite)
     s = plan.summary()
-    text = out.table(["items", "groups", "keep", "drop", "threshold", "candidates"],
-                     [[s["n_items"], s["n_groups"], s["n_keep"], s["n_drop"], s["threshold"], s["candidates"]]],
-                     title=f"near-duplicates -> {a.out}")
+    low = s["lowest_kept_similarity"]
+    cols = ["items", "groups", "keep", "drop", "threshold", "grouping", "lowest kept sim", "candidates"]
+    row = [s["n_items"], s["n_groups"], s["n_keep"], s["n_drop"], s["threshold"], s["grouping"],
+           "-" if low is None else f"{low:.4f}", s["candidates"]]
+    if stored is not None:
+        cols.insert(4, "of stored")
+        row.insert(4, s["n_duplicates_of_stored"])
+    text = out.table(cols, [row], title=f"near-duplicates -> {a.out}")
     if html is not None:
         from ._pages import dedup_page
 
@@ -221,7 +245,7 @@ def add_capacity(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None
 
 
 def _run_capacity(a: argparse.Namespace) -> tuple[Any, str]:
-    from ..capacity import _measure as capacity
+    from .. import capacity
     spec = make_spec(capacity.CapacitySpec, vars(a))
     for flag, path in (("--csv", spec.csv_path), ("--json-out", spec.json_path)):
         if path is not None and Path(path).exists():
@@ -313,7 +337,7 @@ def add_bench(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
 
 
 def _run_bench(a: argparse.Namespace) -> tuple[Any, str]:
-    from ..benchmark import _run as benchmark
+    from .. import benchmark
     names = {"queries": "n_queries", "query_file": "queries", "k": "ks", "binary": "include_binary"}
     html = _html_target(a, overwrite=a.overwrite)
     values = {names.get(k, k): v for k, v in vars(a).items() if v is not None and k != "html"}

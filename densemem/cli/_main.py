@@ -13,12 +13,13 @@ Examples
 from __future__ import annotations
 
 import argparse
+import contextlib
 import re
 import sys
 import traceback
 import warnings
 from pathlib import Path
-from typing import Any, Sequence
+from typing import Any, Iterator, Sequence
 
 import numpy as np
 
@@ -205,78 +206,45 @@ def _is_sharded(store: Any) -> bool:
     return (Path(store) / TOP_MANIFEST).is_file()
 
 
-class _Cluster:
-    """A sharded store run on a Dask scheduler: the two calls the commands use."""
-
-    def __init__(self, s: Any) -> None:
-        self.s = s
-
-    def retrieve(self, q: np.ndarray, beta: Any, **kw: Any) -> Any:
-        from ..sharding import _dask as distributed
-        return distributed.retrieve(self.s.store, q, beta, client=self.s.scheduler,
-                                    retries=self.s.retries, timeout=self.s.timeout, **kw)
-
-    def nearest(self, q: np.ndarray, k: Any, **kw: Any) -> Any:
-        from ..sharding import _dask as distributed
-        return distributed.nearest(self.s.store, q, k, client=self.s.scheduler,
-                                   retries=self.s.retries, timeout=self.s.timeout, **kw)
-
-
-def _open_store(s: Any) -> tuple[Any, float]:
-    """(memory-like, default beta): a store, a sharded store, or a sharded store on a cluster."""
-    from ..dense import DenseMemory
-
-    if _is_sharded(s.store):
-        from ..sharding._memory import open_sharded
-
-        sharded = open_sharded(s.store)
-        return (_Cluster(s) if s.scheduler else sharded), sharded.beta
-    if s.scheduler:
-        raise SpecError(f"--scheduler needs a sharded store (built with --shards); {str(s.store)!r} is a single store.")
-    mem = DenseMemory.load(s.store, mmap=s.mmap)
-    return mem, mem.beta
-
-
-def _load_queries(s: Any) -> tuple[Any, np.ndarray, list[Any], float]:
+@contextlib.contextmanager
+def _opened(s: Any) -> Iterator[tuple[Any, np.ndarray, list[Any]]]:
+    """(memory, queries, query names): the store of either kind, on the cluster when asked (one client)."""
+    from ..sharding import open_store
     from ..store._readers import read_embeddings
 
-    mem, default_beta = _open_store(s)
+    mem = open_store(s.store, mmap=s.mmap)
     emb = read_embeddings(s.queries, column=s.column, id_column=s.id_column)
     if emb.vectors.shape[0] == 0:
         raise InputValueError(f"QUERIES: {str(s.queries)!r} holds no query vectors (0 rows); "
                               "give a file with at least one row.")
     names = emb.ids.tolist() if emb.ids is not None else list(range(emb.vectors.shape[0]))
-    return mem, emb.vectors, names, default_beta
-
-
-def _chunks(q: np.ndarray, s: Any, a: argparse.Namespace, desc: str) -> Any:
-    starts = range(0, q.shape[0], s.chunk)
-    return out.progress(starts, total=len(starts), desc=desc, quiet=a.quiet)
+    if not s.scheduler:
+        yield mem, emb.vectors, names
+        return
+    if not hasattr(mem, "on_cluster"):
+        raise SpecError(f"--scheduler needs a sharded store (built with --shards); {str(s.store)!r} is a single store.")
+    with mem.on_cluster(s.scheduler, retries=s.retries, timeout=s.timeout) as cluster:
+        yield cluster, emb.vectors, names
 
 
 def _run_retrieve(a: argparse.Namespace) -> Result:
     s = make_spec(RetrieveSpec, vars(a), positional=("store", "queries"))
     if s.states_out is not None and (s.states_out.exists() or s.states_out.suffix != ".npy"):
         raise SpecError(f"--states-out must name a new .npy file; got {str(s.states_out)!r}.")
-    mem, q, names, default_beta = _load_queries(s)
-    parts = [mem.retrieve(q[i:i + s.chunk], s.beta, steps=s.steps, tol=s.tol, k=s.k, method=s.method)
-             for i in _chunks(q, s, a, "retrieve")]
-    states = np.concatenate([r.states for r in parts])
+    with _opened(s) as (mem, q, names):
+        r = mem.retrieve(q, s.beta, steps=s.steps, tol=s.tol, k=s.k, method=s.method, batch_size=s.chunk)
     if s.states_out is not None:
-        np.save(s.states_out, states, allow_pickle=False)
+        np.save(s.states_out, r.states, allow_pickle=False)
     rows, recs = [], []
-    for r in parts:
-        for j in range(r.states.shape[0]):
-            name = names[len(recs)]
-            energy = None if r.energy is None else float(r.energy[j])
-            recs.append({"query": name, "top_ids": r.top_ids[j], "top_weights": r.top_weights[j],
-                         "energy": energy, "converged": bool(r.converged[j]), "steps": r.steps})
-            rows.append([name, _tops(r.top_ids[j], r.top_weights[j]), energy, bool(r.converged[j])])
-    beta = default_beta if s.beta is None else s.beta
-    data = {"store": str(s.store), "beta": beta, "method": parts[0].method, "queries": recs,
+    for j, name in enumerate(names):
+        energy = None if r.energy is None else float(r.energy[j])
+        recs.append({"query": name, "top_ids": r.top_ids[j], "top_weights": r.top_weights[j],
+                     "energy": energy, "converged": bool(r.converged[j]), "steps": r.steps})
+        rows.append([name, _tops(r.top_ids[j], r.top_weights[j]), energy, bool(r.converged[j])])
+    data = {"store": str(s.store), "beta": r.beta, "method": r.method, "queries": recs,
             "states_out": None if s.states_out is None else str(s.states_out)}
     text = out.table(["query", "top ids (weight)", "energy", "converged"], rows,
-                     title=f"retrieve: beta={beta:g}, steps<={s.steps}, method={parts[0].method}")
+                     title=f"retrieve: beta={r.beta:g}, steps<={s.steps}, method={r.method}")
     return data, text
 
 
@@ -287,17 +255,12 @@ def _tops(ids: np.ndarray, weights: np.ndarray, show: int = 3) -> str:
 
 def _run_nearest(a: argparse.Namespace) -> Result:
     s = make_spec(NearestSpec, vars(a), positional=("store", "queries"))
-    mem, q, names, _ = _load_queries(s)
-    if s.index and _is_sharded(s.store):
-        raise SpecError("--index is not available on a sharded store; shards use faiss exact search.")
-    kw = {"index": True} if s.index else {}
-    parts = [mem.nearest(q[i:i + s.chunk], s.k, metric=s.metric, **kw) for i in _chunks(q, s, a, "nearest")]
-    ids = np.concatenate([r.ids for r in parts])
-    scores = np.concatenate([r.scores for r in parts])
-    recs = [{"query": n, "ids": i, "scores": sc} for n, i, sc in zip(names, ids, scores)]
-    rows = [[n, _tops(i, sc)] for n, i, sc in zip(names, ids, scores)]
+    with _opened(s) as (mem, q, names):
+        r = mem.nearest(q, s.k, metric=s.metric, index=s.index, batch_size=s.chunk)
+    recs = [{"query": n, "ids": i, "scores": sc} for n, i, sc in zip(names, r.ids, r.scores)]
+    rows = [[n, _tops(i, sc)] for n, i, sc in zip(names, r.ids, r.scores)]
     label = "inner product" if s.metric == "ip" else "squared L2"
-    text = out.table(["query", f"nearest ids ({label})"], rows, title=f"nearest: k={ids.shape[1]}")
+    text = out.table(["query", f"nearest ids ({label})"], rows, title=f"nearest: k={r.ids.shape[1]}")
     return {"store": str(s.store), "metric": s.metric, "queries": recs}, text
 
 

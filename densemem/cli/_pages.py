@@ -84,7 +84,7 @@ def dedup_page(plan: Any, source: str, out: str, *, plots: bool = True, largest:
         f"{s['n_keep']}, drop {s['n_drop']} (plan files in {out}; nothing was removed)."],
         tables=[(["items", "groups", "keep", "drop", "threshold", "candidates", "grouping", "seconds"],
                  [[s["n_items"], s["n_groups"], s["n_keep"], s["n_drop"], float(s["threshold"]), s["candidates"],
-                   {"off": "linked"}.get(s["no_chaining"], s["no_chaining"]), float(s["seconds"])]], "")])
+                   s.get("grouping", s.get("no_chaining")), float(s["seconds"])]], "")])
     order = np.argsort(-sizes, kind="stable")[:largest]
     rows = []
     for g in order:

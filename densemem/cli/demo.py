@@ -199,10 +199,10 @@ def _retrieval_stats(mem: DenseMemory, arc: Archive, q: np.ndarray, src: np.ndar
 
 def _dedup(arc: Archive, mem: DenseMemory, out: Path) -> tuple[dict[str, Any] | None, Any, dict[str, str]]:
     try:
-        from ..duplicates._find import find_duplicates
+        from ..duplicates._find import plan_duplicates
     except ImportError:
         return None, None, {}
-    plan = find_duplicates(mem, threshold=0.95, progress=False)
+    plan = plan_duplicates(mem, threshold=0.95, progress=False)
     label = np.full(len(arc.ids), -1)
     for g, (a, b) in enumerate(zip(plan.group_offsets[:-1], plan.group_offsets[1:])):
         label[plan.member_rows[a:b]] = g
@@ -219,7 +219,7 @@ def _dedup(arc: Archive, mem: DenseMemory, out: Path) -> tuple[dict[str, Any] | 
 
 def _tune(mem: DenseMemory, plan: Any, out: Path, plots: bool) -> tuple[dict[str, Any] | None, dict[str, str]]:
     try:
-        from ..tuning import _tune as tuning
+        from .. import tuning
     except ImportError:
         return None, {}
     kept = mem

@@ -1,81 +1,25 @@
-"""Retrieval orchestration for :class:`densemem.DenseMemory`: method choice, iteration, energy.
+"""The step loop: repeat one pass of a row source until the states stop moving; then the energy.
 
-The class in ``dense.py`` holds the public surface (validation, docstrings);
-these functions hold the loop: one pass of a method over the current states
-(:func:`reduce`), repeated by :func:`iterate` until the states stop moving.
+Written once, for every caller: one memory, a sharded store in this process and
+a sharded store on a Dask cluster all hand :func:`iterate` a
+:class:`~densemem.core.rows.RowSource`, and get the same
+:class:`~densemem.results.RetrievalResult`. The energy pass (:func:`energy`)
+is the same source reduced without weighted sums.
 """
 
 from __future__ import annotations
 
 import dataclasses
-from typing import TYPE_CHECKING, Any, Callable
+import math
+from typing import Any, Callable
 
-import faiss
 import numpy as np
 
-from . import partial as P
-from .candidates import bound_can_hold, certified_reduce, index_reduce
-from .exact import exact_reduce
-from ..results import RetrievalResult
+from .candidates import CertifiedOptions
+from .rows import AUTO_K_START, RowSource, finish
+from ..results import Deferred, RetrievalResult
 
-if TYPE_CHECKING:
-    from ..dense import DenseMemory
-
-AUTO_K_START = 16  # auto: first candidate count
-AUTO_SMALL_N = 2048  # auto: below this many stored rows, exact is cheaper than any search
-AUTO_GIVE_UP = 1e4  # auto: a first bound above tol_mass * this goes exact without growing
-
-
-def reduce(
-    mem: "DenseMemory", states: np.ndarray, beta: float, *, k: int, method: str, need_acc: bool, opts: dict[str, Any]
-) -> tuple[P.Finished, dict[str, Any]]:
-    """One pass of the chosen method: softmax statistics for ``states``."""
-    x = mem._table.x
-
-    def exact(q: np.ndarray, kk: int, acc: bool) -> P.Partial:
-        return exact_reduce(q, x, beta, k=kk, tile_mib=mem.tile_mib, n_threads=mem.n_threads, need_acc=acc)
-
-    info: dict[str, Any] = {}
-    cert = opts.get("certified")
-    if method == "auto" and len(mem) < AUTO_SMALL_N:
-        method = "exact"  # a search's fixed cost exceeds two small products
-    if method == "auto":
-        cert = dataclasses.replace(opts["certified"], give_up=AUTO_GIVE_UP, k_start=max(k, AUTO_K_START))
-        can = bound_can_hold(beta, np.linalg.norm(states, axis=1), mem.max_norm, len(mem), k, cert.tol_mass)
-        method = "certified" if can.any() else "exact"
-        if method == "certified" and not can.all():
-            part, info = auto_split(mem, states, beta, k, need_acc, cert, can, exact)
-            return P.finish(part), info
-    if method == "exact":
-        part = exact(states, k, need_acc)
-    elif method == "certified":
-        part, info = certified_reduce(x, states, beta, k=k, need_acc=need_acc, opts=cert, exact=exact)
-    else:
-        index = mem._fresh_index(where="DenseMemory.retrieve")
-        part, info = index_reduce(
-            x, states, beta, k=k, n_candidates=opts["n_candidates"], need_acc=need_acc,
-            search=index.search, tile_mib=mem.tile_mib,
-        )
-    return P.finish(part), info
-
-def auto_split(mem: "DenseMemory", states, beta, k, need_acc, cert, can, exact):  # type: ignore[no-untyped-def]
-    """auto: certified for queries whose bound can hold, exact for the rest."""
-    from .candidates import _put
-
-    part = P.empty(states.shape[0], mem.dim, k, need_acc=need_acc)
-    sub, info_c = certified_reduce(mem._table.x, states[can], beta, k=k, need_acc=need_acc, opts=cert, exact=exact)
-    _put(part, np.flatnonzero(can), sub, np.arange(int(can.sum())))
-    rest = np.flatnonzero(~can)
-    _put(part, rest, exact(states[rest], k, need_acc), np.arange(rest.size))
-    n_q = states.shape[0]
-    info = {
-        "mass_bound": np.zeros(n_q),
-        "k_used": np.full(n_q, len(mem), dtype=np.int64),
-        "fell_back": ~can,
-    }
-    for key in info:
-        info[key][can] = info_c[key]
-    return part, info
+__all__ = ["Steps", "run_steps", "iterate", "energy", "shape_result"]
 
 
 @dataclasses.dataclass(slots=True)
@@ -98,7 +42,6 @@ def run_steps(one_pass: OnePass, q: np.ndarray, *, steps: int, tol: float, max_n
 
     ``one_pass(states)`` returns (new states, top ids, top weights, per-query
     info arrays). A query stops once its state moves by at most ``tol * M``.
-    Shared by one machine (:func:`iterate`) and sharded stores (``_shard_ops``).
     """
     n_q = q.shape[0]
     state = q.copy()
@@ -130,64 +73,64 @@ def run_steps(one_pass: OnePass, q: np.ndarray, *, steps: int, tol: float, max_n
 
 
 def iterate(
-    mem: "DenseMemory",
+    source: RowSource,
     q: np.ndarray,
-    was_1d: bool,
+    *,
     beta: float,
     steps: int,
     tol: float,
     k: int,
     method: str,
+    cert: CertifiedOptions,
     return_energy: bool,
-    opts: dict[str, Any],
-) -> RetrievalResult:
-    def one_pass(states: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, dict[str, Any]]:
-        fin, info = reduce(mem, states, beta, k=k, method=method, need_acc=True, opts=opts)
-        assert fin.states is not None
-        return fin.states, mem._table.ids_at(fin.top_i), fin.top_w, info
+    count: int,
+    max_norm: float,
+    lazy_energy: bool = False,
+) -> dict[str, Any]:
+    """The fields of a :class:`RetrievalResult` for 2-D queries ``q`` (see :func:`shape_result`)."""
+    certified = False
 
-    run = run_steps(one_pass, q, steps=steps, tol=tol, max_norm=mem.max_norm, k=k)
-    energy = energy_of(mem, run.states, beta, method, opts) if return_energy else None
-    info_all = run.info
-    if "mass_bound" in info_all:
-        info_all["state_bound"] = 2.0 * mem.max_norm * info_all["mass_bound"]
-    used = method
-    if method == "auto":
-        certified_any = "fell_back" in info_all and not bool(np.all(info_all["fell_back"]))
-        used = "certified" if certified_any else "exact"
-    return shape_result(
-        was_1d,
-        states=run.states,
-        top_ids=run.ids,
-        top_weights=run.weights,
-        energy=energy,
-        steps=run.done,
-        converged=run.converged,
-        method=used,
-        **info_all,
+    def one_pass(states: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, dict[str, Any]]:
+        nonlocal certified
+        sp = source.reduce(states, beta, k=k, need_acc=True, cert=cert)
+        fin, ids = finish(sp)
+        assert fin.states is not None
+        if sp.bound is not None:
+            certified = certified or sp.certified
+        info = {"mass_bound": sp.bound, "k_used": sp.k_used, "fell_back": sp.fell_back}
+        info = {key: v for key, v in info.items() if v is not None}
+        return fin.states, ids, fin.top_w, info
+
+    run = run_steps(one_pass, q, steps=steps, tol=tol, max_norm=max_norm, k=k)
+    info = run.info
+    if "mass_bound" in info:
+        info["state_bound"] = 2.0 * max_norm * info["mass_bound"]
+    used = method if method != "auto" else ("certified" if certified else "exact")
+    e: Any = None
+    if return_energy:
+        states = run.states
+        e = Deferred(lambda: energy(source, states, beta, cert=cert, count=count, max_norm=max_norm))
+        if not lazy_energy:
+            e = e()
+    return dict(
+        states=run.states, top_ids=run.ids, top_weights=run.weights, _energy=e,
+        steps=run.done, converged=run.converged, method=used, beta=beta, **info,
     )
 
 
-def energy_of(mem: "DenseMemory", states: np.ndarray, beta: float, method: str, opts: dict[str, Any]) -> np.ndarray:
-    if "certified" in opts:
-        cert = opts["certified"]
-        opts = {**opts, "certified": dataclasses.replace(cert, k_start=max(cert.k_start, AUTO_K_START))}
-    fin, _ = reduce(mem, states, beta, k=0, method=method, need_acc=False, opts=opts)
+def energy(
+    source: RowSource, states: np.ndarray, beta: float, *, cert: CertifiedOptions, count: int, max_norm: float
+) -> np.ndarray:
+    """``-lse/beta + |xi|^2/2 + log(N)/beta + M^2/2`` from one pass without weighted sums.
+
+    Certified searches of this pass start at >= 16 candidates.
+    """
+    sp = source.reduce(states, beta, k=0, need_acc=False, cert=dataclasses.replace(
+        cert, k_start=max(cert.k_start, AUTO_K_START)))
+    with np.errstate(divide="ignore"):
+        lse = sp.part.m + np.log(sp.part.l)
     sq = np.einsum("ij,ij->i", states.astype(np.float64), states.astype(np.float64))
-    n = len(mem)
-    m = mem.max_norm
-    return -fin.lse / beta + 0.5 * sq + np.log(n) / beta + 0.5 * m * m
-
-
-def candidate_recall(mem: "DenseMemory", q: np.ndarray, n_cand: int, k: int, n_sample: int) -> float:
-    """Mean fraction of faiss exact top-kc found by the index, on a query sample."""
-    kc = min(len(mem), max(n_cand, k))
-    rng = np.random.default_rng(0)
-    sel = np.sort(rng.choice(q.shape[0], min(n_sample, q.shape[0]), replace=False))
-    _, exact_pos = faiss.knn(q[sel], mem._table.x, kc, metric=faiss.METRIC_INNER_PRODUCT)
-    _, got = mem._fresh_index(where="DenseMemory.retrieve").search(q[sel], kc)
-    hits = [np.intersect1d(a, b[b >= 0]).size for a, b in zip(exact_pos, got)]
-    return float(np.mean(hits) / kc)
+    return -lse / beta + 0.5 * sq + math.log(count) / beta + 0.5 * max_norm * max_norm
 
 
 def _store_info(acc: dict[str, Any], info: dict[str, Any], active: np.ndarray, n_q: int) -> None:
@@ -201,16 +144,16 @@ def _store_info(acc: dict[str, Any], info: dict[str, Any], active: np.ndarray, n
             acc[key] = val
 
 
-def replace(result: RetrievalResult, **changes: Any) -> RetrievalResult:
-    return dataclasses.replace(result, **changes)
-
-
 def shape_result(was_1d: bool, **fields: Any) -> RetrievalResult:
+    """A :class:`RetrievalResult`, without the query axis for a 1-D query."""
     if was_1d:
         for key, val in fields.items():
-            if isinstance(val, np.ndarray) and val.ndim >= 1:
+            if isinstance(val, np.ndarray) and val.ndim >= 1 and key != "_energy":
                 fields[key] = val[0]
-        if fields.get("energy") is not None:
-            fields["energy"] = float(fields["energy"])
+        e = fields.get("_energy")
+        if isinstance(e, Deferred):
+            fields["_energy"] = Deferred(lambda: float(e()[0]))
+        elif e is not None:
+            fields["_energy"] = float(np.asarray(e).reshape(-1)[0])
         fields["converged"] = bool(fields["converged"])
     return RetrievalResult(**fields)

@@ -32,14 +32,22 @@ class PatternTable:
 
     # -- trusted construction (store loads, shards) ------------------------
     @classmethod
-    def trusted(cls, x: np.ndarray, ids: np.ndarray, *, normalize: bool) -> "PatternTable":
-        """Wrap already-validated arrays (no copy; ``x`` may be read-only/mmapped)."""
+    def trusted(cls, x: np.ndarray, ids: np.ndarray, *, normalize: bool, next_id: int = 0) -> "PatternTable":
+        """Wrap already-validated arrays (no copy; ``x`` may be read-only/mmapped).
+
+        ``next_id`` (int ids): the next id to give, at least one above the largest held.
+        """
         t = cls(int(x.shape[1]), normalize=normalize)
         t._x = x
         t._ids = ids
         t._pos = None  # built lazily
-        t._next_id = int(ids.max()) + 1 if ids.dtype.kind == "i" and ids.size else 0
+        t._next_id = max(int(ids.max()) + 1 if ids.dtype.kind == "i" and ids.size else 0, int(next_id))
         return t
+
+    @property
+    def next_id(self) -> int:
+        """The next integer id :meth:`prepare` gives when none are passed."""
+        return self._next_id
 
     @property
     def x(self) -> np.ndarray:

@@ -1,4 +1,4 @@
-"""Argument checks for :func:`densemem.duplicates.find_duplicates` (the public boundary)."""
+"""Argument checks for :func:`densemem.duplicates.plan_duplicates` (the public boundary)."""
 
 from __future__ import annotations
 
@@ -12,12 +12,12 @@ import numpy as np
 from .._validation import as_float_matrix, check_beta, check_ids, check_positive_int
 from ..errors import DenseMemWarning, InputTypeError, InputValueError
 
-__all__ = ["Options", "check_options", "check_score", "input_matrix", "normalised_copy"]
+__all__ = ["Options", "batch_matrix", "check_options", "check_score", "input_matrix", "normalised_copy"]
 
-WHERE = "find_duplicates"
+WHERE = "plan_duplicates"
 METHODS = ("graph", "attractor")
 SOURCES = ("auto", "exact", "ivf", "hnsw")
-CHAIN_MODES = ("off", "star", "complete")
+GROUPINGS = ("star", "complete", "chain")
 RETRIEVALS = ("exact", "auto", "certified")
 
 
@@ -27,7 +27,7 @@ class Options:
     method: str
     candidates: str
     k: int
-    no_chaining: str
+    grouping: str
     nlist: int | None
     nprobe: int
     check_sample: int
@@ -60,31 +60,13 @@ def _choice(value: Any, name: str, allowed: tuple[str, ...]) -> str:
     return value
 
 
-def _chain_mode(value: Any) -> str:
-    if value is False or value is None:
-        return "off"
-    if value is True:
-        return "complete"
-    return _choice(value, "no_chaining", CHAIN_MODES)
-
-
 def check_options(**kw: Any) -> Options:
     """Validate every scalar option; return them typed."""
     t = check_threshold(kw["threshold"])
     method = _choice(kw["method"], "method", METHODS)
     cands = _choice(kw["candidates"], "candidates", SOURCES)
-    chain = _chain_mode(kw["no_chaining"])
+    grouping = _choice(kw["grouping"], "grouping", GROUPINGS)
     if method == "attractor":
-        if cands != "auto":
-            raise InputValueError(
-                f"{WHERE}: `candidates` applies to method='graph' only; got candidates={cands!r} "
-                "with method='attractor'."
-            )
-        if chain != "off":
-            raise InputValueError(
-                f"{WHERE}: `no_chaining` applies to method='graph' only; got no_chaining={kw['no_chaining']!r} "
-                "with method='attractor'."
-            )
         if t >= 1.0:
             raise InputValueError(
                 f"{WHERE}: method='attractor' needs `threshold` < 1 (beta = 2 / (1 - threshold)); "
@@ -104,7 +86,7 @@ def check_options(**kw: Any) -> Options:
         method=method,
         candidates=cands,
         k=check_positive_int(kw["k"], name="k", where=WHERE),
-        no_chaining=chain,
+        grouping=grouping,
         nlist=None if kw["nlist"] is None else check_positive_int(kw["nlist"], name="nlist", where=WHERE),
         nprobe=check_positive_int(kw["nprobe"], name="nprobe", where=WHERE),
         check_sample=check_positive_int(kw["check_sample"], name="check_sample", where=WHERE, minimum=0),
@@ -192,3 +174,86 @@ def normalised_copy(x: np.ndarray, ids: np.ndarray, chunk: int) -> tuple[np.ndar
         rows = valid[a : a + chunk]
         xn[a : a + chunk] = x[rows].astype(np.float64) / norms[rows, None]
     return xn, valid, zero
+
+
+def check_stored(stored: Any) -> Any:
+    """``stored`` must be a DenseMemory (for instance ``DenseMemory.load(folder, mmap=True)``)."""
+    from ..dense import DenseMemory
+
+    if not isinstance(stored, DenseMemory):
+        raise InputTypeError(
+            f"{WHERE}: `stored` must be a DenseMemory (e.g. DenseMemory.load(folder, mmap=True)); "
+            f"got {type(stored).__name__}."
+        )
+    if len(stored) == 0:
+        raise InputValueError(f"{WHERE}: `stored` holds no patterns; there is nothing to compare against.")
+    return stored
+
+
+def batch_matrix(data: Any, ids: Any, stored: Any) -> tuple[np.ndarray, np.ndarray]:
+    """The new batch as it is (a memory map stays one: nothing is converted whole) and its ids.
+
+    Finiteness is checked chunk by chunk later, while the rows are normalised.
+    Default ids continue the stored memory's integer ids (largest + 1, + 2, ...);
+    a memory with string ids needs explicit ``ids``. Ids shared with the stored
+    memory are refused.
+    """
+    from ..dense import DenseMemory
+
+    if isinstance(data, DenseMemory):
+        if ids is not None:
+            raise InputValueError(f"{WHERE}: `ids` must be None when `data` is a DenseMemory (its own ids are used).")
+        x, ids = data.patterns, data.ids
+    elif isinstance(data, (str, bytes)) or data is None:
+        raise InputTypeError(f"{WHERE}: `data` must be a numeric array; got {type(data).__name__}.")
+    else:
+        try:
+            x = data if isinstance(data, np.ndarray) else np.asarray(data)
+        except ValueError as exc:
+            raise InputValueError(f"{WHERE}: `data` must be a rectangular numeric array; got ragged input ({exc}).") from None
+        if x.dtype.kind not in "fiu":
+            raise InputTypeError(f"{WHERE}: `data` must hold real numbers (float or int); got dtype {x.dtype}.")
+        if x.ndim != 2:
+            raise InputValueError(f"{WHERE}: `data` must be 2-D (n_rows, n_features); got {x.ndim}-D of shape {x.shape}.")
+    if x.shape[0] == 0:
+        raise InputValueError(f"{WHERE}: `data` is empty (0 rows); pass at least one row.")
+    if x.shape[1] != stored.dim:
+        raise InputValueError(
+            f"{WHERE}: `data` has {x.shape[1]} features per row but the `stored` memory has {stored.dim}; "
+            "a batch must have the store's width."
+        )
+    sids = stored.ids
+    if ids is None:
+        if sids.dtype.kind not in "iu":
+            raise InputValueError(
+                f"{WHERE}: the `stored` memory has string ids, so `ids` for the new rows must be given "
+                "(one unique id per row, none already stored)."
+            )
+        start = int(sids.max()) + 1
+        return x, np.arange(start, start + x.shape[0], dtype=np.int64)
+    bids = check_ids(ids, n=x.shape[0], where=WHERE)
+    if (bids.dtype.kind == "U") != (sids.dtype.kind == "U"):
+        raise InputTypeError(
+            f"{WHERE}: `ids` must be of the stored memory's kind ({'strings' if sids.dtype.kind == 'U' else 'integers'}); "
+            f"got {'strings' if bids.dtype.kind == 'U' else 'integers'}."
+        )
+    shared = np.flatnonzero(np.isin(bids, sids))
+    if shared.size:
+        raise InputValueError(
+            f"{WHERE}: `ids` must be new; {shared.size} id(s) are already in the `stored` memory "
+            f"(first: {bids[shared[0]].item()!r} at row {int(shared[0])})."
+        )
+    return x, bids
+
+
+def finite_unit_chunk(block: np.ndarray, start: int, name: str = "data") -> tuple[np.ndarray, np.ndarray]:
+    """Float64 norms and a unit float32 copy of one chunk (zero rows stay zero); names a NaN/inf row."""
+    b = np.asarray(block, dtype=np.float64)
+    finite = np.isfinite(b)
+    if not finite.all():
+        bad = int(np.flatnonzero(~finite.all(axis=1))[0])
+        what = "NaN" if np.isnan(b[bad]).any() else "infinity"
+        raise InputValueError(f"{WHERE}: `{name}` contains {what} at row {start + bad}; clean or drop it first.")
+    norms = np.sqrt(np.einsum("ij,ij->i", b, b))
+    safe = np.where(norms > 0, norms, 1.0)
+    return norms, (b / safe[:, None]).astype(np.float32)

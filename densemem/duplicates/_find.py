@@ -1,11 +1,14 @@
 """Near-duplicate groups: find them, explain them, and plan their removal.
 
-:func:`find_duplicates` links items whose cosine similarity reaches a threshold
-(graph method, faiss candidates + connected components) or groups items whose
-dense-memory retrieval ends in the same state (attractor method). It returns a
-:class:`DuplicatePlan`: groups with a representative each, within-group
-similarity, a keep-list and a drop-list. Nothing is ever removed; the input is
-read only.
+:func:`plan_duplicates` judges every pair of items at cosine similarity at or
+above a threshold (faiss candidates, re-scored in float64), by the similarity
+alone (graph method) or by the dense-memory dynamics (attractor method), and
+groups the pairs it keeps. The default grouping is a star around the kept item:
+every item planned for dropping meets the threshold against the item kept for
+it. It returns a :class:`DuplicatePlan`: groups with a representative each,
+within-group similarity, a keep-list and a drop-list (with the id kept for each
+dropped item). Against a stored memory it plans a new batch only. Nothing is
+ever removed; inputs are read only.
 """
 
 from __future__ import annotations
@@ -13,6 +16,7 @@ from __future__ import annotations
 import dataclasses
 import sys
 import time
+import warnings
 from typing import Any, Literal
 
 import numpy as np
@@ -20,29 +24,32 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from . import _candidates as C
 from . import _groups as G
-from ._attractor import attractor_groups, beta_for_threshold
+from ._attractor import attractor_edges, beta_for_threshold
 from ._checks import (
+    WHERE,
     Options,
     check_options,
     check_score,
+    check_stored,
     input_matrix,
     normalised_copy,
 )
 from ._plan import DuplicateGroup, DuplicatePlan
 from .._validation import as_rng
-from ..errors import InputValueError, MissingExtraError
+from ..errors import DenseMemWarning, InputValueError, MissingExtraError
 
-__all__ = ["DedupSpec", "DuplicateGroup", "DuplicatePlan", "find_duplicates"]
+__all__ = ["DedupSpec", "DuplicateGroup", "DuplicatePlan", "plan_duplicates"]
 
 
-def find_duplicates(
+def plan_duplicates(
     data: Any,
     threshold: float = 0.98,
     *,
     method: Literal["graph", "attractor"] = "graph",
+    grouping: Literal["star", "complete", "chain"] = "star",
+    stored: Any = None,
     candidates: Literal["auto", "exact", "ivf", "hnsw"] = "auto",
     k: int = 32,
-    no_chaining: bool | Literal["off", "star", "complete"] = False,
     representative: Any = "medoid",
     ids: Any = None,
     nlist: int | None = None,
@@ -63,38 +70,52 @@ def find_duplicates(
     ----------
     data : array-like of shape (n_items, n_features) or DenseMemory
         Embeddings (any norm; a normalised copy is used) or a memory, whose
-        patterns and ids are used. Never modified.
+        patterns and ids are used. Never modified. With ``stored`` this is the
+        new batch; a memory-mapped array (``np.load(path, mmap_mode="r")``) is
+        then read chunk by chunk.
     threshold : float in (-1, 1], default 0.98
         Items at cosine similarity >= ``threshold`` are near-duplicates (with
         a tolerance of 1e-6, so ``1.0`` finds exact copies).
     method : {"graph", "attractor"}, default "graph"
-        "graph": an edge per pair above the threshold, groups are connected
-        components. "attractor": retrieve from every item at beta
-        ``2 / (1 - threshold)`` until convergence; items whose final states
-        coincide form a group (see Notes).
+        Which pairs at or above the threshold are joined. "graph": all of
+        them. "attractor": those whose two items end in the same state when
+        the dense memory of their connected component is retrieved from each
+        item at beta ``2 / (1 - threshold)`` (see Notes).
+    grouping : {"star", "complete", "chain"}, default "star"
+        How joined pairs become groups. "star": greedy stars around a seed
+        (the representative): every member meets the threshold against the
+        item kept for it. "complete": every pair in a group meets the
+        threshold (greedy complete linkage; more, smaller groups). "chain":
+        connected components (single linkage): A~B~C groups A with C even
+        below the threshold; each group's smallest pairwise similarity is
+        reported and a DenseMemWarning is raised when a group holds a pair
+        below ``2 * threshold - 1`` (twice the threshold's cosine distance).
+    stored : DenseMemory, optional
+        Compare the new batch ``data`` with this stored memory (e.g.
+        ``DenseMemory.load(folder, mmap=True)``) and with itself, without
+        changing or rebuilding the store. A new item with a stored item at or
+        above the threshold is planned for dropping as a duplicate of its most
+        similar stored item; the other new items are grouped among themselves
+        as without ``stored``. Stored items are never planned for dropping.
+        Graph method, candidates "auto", "exact" or "ivf".
     candidates : {"auto", "exact", "ivf", "hnsw"}, default "auto"
-        Graph method: where candidate pairs come from. "exact" is a faiss flat
-        range search (every pair); "ivf" a range search in a faiss inverted
-        file (``nlist`` lists, ``nprobe`` probed, doubled until the pair recall
-        on ``check_sample`` rows reaches ``target_recall``; a pair counts when
-        found from either end); "hnsw" the ``k``
-        approximate nearest neighbours of each item. "auto" picks exact while
-        ``n * n * d <= 2**38``, IVF above; the plan reports the choice.
+        Where candidate pairs come from. "exact" is a faiss flat range search
+        (every pair); "ivf" a range search in a faiss inverted file (``nlist``
+        lists, ``nprobe`` probed, doubled until the pair recall on
+        ``check_sample`` rows reaches ``target_recall``; a pair counts when
+        found from either end); "hnsw" the ``k`` approximate nearest
+        neighbours of each item. "auto" picks exact while ``n * n * d <=
+        2**38``, IVF above; the plan reports the choice.
     k : int, default 32
         Neighbours per item for "hnsw".
-    no_chaining : bool or {"off", "star", "complete"}, default False
-        Single linkage lets A~B~C group A with C below the threshold.
-        "complete" (or True) splits components greedily so every pair in a
-        group meets the threshold; "star" only so every member is within the
-        threshold of its representative (a hub may still join two families
-        that are each close to it).
     representative : "medoid", "first" or array of shape (n_items,)
         Which member is kept: the one with the largest summed similarity to
         the others, the first in input order, or the highest quality score
-        (ties: the first). With ``no_chaining`` the rule picks the seeds
-        (medoid: the item with most neighbours).
+        (ties: the first). With "star" and "complete" the rule picks the
+        seeds (medoid: the item with most neighbours).
     ids : sequence of int or str, optional
-        One unique id per row (default 0..n-1). Not with a DenseMemory.
+        One unique id per row (default 0..n-1; with ``stored``, the stored
+        memory's largest integer id + 1, + 2, ...). Not with a DenseMemory.
     nlist, nprobe, check_sample, target_recall
         IVF settings (default nlist about 4 * sqrt(n), a power of two) and
         the sampled recall check (0 rows: no check, no tuning).
@@ -104,8 +125,7 @@ def find_duplicates(
     work_mib : float, default 64
         Memory budget of one query chunk.
     return_pairs : bool, default False
-        Also return every similarity edge (``pair_ids``, ``pair_similarity``)
-        to explain the groups.
+        Also return every pair judged (``pair_ids``, ``pair_similarities``).
     progress : bool, optional
         Progress bars on stderr (needs tqdm). Default: when stderr is a terminal.
     seed : int or Generator, default 0
@@ -118,35 +138,46 @@ def find_duplicates(
     Raises
     ------
     InputValueError
-        Threshold outside (-1, 1], NaN/inf rows (the row is named), empty
-        input, scores or ids of the wrong length, unknown option values.
+        Threshold NaN or outside (-1, 1], NaN/inf rows (the row is named),
+        empty input, scores or ids of the wrong length, a batch whose width
+        differs from the stored memory's, batch ids already stored, unknown
+        option values.
     InputTypeError
-        Non-numeric data, threshold or scores.
+        Non-numeric data, threshold or scores; ``stored`` not a DenseMemory.
     MissingExtraError
         ``progress=True`` without tqdm.
 
     Warns
     -----
     DenseMemWarning
-        Zero vectors were left out (listed in ``excluded_zero_ids``, kept).
+        Zero vectors were left out (listed in ``excluded_zero_ids``, kept);
+        ``grouping="chain"`` joined a pair far below the threshold.
 
     Notes
     -----
+    Why star groups by default: a plan is applied by dropping items, and what
+    a drop loses is bounded by the similarity of the dropped item to the item
+    kept for it; stars guarantee exactly that bound (``>= threshold``) with
+    the fewest splits of a family. Complete groups guarantee more (every pair)
+    but split families whose copies are close to the original and less close
+    to each other; chains guarantee nothing (on scikit-learn's digits at
+    threshold 0.9 one chain holds 1790 of the 1797 rows, all ten classes).
+
     The attractor beta is the bifurcation point of a pair at the threshold:
     for unit vectors at cosine ``c`` the blended state is stable iff
-    ``beta (1 - c) / 2 < 1`` [1]_ (see :mod:`densemem.duplicates._attractor`). The
-    attractor method is soft near the threshold, and many rivals just below
-    it (dense clusters) can pull items into one blended state; it agrees with
-    the graph method on well-separated groups. It costs ``steps`` exact
-    retrievals over all rows (``retrieval="auto"``: certified where its bound
-    can hold, exact otherwise), so it suits tens of thousands of rows, not millions.
+    ``beta (1 - c) / 2 < 1`` [1]_ (see :mod:`densemem.duplicates._attractor`).
+    The dynamics only judge candidate pairs (they can split a pair, never
+    join one below the threshold), then ``grouping`` applies, so the
+    attractor method keeps the same guarantee. Cost: per step, the sum over
+    components of ``size**2 * d``.
 
-    Cost of the graph method: exact search is ``n * n * d``; IVF is one
+    Cost of the candidate search: exact search is ``n * n * d``; IVF is one
     coarse assignment (``n * nlist * d``, shared by adding and searching) plus
     ``n * nprobe * n / nlist * d`` for the range search; candidate pairs are
-    re-scored in float64. Group statistics cost ``size**2 * d`` per group, so
-    a loose threshold that chains most rows into one component is slow:
-    raise the threshold or use ``no_chaining``.
+    re-scored in float64. Group statistics cost ``size**2 * d`` per group.
+    Against a stored memory: a faiss index holds a normalised float32 copy of
+    the stored patterns; the batch is read in chunks and only the new items
+    that match no stored item are kept in memory for the within-batch search.
 
     References
     ----------
@@ -156,36 +187,69 @@ def find_duplicates(
     Examples
     --------
     >>> import numpy as np
-    >>> from densemem.duplicates import find_duplicates
+    >>> from densemem.duplicates import plan_duplicates
     >>> x = np.array([[1.0, 0.0], [0.99, 0.05], [0.0, 1.0]])
-    >>> plan = find_duplicates(x, threshold=0.99)
-    >>> plan.group(0).ids.tolist(), plan.drop_ids.tolist()
-    ([0, 1], [1])
+    >>> plan = plan_duplicates(x, threshold=0.99)
+    >>> plan.group(0).ids.tolist(), plan.drop_ids.tolist(), plan.duplicate_of_ids.tolist()
+    ([0, 1], [1], [0])
     """
     t0 = time.perf_counter()
     opt = check_options(
-        threshold=threshold, method=method, candidates=candidates, k=k, no_chaining=no_chaining,
+        threshold=threshold, method=method, candidates=candidates, k=k, grouping=grouping,
         nlist=nlist, nprobe=nprobe, check_sample=check_sample, target_recall=target_recall,
         beta=beta, max_steps=max_steps, retrieval=retrieval, work_mib=work_mib, progress=progress,
     )
-    x, all_ids = input_matrix(data, ids)
-    rule, score = check_score(representative, x.shape[0])
     bar = _progress_factory(opt.show_progress)
     rng = as_rng(seed)
+    if stored is not None:
+        from ._against import plan_against
+
+        check_stored(stored)
+        if opt.method != "graph" or opt.candidates == "hnsw":
+            raise InputValueError(
+                f"{WHERE}: `stored` works with method='graph' and candidates 'auto', 'exact' or 'ivf'; "
+                f"got method={opt.method!r}, candidates={opt.candidates!r}."
+            )
+        plan = plan_against(data, stored, ids, representative, opt, rng, bar, t0)
+        return plan if return_pairs else _without_pairs(plan)
+    x, all_ids = input_matrix(data, ids)
+    rule, score = check_score(representative, x.shape[0])
     chunk = C.chunk_rows_for(x.shape[1], opt.work_mib)
     xn, valid, zero = normalised_copy(x, all_ids, chunk)
     vscore = None if score is None else score[valid]
-    if opt.method == "graph":
-        groups, reps, source, params, pairs = _graph(xn, opt, rule, vscore, rng, chunk, bar)
-    else:
-        groups, reps, source, params, pairs = _attractor(xn, opt, chunk, bar)
+    groups, reps, source, params, pairs = judge_and_group(xn, opt, rule, vscore, rng, chunk, bar)
     stats = G.summarise(xn, groups, rule, vscore, reps)
+    warn_far_chains(opt, stats["min"], groups)
     plan = _plan(x.shape[0], all_ids, valid, zero, groups, stats, opt, rule, source, params, pairs, t0)
-    return plan if return_pairs or pairs is None else _without_pairs(plan)
+    return plan if return_pairs else _without_pairs(plan)
 
 
-def _graph(xn: np.ndarray, opt: Options, rule: str, score: np.ndarray | None, rng: np.random.Generator,
-           chunk: int, bar: Any) -> tuple:
+FAR_FACTOR = 2.0
+"""A chain is "far below" the threshold when a pair in it is more than twice the
+threshold's cosine distance apart: ``1 - c > 2 (1 - t)``, i.e. ``c < 2 t - 1``."""
+
+
+def warn_far_chains(opt: Options, min_sim: np.ndarray, groups: G.Packed) -> None:
+    """DenseMemWarning when a chain group holds a pair far below the threshold."""
+    if opt.grouping != "chain" or min_sim.size == 0:
+        return
+    limit = 1.0 - FAR_FACTOR * (1.0 - opt.threshold)
+    far = np.flatnonzero(min_sim < limit)
+    if far.size == 0:
+        return
+    worst = int(far[np.argmin(min_sim[far])])
+    warnings.warn(
+        f"{WHERE}: grouping='chain' joined items far below the threshold {opt.threshold:g}: "
+        f"{far.size} group(s) hold a pair at cosine < {limit:.4g} (lowest {min_sim[worst]:.4g}, in a group of "
+        f"{int(groups.sizes[worst])}); items planned for dropping there may be far from the item kept. "
+        "Use grouping='star' (the default) or 'complete'.",
+        DenseMemWarning,
+        stacklevel=3,
+    )
+
+
+def find_pairs(xn: np.ndarray, opt: Options, rng: np.random.Generator, chunk: int, bar: Any) -> tuple:
+    """Every candidate pair at or above the threshold (re-scored), its source and settings."""
     n, d = xn.shape
     source, reason = C.choose_source(n, d, opt.candidates)
     sample = None
@@ -204,51 +268,68 @@ def _graph(xn: np.ndarray, opt: Options, rule: str, score: np.ndarray | None, rn
     else:
         pairs = C.hnsw_pairs(xn, opt.threshold, k=opt.k, m=32, ef_search=None, chunk=chunk, sample=sample,
                              progress=bar)
-    params = {"chosen_because": reason, **pairs.params}
-    adj = G.adjacency(n, pairs.lo, pairs.hi, pairs.sim)
+    return pairs, source, {"chosen_because": reason, **pairs.params}
+
+
+def judge_and_group(xn: np.ndarray, opt: Options, rule: str, score: np.ndarray | None,
+                    rng: np.random.Generator, chunk: int, bar: Any) -> tuple:
+    """Candidate pairs, the method's judgement of them, and the grouping rule: (groups, reps, ...)."""
+    n = xn.shape[0]
+    pairs, source, params = find_pairs(xn, opt, rng, chunk, bar)
+    lo, hi, sim = pairs.lo, pairs.hi, pairs.sim
+    if opt.method == "attractor" and lo.size:
+        b = beta_for_threshold(opt.threshold) if opt.beta is None else opt.beta
+        joined, info = attractor_edges(
+            xn, lo, hi, opt.threshold, beta=b, max_steps=opt.max_steps, tol=1e-5, retrieval=opt.retrieval,
+            progress=bar,
+        )
+        info["beta_rule"] = "2 / (1 - threshold)" if opt.beta is None else "given"
+        params["attractor"] = info
+        lo, hi, sim = lo[joined], hi[joined], sim[joined]
+    elif opt.method == "attractor":
+        params["attractor"] = {"beta": beta_for_threshold(opt.threshold) if opt.beta is None else opt.beta,
+                               "pairs_judged": 0, "pairs_joined": 0}
+    adj = G.adjacency(n, lo, hi, sim)
     groups = G.pack_labels(G.components(n, adj))
     reps = None
-    if opt.no_chaining != "off":
-        groups, reps = G.split_groups(groups, adj, opt.no_chaining, rule, score)
+    if opt.grouping != "chain":
+        groups, reps = G.split_groups(groups, adj, opt.grouping, rule, score)
     return groups, reps, source, params, pairs
-
-
-def _attractor(xn: np.ndarray, opt: Options, chunk: int, bar: Any) -> tuple:
-    beta = beta_for_threshold(opt.threshold) if opt.beta is None else opt.beta
-    if xn.shape[0] < 2:
-        return G.pack_labels(np.arange(xn.shape[0])), None, "attractor", {"beta": beta}, None
-    groups, info = attractor_groups(
-        xn, opt.threshold, beta=beta, max_steps=opt.max_steps, tol=1e-5, retrieval=opt.retrieval,
-        chunk=min(chunk, 4096), progress=bar,
-    )
-    info["beta_rule"] = "2 / (1 - threshold)" if opt.beta is None else "given"
-    return groups, None, "attractor", info, None
 
 
 def _plan(n: int, all_ids: np.ndarray, valid: np.ndarray, zero: np.ndarray, groups: G.Packed,
           stats: dict[str, np.ndarray], opt: Options, rule: str, source: str, params: dict[str, Any],
-          pairs: C.PairSet | None, t0: float) -> DuplicatePlan:
+          pairs: C.PairSet, t0: float) -> DuplicatePlan:
     member_rows = valid[groups.members]
     rep_rows = valid[stats["reps"]]
     drop = np.zeros(n, dtype=bool)
     drop[member_rows] = True
     drop[rep_rows] = False
+    kept_for = np.full(n, -1, dtype=np.int64)  # row kept for each dropped row
+    sim_for = np.full(n, np.nan)
+    kept_for[member_rows] = np.repeat(rep_rows, groups.sizes)
+    sim_for[member_rows] = stats["to_rep"]
+    drop_rows = np.flatnonzero(drop)
+    n_g = len(groups)
     return DuplicatePlan(
         threshold=opt.threshold, method=opt.method, candidates=source, candidate_params=params,
-        no_chaining=opt.no_chaining, representative_rule=rule, n_items=n,
-        n_pairs=-1 if pairs is None else int(pairs.lo.shape[0]),
+        grouping=opt.grouping, representative_rule=rule, n_items=n,
+        n_pairs=int(pairs.lo.shape[0]),
         group_offsets=groups.offsets, member_ids=all_ids[member_rows], member_rows=member_rows,
-        similarity_to_representative=stats["to_rep"], representative_ids=all_ids[rep_rows],
-        representative_rows=rep_rows, min_similarity=stats["min"], mean_similarity=stats["mean"],
-        keep_ids=all_ids[~drop], drop_ids=all_ids[drop], excluded_zero_ids=all_ids[zero],
-        seconds=time.perf_counter() - t0,
-        pair_ids=None if pairs is None else np.stack([all_ids[valid[pairs.lo]], all_ids[valid[pairs.hi]]], axis=1),
-        pair_similarity=None if pairs is None else pairs.sim,
+        member_stored=np.zeros(member_rows.shape[0], bool),
+        similarities=stats["to_rep"], representative_ids=all_ids[rep_rows],
+        representative_rows=rep_rows, representative_stored=np.zeros(n_g, bool),
+        min_similarity=stats["min"], mean_similarity=stats["mean"],
+        keep_ids=all_ids[~drop], drop_ids=all_ids[drop_rows],
+        duplicate_of_ids=all_ids[kept_for[drop_rows]], duplicate_similarities=sim_for[drop_rows],
+        excluded_zero_ids=all_ids[zero], seconds=time.perf_counter() - t0,
+        pair_ids=np.stack([all_ids[valid[pairs.lo]], all_ids[valid[pairs.hi]]], axis=1),
+        pair_similarities=pairs.sim,
     )
 
 
 def _without_pairs(plan: DuplicatePlan) -> DuplicatePlan:
-    return dataclasses.replace(plan, pair_ids=None, pair_similarity=None)
+    return dataclasses.replace(plan, pair_ids=None, pair_similarities=None)
 
 
 def _progress_factory(show: bool | None) -> Any:
@@ -260,14 +341,14 @@ def _progress_factory(show: bool | None) -> Any:
     except ImportError:
         if show:
             raise MissingExtraError(
-                "find_duplicates: `progress=True` needs tqdm; pip install densemem[progress] (or tqdm)."
+                f"{WHERE}: `progress=True` needs tqdm; pip install densemem[progress] (or tqdm)."
             ) from None
         return None
     return lambda desc, total: tqdm(total=total, desc=desc, unit="row", file=sys.stderr, leave=False)
 
 
 class DedupSpec(BaseModel):
-    """Options of :func:`find_duplicates` as a validated spec (for the CLI and JSON files).
+    """Options of :func:`plan_duplicates` as a validated spec (for the CLI and JSON files).
 
     ``representative="quality"`` takes the scores from the ``quality`` argument
     of :meth:`run` (the CLI reads them from ``quality_column``).
@@ -275,18 +356,18 @@ class DedupSpec(BaseModel):
     Examples
     --------
     >>> import numpy as np
-    >>> spec = DedupSpec(threshold=0.99, no_chaining="star")
+    >>> spec = DedupSpec(threshold=0.99, grouping="complete")
     >>> spec.run(np.array([[1.0, 0.0], [1.0, 0.001]])).n_groups
     1
     """
 
     model_config = ConfigDict(extra="forbid", frozen=True)
 
-    threshold: float = Field(0.98, gt=-1.0, le=1.0)
+    threshold: float = Field(0.98, gt=-1.0, le=1.0, allow_inf_nan=False)
     method: Literal["graph", "attractor"] = "graph"
+    grouping: Literal["star", "complete", "chain"] = "star"
     candidates: Literal["auto", "exact", "ivf", "hnsw"] = "auto"
     k: int = Field(32, ge=1)
-    no_chaining: Literal["off", "star", "complete"] = "off"
     representative: Literal["medoid", "first", "quality"] = "medoid"
     quality_column: str | None = None
     nlist: int | None = Field(None, ge=1)
@@ -300,7 +381,7 @@ class DedupSpec(BaseModel):
     seed: int = 0
 
     def kwargs(self, quality: Any = None) -> dict[str, Any]:
-        """Keyword arguments for :func:`find_duplicates`."""
+        """Keyword arguments for :func:`plan_duplicates`."""
         out = self.model_dump(exclude={"threshold", "representative", "quality_column"})
         out["threshold"] = self.threshold
         if self.representative == "quality":
@@ -313,6 +394,7 @@ class DedupSpec(BaseModel):
             out["representative"] = self.representative
         return out
 
-    def run(self, data: Any, *, ids: Any = None, quality: Any = None, progress: bool | None = None) -> DuplicatePlan:
-        """Call :func:`find_duplicates` on ``data`` with these options."""
-        return find_duplicates(data, ids=ids, progress=progress, **self.kwargs(quality))
+    def run(self, data: Any, *, ids: Any = None, quality: Any = None, progress: bool | None = None,
+            stored: Any = None) -> DuplicatePlan:
+        """Call :func:`plan_duplicates` on ``data`` (against ``stored`` when given) with these options."""
+        return plan_duplicates(data, ids=ids, progress=progress, stored=stored, **self.kwargs(quality))

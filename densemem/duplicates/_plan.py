@@ -26,8 +26,8 @@ PLAN_FILES = {
     "drop": "drop.txt",
 }
 _CSV_COLUMNS = (
-    "group", "id", "row", "representative", "size",
-    "min_similarity", "mean_similarity", "similarity_to_representative",
+    "group", "id", "row", "stored", "kept", "representative_id", "similarity", "size",
+    "min_similarity", "mean_similarity",
 )
 
 
@@ -38,13 +38,16 @@ class DuplicateGroup:
     Attributes
     ----------
     ids, rows : ndarray
-        Member ids and their row numbers in the input, in input order.
+        Member ids and their row numbers in the input, in input order (rows
+        of stored members are rows of the stored memory).
     representative : int or str
         Id of the member kept.
     min_similarity, mean_similarity : float
         Smallest and mean cosine similarity over all member pairs.
-    similarity_to_representative : ndarray of float64
+    similarities : ndarray of float64
         Each member's cosine similarity to the representative.
+    stored : ndarray of bool
+        Which members are items of the stored memory (all False without ``stored``).
     """
 
     ids: np.ndarray
@@ -52,7 +55,8 @@ class DuplicateGroup:
     representative: Any
     min_similarity: float
     mean_similarity: float
-    similarity_to_representative: np.ndarray
+    similarities: np.ndarray
+    stored: np.ndarray
 
     def __len__(self) -> int:
         return int(self.rows.shape[0])
@@ -60,10 +64,13 @@ class DuplicateGroup:
 
 @dataclass(frozen=True, slots=True, repr=False)
 class DuplicatePlan:
-    """What :func:`densemem.duplicates.find_duplicates` returns: groups and a keep/drop plan.
+    """What :func:`densemem.duplicates.plan_duplicates` returns: groups and a keep/drop plan.
 
     Nothing is removed anywhere: the plan lists what a caller could drop.
     Groups are packed: group ``g`` holds ``member_ids[group_offsets[g]:group_offsets[g+1]]``.
+    Against a stored memory, a group is a stored item (kept) with the new
+    items that duplicate it, or new items only; keep and drop lists hold new
+    items only.
 
     Attributes
     ----------
@@ -72,33 +79,46 @@ class DuplicatePlan:
     method : str
         "graph" or "attractor".
     candidates : str
-        Where candidate pairs came from: "exact", "ivf", "hnsw" or "attractor".
+        Where candidate pairs came from: "exact", "ivf" or "hnsw".
     candidate_params : dict
         The source's settings and checks (index, nlist, nprobe, k, sample pair
         recall, beta, steps, why it was chosen, ...).
-    no_chaining : str
-        "off" (connected components), "star" or "complete".
+    grouping : str
+        "star" (every member meets the threshold against the representative),
+        "complete" (every pair meets it) or "chain" (connected components).
     representative_rule : str
         "medoid", "first" or "quality".
     n_items, n_pairs : int
-        Input rows; similarity edges found (-1 for the attractor method).
+        Input rows (new rows against a stored memory); pairs judged (every
+        candidate pair at or above the threshold, for both methods).
     group_offsets : ndarray of int64, shape (n_groups + 1,)
     member_ids, member_rows : ndarray, shape (n_members,)
-    similarity_to_representative : ndarray of float64, shape (n_members,)
+    member_stored : ndarray of bool, shape (n_members,)
+        True for members that are items of the stored memory.
+    similarities : ndarray of float64, shape (n_members,)
+        Each member's cosine similarity to its group's representative.
     representative_ids, representative_rows : ndarray, shape (n_groups,)
+    representative_stored : ndarray of bool, shape (n_groups,)
+        True where the item kept is a stored item.
     min_similarity, mean_similarity : ndarray of float64, shape (n_groups,)
     keep_ids : ndarray
         Every id not dropped, in input order (representatives, singletons and
         excluded zero vectors).
     drop_ids : ndarray
         Non-representative members of every group, in input order.
+    duplicate_of_ids : ndarray, shape (n_drop,)
+        For each dropped id, the id kept for it (its group's representative).
+    duplicate_similarities : ndarray of float64, shape (n_drop,)
+        Cosine similarity of each dropped item to the item kept for it.
     excluded_zero_ids : ndarray
         Rows with zero norm: no cosine exists, so they were left out of the search.
     seconds : float
         Wall time of the search.
+    stored : dict or None
+        The stored memory compared against (``n_stored``, ``dim``), or None.
     pair_ids : ndarray of shape (n_pairs, 2) or None
-        With ``return_pairs=True``: the ids at both ends of every edge.
-    pair_similarity : ndarray of float64, shape (n_pairs,), or None
+        With ``return_pairs=True``: the ids at both ends of every pair judged.
+    pair_similarities : ndarray of float64, shape (n_pairs,), or None
         Their cosine similarities.
     """
 
@@ -106,24 +126,29 @@ class DuplicatePlan:
     method: str
     candidates: str
     candidate_params: dict
-    no_chaining: str
+    grouping: str
     representative_rule: str
     n_items: int
     n_pairs: int
     group_offsets: np.ndarray
     member_ids: np.ndarray
     member_rows: np.ndarray
-    similarity_to_representative: np.ndarray
+    member_stored: np.ndarray
+    similarities: np.ndarray
     representative_ids: np.ndarray
     representative_rows: np.ndarray
+    representative_stored: np.ndarray
     min_similarity: np.ndarray
     mean_similarity: np.ndarray
     keep_ids: np.ndarray
     drop_ids: np.ndarray
+    duplicate_of_ids: np.ndarray
+    duplicate_similarities: np.ndarray
     excluded_zero_ids: np.ndarray
     seconds: float
+    stored: dict | None = None
     pair_ids: np.ndarray | None = None
-    pair_similarity: np.ndarray | None = None
+    pair_similarities: np.ndarray | None = None
 
     # ----------------------------------------------------------- access
     @property
@@ -141,7 +166,7 @@ class DuplicatePlan:
         --------
         >>> import numpy as np, densemem
         >>> x = np.array([[1.0, 0.0], [1.0, 0.001], [0.0, 1.0]])
-        >>> plan = densemem.find_duplicates(x, threshold=0.99)
+        >>> plan = densemem.plan_duplicates(x, threshold=0.99)
         >>> plan.group(0).ids.tolist()
         [0, 1]
         """
@@ -158,7 +183,8 @@ class DuplicatePlan:
             representative=self.representative_ids[g].item(),
             min_similarity=float(self.min_similarity[g]),
             mean_similarity=float(self.mean_similarity[g]),
-            similarity_to_representative=self.similarity_to_representative[a:b],
+            similarities=self.similarities[a:b],
+            stored=self.member_stored[a:b],
         )
 
     @property
@@ -170,7 +196,7 @@ class DuplicatePlan:
         return (
             f"DuplicatePlan(n_items={self.n_items}, n_groups={self.n_groups}, "
             f"drop={self.drop_ids.shape[0]}, threshold={self.threshold:g}, method={self.method!r}, "
-            f"candidates={self.candidates!r}, no_chaining={self.no_chaining!r})"
+            f"candidates={self.candidates!r}, grouping={self.grouping!r})"
         )
 
     def summary(self) -> dict[str, Any]:
@@ -180,7 +206,7 @@ class DuplicatePlan:
         --------
         >>> import numpy as np, densemem
         >>> x = np.array([[1.0, 0.0], [1.0, 0.001], [0.0, 1.0]])
-        >>> plan = densemem.find_duplicates(x, threshold=0.99)
+        >>> plan = densemem.plan_duplicates(x, threshold=0.99)
         >>> plan.summary()["n_groups"]
         1
         """
@@ -189,7 +215,7 @@ class DuplicatePlan:
             "method": self.method,
             "candidates": self.candidates,
             "candidate_params": _plain_deep(self.candidate_params),
-            "no_chaining": self.no_chaining,
+            "grouping": self.grouping,
             "representative_rule": self.representative_rule,
             "n_items": self.n_items,
             "n_pairs": self.n_pairs,
@@ -197,8 +223,20 @@ class DuplicatePlan:
             "n_keep": int(self.keep_ids.shape[0]),
             "n_drop": int(self.drop_ids.shape[0]),
             "n_excluded_zero": int(self.excluded_zero_ids.shape[0]),
+            "lowest_similarity": _lowest(self.min_similarity),
+            "lowest_kept_similarity": _lowest(self.duplicate_similarities),
+            "stored": None if self.stored is None else _plain_deep(self.stored),
+            "n_duplicates_of_stored": self.n_duplicates_of_stored,
             "seconds": self.seconds,
         }
+
+    @property
+    def n_duplicates_of_stored(self) -> int:
+        """New items planned for dropping whose kept item is a stored item (0 without ``stored``)."""
+        if self.stored is None or self.drop_ids.size == 0:
+            return 0
+        sizes = np.diff(self.group_offsets)
+        return int(np.sum((sizes - 1)[self.representative_stored]))
 
     def to_dict(self) -> dict[str, Any]:
         """Plain-Python (JSON-ready) copy of every field.
@@ -207,7 +245,7 @@ class DuplicatePlan:
         --------
         >>> import numpy as np, densemem
         >>> x = np.array([[1.0, 0.0], [1.0, 0.001], [0.0, 1.0]])
-        >>> plan = densemem.find_duplicates(x, threshold=0.99)
+        >>> plan = densemem.plan_duplicates(x, threshold=0.99)
         >>> plan.to_dict()["threshold"]
         0.99
         """
@@ -240,7 +278,7 @@ class DuplicatePlan:
         Examples
         --------
         >>> import numpy as np, tempfile, densemem.duplicates as dd
-        >>> plan = dd.find_duplicates(np.array([[1.0, 0.0], [1.0, 0.0], [0.0, 1.0]]))
+        >>> plan = dd.plan_duplicates(np.array([[1.0, 0.0], [1.0, 0.0], [0.0, 1.0]]))
         >>> sorted(plan.write(tempfile.mkdtemp()))[:2]
         ['drop', 'groups_csv']
         """
@@ -267,19 +305,26 @@ class DuplicatePlan:
         _fsync_dir(out)
         return {role: str(p) for role, p in targets.items()}
 
+    def _kept_mask(self) -> np.ndarray:
+        sizes = np.diff(self.group_offsets)
+        return (self.member_rows == np.repeat(self.representative_rows, sizes)) & (
+            self.member_stored == np.repeat(self.representative_stored, sizes)
+        )
+
     def _member_table(self) -> dict[str, np.ndarray]:
         sizes = np.diff(self.group_offsets)
         gid = np.repeat(np.arange(self.n_groups), sizes)
-        rep_rows = np.repeat(self.representative_rows, sizes)
         return {
             "group": gid,
             "id": self.member_ids,
             "row": self.member_rows,
-            "representative": self.member_rows == rep_rows,
+            "stored": self.member_stored,
+            "kept": self._kept_mask(),
+            "representative_id": np.repeat(self.representative_ids, sizes),
+            "similarity": self.similarities,
             "size": np.repeat(sizes, sizes),
             "min_similarity": np.repeat(self.min_similarity, sizes),
             "mean_similarity": np.repeat(self.mean_similarity, sizes),
-            "similarity_to_representative": self.similarity_to_representative,
         }
 
     def _blobs(self) -> dict[str, bytes]:
@@ -301,19 +346,29 @@ class DuplicatePlan:
             a, b = int(self.group_offsets[g]), int(self.group_offsets[g + 1])
             groups.append({
                 "group": g,
-                "representative": self.representative_ids[g].item(),
+                "representative_id": self.representative_ids[g].item(),
                 "ids": self.member_ids[a:b].tolist(),
                 "rows": self.member_rows[a:b].tolist(),
+                "stored": self.member_stored[a:b].tolist(),
+                "similarities": self.similarities[a:b].tolist(),
                 "min_similarity": float(self.min_similarity[g]),
                 "mean_similarity": float(self.mean_similarity[g]),
-                "similarity_to_representative": self.similarity_to_representative[a:b].tolist(),
             })
         doc = {
             "summary": self.summary(),
             "groups": groups,
+            "drop": {
+                "ids": self.drop_ids.tolist(),
+                "duplicate_of_ids": self.duplicate_of_ids.tolist(),
+                "similarities": self.duplicate_similarities.tolist(),
+            },
             "excluded_zero_ids": self.excluded_zero_ids.tolist(),
         }
         return (json.dumps(doc, indent=1) + "\n").encode("utf-8")
+
+
+def _lowest(values: np.ndarray) -> float | None:
+    return float(values.min()) if values.size else None
 
 
 def _plain_deep(value: Any) -> Any:
@@ -349,10 +404,30 @@ def _parquet_bytes(table: dict[str, np.ndarray]) -> bytes | None:
     return buf.getvalue().to_pybytes()
 
 
+def _umask() -> int:
+    """The process umask: from /proc on Linux, else by setting and restoring it (os has no getter)."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 def _atomic_write(path: Path, data: bytes) -> None:
-    """Temp file in the same folder, flush + fsync, then os.replace."""
+    """Temp file in the same folder, flush + fsync, then os.replace.
+
+    mkstemp creates the file with mode 0600; it is set to ``0666 & ~umask``
+    first, so a plan file gets the mode any other new file of the user gets.
+    """
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
+        if hasattr(os, "fchmod"):
+            os.fchmod(fd, 0o666 & ~_umask())
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()

@@ -1,20 +1,20 @@
 """Exact retrieval over a sharded store on a Dask distributed cluster.
 
-:func:`retrieve` and :func:`nearest` take a :class:`~densemem.sharding.ShardedMemory`
-(or its folder) and a ``dask.distributed.Client`` (or a scheduler address such
-as ``"tcp://10.0.0.5:8786"``). Dask is an optional extra: ``pip install
-densemem[dist]``. Without it, the local path
-(:meth:`ShardedMemory.retrieve <densemem.sharding.ShardedMemory.retrieve>`)
-works unchanged and these functions raise :class:`~densemem.MissingExtraError`.
+:meth:`ShardedMemory.on_cluster <densemem.ShardedMemory.on_cluster>` takes a
+``dask.distributed.Client`` (or a scheduler address such as
+``"tcp://10.0.0.5:8786"``) and gives a :class:`ClusterShards`: the same
+``retrieve``, ``energy`` and ``nearest`` as every memory (one front door), run
+by the workers through one client. Dask is an optional extra: ``pip install
+densemem[dist]``. Without it, the local path works unchanged and
+``on_cluster`` raises :class:`~densemem.MissingExtraError`.
 
 How one query batch runs
 ------------------------
 1. The client scatters the batch of states to every worker once
    (``broadcast=True``: every worker holds a copy, so losing one loses none).
 2. One task per shard computes that shard's partial with the single-machine
-   kernel (:func:`densemem.core.exact.exact_reduce`, or
-   :func:`densemem.core.candidates.certified_reduce` with its per-query exact
-   fallback). The shard's ids travel with its top list, so no global id table
+   row source (:class:`densemem.core.rows.TableRows`: exact, or certified
+   with its per-query exact fallback). The shard's ids travel with its top list, so no global id table
    exists anywhere.
 3. Partials are merged on the workers in a tree built as they finish (two
    finished partials become one merge task; the last one standing is fetched by
@@ -32,7 +32,7 @@ A partial over rows ``R`` is ``(m, l, acc, top)`` with ``m`` a reference
 identity, not an approximation, and associative and commutative, so any tree
 gives the single-machine normaliser, state and top list up to float rounding.
 Certified shards bound their own omitted mass; the merged bound is the merged
-omitted mass over the merged normaliser, proved in :mod:`densemem.sharding._ops`.
+omitted mass over the merged normaliser, proved in :mod:`densemem.core.rows`.
 
 Where shards live on workers (and why not Actors)
 -------------------------------------------------
@@ -65,7 +65,7 @@ parallel file system), then::
     host-b$ dask worker tcp://host-a:8786 --nthreads 8
     host-c$ dask worker tcp://host-a:8786 --nthreads 8
 
-and call ``densemem.sharding.retrieve(store, q, client="tcp://host-a:8786")``
+and call ``open_sharded(store).on_cluster("tcp://host-a:8786").retrieve(q)``
 (or pass a ``Client``). Every worker needs densemem installed. Use about one
 shard per worker (or a multiple of the worker count) so the work is even.
 
@@ -73,48 +73,37 @@ Examples
 --------
 >>> import os, tempfile, numpy as np, densemem
 >>> from densemem.sharding import shard_memory
->>> from densemem import sharding as distributed
 >>> sm = shard_memory(densemem.DenseMemory.from_array(np.eye(4)), os.path.join(tempfile.mkdtemp(), "s"), 2)
 >>> from dask.distributed import Client  # doctest: +SKIP
 >>> with Client(n_workers=2, threads_per_worker=1) as client:  # doctest: +SKIP
-...     res = distributed.retrieve(sm, np.eye(4), beta=20.0, client=client, method="exact")
+...     res = sm.on_cluster(client).retrieve(np.eye(4), beta=20.0, method="exact")
 """
 
 from __future__ import annotations
 
-import os
 import threading
 import time
 import uuid
 from collections.abc import Callable
-from typing import Any, Literal
+from typing import Any
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field
 
 from . import _ops as S
+from .._front import Retriever
 from ..core.candidates import CertifiedOptions
-from ..core.tiles import DEFAULT_TILE_MIB
+from ..core.rows import IdPartial
+from ..core.rows import merge as merge_partials
+from ..options import Layout, RetrievalOptions
 from .._validation import check_nonneg_float, check_positive_int
 from ..errors import InputTypeError, InputValueError, MissingExtraError
-from ..results import NearestResult, RetrievalResult
 
-__all__ = ["SchedulerSpec", "nearest", "retrieve"]
+__all__ = ["ClusterShards"]
 
 _CACHE: dict[str, tuple[str, Any]] = {}  # per worker process: folder -> (checksum, memory)
 _LOCKS: dict[str, threading.Lock] = {}
 _GUARD = threading.Lock()
 _LOADS: list[str] = []  # folders loaded by this process (for tests and diagnostics)
-
-
-class SchedulerSpec(BaseModel):
-    """Options of ``densemem retrieve/nearest --scheduler tcp://host:port`` (validated at the CLI boundary)."""
-
-    model_config = ConfigDict(frozen=True, extra="forbid")
-
-    scheduler: str = Field(pattern=r"^(tcp|tls|ucx|inproc)://.+$")
-    retries: int = Field(2, ge=0)
-    timeout: float | None = Field(None, gt=0, allow_inf_nan=False)
 
 
 def _dask(where: str) -> Any:
@@ -163,9 +152,8 @@ def _partial_task(
     method: str,
     need_acc: bool,
     cert: CertifiedOptions,
-) -> S.ShardPartial:
-    mem = _shard(*shard)
-    return S.shard_partial(mem, states, beta, k=k, method=method, need_acc=need_acc, cert=cert)
+) -> IdPartial:
+    return S.shard_rows(_shard(*shard), method).reduce(states, beta, k=k, need_acc=need_acc, cert=cert)
 
 
 def _nearest_task(shard: tuple[str, str, int, bool, str], q: np.ndarray, k: int, metric: str) -> S.ShardNearest:
@@ -173,16 +161,6 @@ def _nearest_task(shard: tuple[str, str, int, bool, str], q: np.ndarray, k: int,
 
 
 # ------------------------------------------------------------- client side
-def _store(store: Any, where: str) -> Any:
-    from ._memory import ShardedMemory, open_sharded
-
-    if isinstance(store, ShardedMemory):
-        return store
-    if isinstance(store, (str, os.PathLike)):
-        return open_sharded(store)
-    raise InputTypeError(f"{where}: `store` must be a ShardedMemory or a sharded store folder; got {type(store).__name__}.")
-
-
 class _Session:
     """A client (ours to close when made from an address) and the call's settings."""
 
@@ -191,7 +169,7 @@ class _Session:
         self.where = where
         self.retries = check_positive_int(retries, name="retries", where=where, minimum=0)
         self.timeout = None if timeout is None else check_nonneg_float(timeout, name="timeout", where=where, strict=True)
-        self.deadline = None if self.timeout is None else time.monotonic() + self.timeout
+        self.deadline: float | None = None
         self.dd = dd
         self.owned = False
         if isinstance(client, str):
@@ -205,12 +183,15 @@ class _Session:
                 f"like 'tcp://host:8786'; got {type(client).__name__}."
             )
 
-    def __enter__(self) -> _Session:
-        return self
+    def start_call(self, where: str) -> None:
+        """A new public call: its name for errors, and its own deadline."""
+        self.where = where
+        self.deadline = None if self.timeout is None else time.monotonic() + self.timeout
 
-    def __exit__(self, *exc: object) -> None:
+    def close(self) -> None:
         if self.owned:
             self.client.close()
+            self.owned = False
 
     def _left(self) -> float | None:
         if self.deadline is None:
@@ -269,113 +250,77 @@ def _shards(sm: Any, verify: bool, where: str) -> list[tuple[str, str, int, bool
     return [(f, c, i, verify, where) for i, (f, c) in enumerate(zip(sm.shard_folders, sm.checksums))]
 
 
-def retrieve(
-    store: Any,
-    queries: Any,
-    beta: float | None = None,
-    *,
-    client: Any,
-    steps: int = 1,
-    tol: float = 1e-6,
-    k: int | None = None,
-    method: Literal["auto", "exact", "certified"] = "auto",
-    return_energy: bool = True,
-    tol_mass: float = 1e-6,
-    k_max: int = 1024,
-    retries: int = 2,
-    timeout: float | None = None,
-    verify: bool = True,
-) -> RetrievalResult:
-    """Softmax retrieval over every shard of a sharded store, on a Dask cluster.
+class _DaskShards:
+    """Every shard reduced by a Dask task, merged on the workers: a row source."""
 
-    Returns what :meth:`densemem.DenseMemory.retrieve` returns for a memory
-    holding every row (states to float32 rounding, identical top ids).
+    def __init__(self, session: _Session, shards: list[tuple[str, str, int, bool, str]], method: str) -> None:
+        self.session, self.shards, self.method = session, shards, method
 
-    Parameters
-    ----------
-    store : ShardedMemory or str or os.PathLike
-        The sharded store; its folder must be readable by every worker at the same path.
-    queries : array-like of shape (n_queries, dim) or (dim,)
-        Sent to the workers once per update, as one batch.
-    beta, steps, tol, k, method, return_energy, tol_mass, k_max
-        As for :meth:`densemem.DenseMemory.retrieve` ("index" is not available
-        on shards). "certified" and "auto" certify each shard for its own rows;
-        the reported ``mass_bound`` is the merged omitted mass over the merged
-        normaliser (<= the largest shard bound), ``fell_back`` marks queries
-        that some shard answered by its exact path, ``k_used`` sums the
-        candidates over shards.
-    client : dask.distributed.Client or str
-        A connected client, or a scheduler address ("tcp://host:8786"; a
-        client is made and closed for this call).
-    retries : int, default 2
-        Times Dask reruns a task that raised (worker loss is handled by the
-        scheduler separately).
-    timeout : float, optional
-        Seconds to wait for the whole call before raising ``TimeoutError``.
-    verify : bool, default True
-        Workers check shard files' sha256 when they first load a shard.
+    def reduce(self, states: np.ndarray, beta: float, *, k: int, need_acc: bool, cert: CertifiedOptions) -> IdPartial:
+        return self.session.run(_partial_task, self.shards, states, (beta, k, self.method, need_acc, cert),
+                                merge_partials)
 
-    Returns
-    -------
-    RetrievalResult
 
-    Raises
-    ------
-    MissingExtraError
-        Dask distributed is not installed.
-    StoreFormatError
-        A shard cannot be loaded (the message names its folder).
-    InputValueError, InputTypeError
-        Bad queries or options, or a cluster without workers.
+class ClusterShards(Retriever):
+    """A sharded store on a Dask cluster: ``retrieve``, ``energy`` and ``nearest`` run by the workers.
+
+    Made by :meth:`densemem.ShardedMemory.on_cluster`; the calls and their
+    options are those of :class:`densemem.DenseMemory` (``method="index"`` is
+    not available on shards). Every call uses the one client; the top manifest
+    is read once, and each worker checks a shard's manifest once, when it
+    first loads the shard. Use it as a context manager (a client made from an
+    address is closed at the end).
 
     Examples
     --------
     >>> import numpy as np
-    >>> from densemem import sharding as distributed
-    >>> distributed.retrieve("/no/such/store", np.eye(2), client=None)  # doctest: +SKIP
+    >>> from densemem.sharding import open_sharded
+    >>> cluster = open_sharded("/shared/shards").on_cluster("tcp://10.0.0.5:8786")  # doctest: +SKIP
+    >>> cluster.nearest(np.ones(64), k=3).ids  # doctest: +SKIP
     """
-    where = "densemem.sharding.retrieve"
-    with _Session(client, retries=retries, timeout=timeout, where=where) as session:
-        sm = _store(store, where)
-        args = S.check_retrieve(
-            sm._layout(), queries, beta, sm.beta, steps=steps, tol=tol, k=k, method=method,
-            return_energy=return_energy, tol_mass=tol_mass, k_max=k_max, tile_mib=DEFAULT_TILE_MIB, where=where,
-        )
-        shards = _shards(sm, bool(verify), where)
 
-        def run_pass(states: np.ndarray, kk: int, need_acc: bool, cert: CertifiedOptions) -> S.ShardPartial:
-            return session.run(_partial_task, shards, states, (args.beta, kk, args.method, need_acc, cert), S.merge)
+    _methods = S.SHARD_METHODS
+    _name = "ClusterShards"
+    _lazy_energy = False  # the client may be closed by the time a result is read
 
-        return S.run_retrieve(run_pass, sm._layout(), args)
+    def __init__(self, store: Any, client: Any, *, retries: Any = 2, timeout: Any = None, verify: Any = True) -> None:
+        where = "ShardedMemory.on_cluster"
+        self._store = store
+        self._layout_ = store._layout()
+        self._session = _Session(client, retries=retries, timeout=timeout, where=where)
+        self._shards = _shards(store, bool(verify), where)
 
+    def __enter__(self) -> "ClusterShards":
+        return self
 
-def nearest(
-    store: Any,
-    queries: Any,
-    k: int | None = None,
-    *,
-    client: Any,
-    metric: Literal["ip", "l2"] = "ip",
-    retries: int = 2,
-    timeout: float | None = None,
-    verify: bool = True,
-) -> NearestResult:
-    """Exact k nearest stored patterns over every shard, on a Dask cluster.
+    def __exit__(self, *exc: object) -> None:
+        self.close()
 
-    Each shard runs faiss brute-force search on its rows; the top lists are
-    merged on the workers. Equals :meth:`densemem.DenseMemory.nearest` on all
-    rows. Parameters as for :func:`retrieve` and
-    :meth:`densemem.DenseMemory.nearest`.
+    def close(self) -> None:
+        """Close the client if this object made it (from a scheduler address)."""
+        self._session.close()
 
-    Examples
-    --------
-    >>> import numpy as np
-    >>> from densemem import sharding as distributed
-    >>> distributed.nearest("/no/such/store", np.eye(2), k=1, client=None)  # doctest: +SKIP
-    """
-    where = "densemem.sharding.nearest"
-    with _Session(client, retries=retries, timeout=timeout, where=where) as session:
-        sm = _store(store, where)
-        q, was_1d, k = S.check_nearest(sm._layout(), queries, k, metric, where=where)
-        merged = session.run(_nearest_task, _shards(sm, bool(verify), where), q, (k, metric), S.merge_nearest)
-        return S.nearest_result(merged, was_1d)
+    @property
+    def client(self) -> Any:
+        """The dask.distributed client every call uses."""
+        return self._session.client
+
+    def __repr__(self) -> str:
+        return f"ClusterShards(store={str(self._store.path)!r}, n_shards={len(self._shards)})"
+
+    def _layout(self) -> Layout:
+        return self._layout_
+
+    def _source(self, opts: RetrievalOptions, *, where: str) -> _DaskShards:
+        self._session.start_call(where)
+        shards = [(f, c, i, v, where) for f, c, i, v, _ in self._shards]
+        return _DaskShards(self._session, shards, opts.method)
+
+    def _nearest_batch(self, q: np.ndarray, k: int, metric: str, index: bool, *, where: str) -> tuple[np.ndarray, np.ndarray]:
+        if index:
+            raise InputValueError(f"{where}: the candidate index is not available on a sharded store; "
+                                  "shards use faiss exact search.")
+        self._session.start_call(where)
+        shards = [(f, c, i, v, where) for f, c, i, v, _ in self._shards]
+        merged = self._session.run(_nearest_task, shards, q, (k, metric), S.merge_nearest)
+        return merged.ids, merged.scores

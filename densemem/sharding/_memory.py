@@ -49,9 +49,9 @@ from pathlib import Path
 from typing import Any, Literal
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field
 
 from . import _ops as S
+from ._dask import ClusterShards
 from ._store import (
     _SPLITS,
     SHARDS_FORMAT_NAME,
@@ -60,22 +60,25 @@ from ._store import (
     _as_path,
     _check_target,
     _fill,
+    _is_sharded,
     _max_norm,
     _read_top,
     _swap_in,
     _write_json_atomic,
     load_shard,
 )
+from .._front import Retriever
+from ..dense import DenseMemory
+from ..core.rows import tree_merge
 from ..core.tiles import DEFAULT_TILE_MIB
+from ..options import Layout, RetrievalOptions
 from .._validation import check_ids, check_patterns, check_positive_int
 from ..errors import InputTypeError, InputValueError, StoreFormatError
-from ..results import NearestResult, RetrievalResult
-from ..store._folder import MANIFEST, _sha256, save_memory
+from ..store._folder import MANIFEST, _sha256
 
 __all__ = [
     "SHARDS_FORMAT_NAME",
     "SHARDS_FORMAT_VERSION",
-    "ShardSpec",
     "ShardedMemory",
     "ShardedStoreInfo",
     "open_sharded",
@@ -119,21 +122,19 @@ class ShardedStoreInfo:
         return {name: getattr(self, name) for name in self.__dataclass_fields__}
 
 
-class ShardSpec(BaseModel):
-    """Options of ``densemem build --shards N [--shard-by ...]`` (validated at the CLI boundary)."""
-
-    model_config = ConfigDict(frozen=True, extra="forbid")
-
-    n_shards: int = Field(ge=1)
-    by: Literal["round_robin", "contiguous"] = "round_robin"
-
-
 # -------------------------------------------------------------------- handle
-class ShardedMemory:
-    """A handle on a sharded store folder: add, and retrieve exactly without a cluster.
+class ShardedMemory(Retriever):
+    """A handle on a sharded store folder: add, and retrieve exactly, here or on a Dask cluster.
 
-    Build one with :func:`shard_memory` or :func:`open_sharded`; for Dask, pass
-    it to :func:`densemem.sharding.retrieve`.
+    Build one with :func:`shard_memory` or :func:`open_sharded`. ``retrieve``,
+    ``energy`` and ``nearest`` are those of :class:`densemem.DenseMemory` (one
+    front door, the same options; ``method="index"`` is not available on
+    shards): every shard computes its partial with the one-machine kernel and
+    the partials merge exactly, so the result equals one memory holding every
+    row (states to float32 rounding, identical top ids). Certified bounds are
+    per shard and merged (the reported ``mass_bound`` is the merged omitted
+    mass over the merged normaliser). For Dask, :meth:`on_cluster` gives the
+    same calls run by the workers.
 
     Examples
     --------
@@ -202,8 +203,9 @@ class ShardedMemory:
     def __repr__(self) -> str:
         return f"ShardedMemory(path={str(self._path)!r}, n_patterns={len(self)}, n_shards={self.n_shards})"
 
-    def _layout(self) -> S.Layout:
-        return S.Layout(dim=self.dim, normalize=self.normalize, count=len(self), max_norm=self.max_norm)
+    def _layout(self) -> Layout:
+        return Layout(dim=self.dim, normalize=self.normalize, count=len(self), max_norm=self.max_norm,
+                      beta=self.beta, tile_mib=DEFAULT_TILE_MIB)
 
     def describe(self) -> ShardedStoreInfo:
         """A report of the top manifest (no shard is loaded).
@@ -276,10 +278,10 @@ class ShardedMemory:
                          number=target)
         mem._add(x, new_ids, where=where)
         folder = self.shard_folders[target]
-        save_memory(mem, folder)
+        mem.save(folder, overwrite=True)
         man = json.loads(json.dumps(self._man))
         man["shards"][target].update(
-            count=len(mem), max_norm=_max_norm(mem._table.x), manifest_sha256=_sha256(Path(folder) / MANIFEST)
+            count=len(mem), max_norm=_max_norm(mem.patterns), manifest_sha256=_sha256(Path(folder) / MANIFEST)
         )
         man["count"] = sum(int(s["count"]) for s in man["shards"])
         if new_ids.dtype.kind == "i" and new_ids.size:
@@ -302,7 +304,7 @@ class ShardedMemory:
             want = "int" if kind == "int64" else "str"
             raise InputTypeError(f"{where}: the memory uses {want} ids; got `ids` of dtype {new_ids.dtype}.")
         for mem in self._memories(where):
-            held = np.isin(new_ids, mem._table.ids)
+            held = np.isin(new_ids, mem.ids)
             if held.any():
                 raise InputValueError(
                     f"{where}: id {new_ids[held][0].item()!r} is already stored; ids must be unique."
@@ -310,70 +312,54 @@ class ShardedMemory:
         return new_ids
 
     # ------------------------------------------------------------- retrieval
-    def retrieve(
-        self,
-        queries: Any,
-        beta: float | None = None,
-        *,
-        steps: int = 1,
-        tol: float = 1e-6,
-        k: int | None = None,
-        method: Literal["auto", "exact", "certified"] = "auto",
-        return_energy: bool = True,
-        tol_mass: float = 1e-6,
-        k_max: int = 1024,
-    ) -> RetrievalResult:
-        """Retrieve by the softmax update over every shard, in this process.
+    _methods = S.SHARD_METHODS
+    _name = "ShardedMemory"
 
-        Each shard computes its partial with the single-machine kernel and the
-        partials are merged exactly, so the result equals
-        :meth:`densemem.DenseMemory.retrieve` on all rows (states to float32
-        rounding, identical top ids). Options are as there; ``method="index"``
-        is not available on shards. Certified bounds are per shard and merged
-        as described in :mod:`densemem.sharding._ops` (the reported
-        ``mass_bound`` is the merged omitted mass over the merged normaliser).
+    def _source(self, opts: RetrievalOptions, *, where: str) -> Any:
+        return S.LocalShards(tuple(self._memories(where)), opts.method)
 
-        Examples
-        --------
-        >>> import os, tempfile, numpy as np, densemem
-        >>> from densemem.sharding import shard_memory
-        >>> sm = shard_memory(densemem.DenseMemory.from_array(np.eye(4), beta=40.0), os.path.join(tempfile.mkdtemp(), "s"), 2)
-        >>> sm.retrieve([[0.0, 0.8, 0.2, 0.0]], k=2, method="exact").top_ids.tolist()
-        [[1, 2]]
-        """
-        where = "ShardedMemory.retrieve"
-        args = S.check_retrieve(
-            self._layout(), queries, beta, self.beta, steps=steps, tol=tol, k=k, method=method,
-            return_energy=return_energy, tol_mass=tol_mass, k_max=k_max, tile_mib=DEFAULT_TILE_MIB, where=where,
-        )
-        mems = self._memories(where)
-
-        def run_pass(states: np.ndarray, kk: int, need_acc: bool, cert: Any) -> S.ShardPartial:
-            parts = [
-                S.shard_partial(m, states, args.beta, k=kk, method=args.method, need_acc=need_acc, cert=cert)
-                for m in mems
-            ]
-            return S.tree_merge(parts, S.merge)
-
-        return S.run_retrieve(run_pass, self._layout(), args)
-
-    def nearest(
-        self, queries: Any, k: int | None = None, *, metric: Literal["ip", "l2"] = "ip"
-    ) -> NearestResult:
-        """Exact k nearest stored patterns over every shard (faiss brute force per shard, merged).
-
-        Examples
-        --------
-        >>> import os, tempfile, numpy as np, densemem
-        >>> from densemem.sharding import shard_memory
-        >>> sm = shard_memory(densemem.DenseMemory.from_array(np.eye(3), ids=["a", "b", "c"]), os.path.join(tempfile.mkdtemp(), "s"), 2)
-        >>> sm.nearest([0.1, 0.9, 0.0], k=1).ids.tolist()
-        ['b']
-        """
-        where = "ShardedMemory.nearest"
-        q, was_1d, k = S.check_nearest(self._layout(), queries, k, metric, where=where)
+    def _nearest_batch(self, q: np.ndarray, k: int, metric: str, index: bool, *, where: str) -> tuple[np.ndarray, np.ndarray]:
+        if index:
+            raise InputValueError(f"{where}: the candidate index is not available on a sharded store; "
+                                  "shards use faiss exact search.")
         parts = [S.shard_nearest(m, q, k, metric) for m in self._memories(where)]
-        return S.nearest_result(S.tree_merge(parts, S.merge_nearest), was_1d)
+        merged = tree_merge(parts, S.merge_nearest)
+        return merged.ids, merged.scores
+
+    def on_cluster(
+        self, client: Any, *, retries: int = 2, timeout: float | None = None, verify: bool = True
+    ) -> "ClusterShards":
+        """This store on a Dask cluster: the same ``retrieve``, ``energy`` and ``nearest``, run by the workers.
+
+        Parameters
+        ----------
+        client : dask.distributed.Client or str
+            A connected client, or a scheduler address ("tcp://host:8786"; a
+            client is then made here and closed by :meth:`ClusterShards.close`
+            or at the end of a ``with`` block).
+        retries : int, default 2
+            Times Dask reruns a task that raised (worker loss is handled by the
+            scheduler separately).
+        timeout : float, optional
+            Seconds to wait for each call before raising ``TimeoutError``.
+        verify : bool, default True
+            Workers check shard files' sha256 when they first load a shard.
+
+        Returns
+        -------
+        ClusterShards
+            Use it as a context manager; every call on it uses the one client.
+
+        Examples
+        --------
+        >>> import os, tempfile, numpy as np, densemem
+        >>> from densemem.sharding import shard_memory
+        >>> sm = shard_memory(densemem.DenseMemory.from_array(np.eye(4)), os.path.join(tempfile.mkdtemp(), "s"), 2)
+        >>> with sm.on_cluster("tcp://127.0.0.1:8786") as cluster:  # doctest: +SKIP
+        ...     cluster.retrieve(np.eye(4)).top_ids[:, 0].tolist()
+        [0, 1, 2, 3]
+        """
+        return ClusterShards(self, client, retries=retries, timeout=timeout, verify=verify)
 
 
 def shard_memory(
@@ -420,7 +406,6 @@ def shard_memory(
     >>> sm.counts
     (3, 2)
     """
-    from ..dense import DenseMemory
 
     where = "shard_memory"
     if not isinstance(memory, DenseMemory):
@@ -488,3 +473,35 @@ def open_sharded(path: Any, *, verify: bool = True) -> ShardedMemory:
                 "changed: rewritten or interrupted during add?)."
             )
     return ShardedMemory(p, man, verify=verify)
+
+
+def open_store(path: Any, *, mmap: bool = False, verify: bool = True) -> Any:
+    """Open a store folder of either kind: a :class:`~densemem.DenseMemory` or a :class:`ShardedMemory`.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        A store folder (``manifest.json``) or a sharded store folder (``shards.json``).
+    mmap : bool, default False
+        One store: memory-map its arrays (shards are always memory-mapped).
+    verify : bool, default True
+        Check checksums as :meth:`densemem.DenseMemory.load` and :func:`open_sharded` do.
+
+    Returns
+    -------
+    DenseMemory or ShardedMemory
+        Both answer ``retrieve``, ``energy`` and ``nearest`` with the same options.
+
+    Examples
+    --------
+    >>> import os, tempfile, numpy as np, densemem
+    >>> from densemem.sharding import open_store, shard_memory
+    >>> base = tempfile.mkdtemp()
+    >>> densemem.DenseMemory.from_array(np.eye(3)).save(os.path.join(base, "one"))
+    >>> _ = shard_memory(densemem.DenseMemory.from_array(np.eye(3)), os.path.join(base, "many"), 2)
+    >>> type(open_store(os.path.join(base, "one"))).__name__, type(open_store(os.path.join(base, "many"))).__name__
+    ('DenseMemory', 'ShardedMemory')
+    """
+    if isinstance(path, (str, os.PathLike)) and _is_sharded(Path(os.fspath(path))):
+        return open_sharded(path, verify=verify)
+    return DenseMemory.load(path, mmap=mmap, verify=verify)

@@ -15,15 +15,15 @@ from typing import Any
 
 import numpy as np
 
-from ..core.table import PatternTable
+from ..dense import DenseMemory
 from ..errors import InputTypeError, InputValueError, StoreFormatError
 from ..store._folder import (
     MANIFEST,
+    StoreContent,
     _fsync_dir,
     _sha256,
-    load_memory,
     read_json_manifest,
-    save_memory,
+    write_store,
 )
 
 SHARDS_FORMAT_NAME = "densemem-shards"
@@ -67,6 +67,50 @@ def _write_json_atomic(path: Path, payload: dict[str, Any]) -> None:
     _fsync_dir(path.parent)
 
 
+# ------------------------------------------------------------------- updates
+def new_shard_name() -> str:
+    """A fresh shard folder name: updates never rewrite a folder ``shards.json`` points to."""
+    return f"shard-{secrets.token_hex(6)}"
+
+
+def write_shard(p: Path, mem: Any, where: str) -> dict[str, Any]:
+    """Write ``mem`` as a new shard folder under ``p``; return its ``shards.json`` entry."""
+    name = new_shard_name()
+    folder = p / name
+    mem.save(folder, overwrite=False)
+    return {"folder": name, "count": len(mem), "max_norm": _max_norm(mem.patterns),
+            "manifest_sha256": _sha256(folder / MANIFEST)}
+
+
+def commit(p: Path, man: dict[str, Any]) -> None:
+    """Move the store to ``man`` (one atomic replace of ``shards.json``), then tidy up.
+
+    Every shard folder ``man`` names is complete before this is called, so a
+    crash at any instant leaves ``shards.json`` naming either the old complete
+    set of folders or the new one.
+    """
+    man = dict(man)
+    man["count"] = sum(int(s["count"]) for s in man["shards"])
+    _write_json_atomic(p / TOP_MANIFEST, man)
+    tidy(p, man)
+
+
+def tidy(p: Path, man: dict[str, Any]) -> None:
+    """Delete what an interrupted update left: shard folders ``man`` does not name, temp files."""
+    keep = {str(s["folder"]) for s in man["shards"]} | {TOP_MANIFEST}
+    for child in p.iterdir():
+        name = child.name
+        if name in keep:
+            continue
+        ours = name.startswith(("shard-", ".shard-")) or name.startswith(f".{TOP_MANIFEST}.tmp-")
+        if not ours:
+            continue
+        if child.is_dir() and not child.is_symlink():
+            shutil.rmtree(child, ignore_errors=True)
+        else:
+            child.unlink(missing_ok=True)
+
+
 def _is_sharded(d: Path) -> bool:
     try:
         with open(d / TOP_MANIFEST, encoding="utf-8") as fh:
@@ -94,7 +138,7 @@ def load_shard(folder: str, checksum: str, *, verify: bool, where: str, number: 
             "changed: rewritten or interrupted during add?)."
         )
     try:
-        return load_memory(folder, mmap=True, verify=verify)
+        return DenseMemory.load(folder, mmap=True, verify=verify)
     except (StoreFormatError, OSError) as exc:
         raise StoreFormatError(f"{where}: shard {number} at {folder!r} cannot be loaded: {exc}") from None
 
@@ -107,19 +151,15 @@ def _split(n: int, n_shards: int, by: str) -> list[np.ndarray]:
 
 
 def _fill(memory: Any, tmp: Path, n_shards: int, by: str) -> dict[str, Any]:
-    from ..dense import DenseMemory
-
-    table = memory._table
-    ids = table.ids
+    x_all, ids = memory.patterns, memory.ids
     shards = []
     for i, rows in enumerate(_split(len(memory), n_shards, by)):
-        part = DenseMemory(memory.dim, normalize=memory.normalize, beta=memory.beta)
-        part._table = PatternTable.trusted(np.ascontiguousarray(table.x[rows]), ids[rows].copy(),
-                                           normalize=memory.normalize)
+        x = np.ascontiguousarray(x_all[rows])
         folder = tmp / _shard_name(i)
-        save_memory(part, folder)
+        write_store(StoreContent(x=x, ids=ids[rows].copy(), normalize=memory.normalize, beta=memory.beta),
+                    folder, where="shard_memory")
         shards.append({
-            "folder": folder.name, "count": int(rows.size), "max_norm": _max_norm(part._table.x),
+            "folder": folder.name, "count": int(rows.size), "max_norm": _max_norm(x),
             "manifest_sha256": _sha256(folder / MANIFEST),
         })
     from .._version import __version__
@@ -127,7 +167,7 @@ def _fill(memory: Any, tmp: Path, n_shards: int, by: str) -> dict[str, Any]:
         "format": SHARDS_FORMAT_NAME, "format_version": SHARDS_FORMAT_VERSION,
         "written_by": f"densemem {__version__}", "dim": int(memory.dim), "normalize": bool(memory.normalize),
         "beta": float(memory.beta), "id_kind": "int64" if ids.dtype.kind in "iu" else "str",
-        "count": len(memory), "next_id": int(table._next_id), "by": by, "shards": shards,
+        "count": len(memory), "next_id": memory._table.next_id, "by": by, "shards": shards,
     }
 
 

@@ -6,7 +6,7 @@ loads never unpickle. :func:`read_embeddings` reads .npy, .npz, .parquet, .csv
 and .tsv files into an :class:`EmbeddingTable`.
 """
 
-from ._folder import FORMAT_NAME, FORMAT_VERSION, StoreInfo, describe_store, load_memory, save_memory
+from ._folder import FORMAT_NAME, FORMAT_VERSION, StoreInfo, describe_store
 from ._readers import SUFFIXES, EmbeddingTable, read_embeddings
 
 __all__ = [
@@ -16,7 +16,5 @@ __all__ = [
     "EmbeddingTable",
     "StoreInfo",
     "describe_store",
-    "load_memory",
     "read_embeddings",
-    "save_memory",
 ]

@@ -26,7 +26,7 @@ hidden names: ``.<name>.densemem-tmp-<random>``, ``.<name>.densemem-next`` and
 5. rename ``next -> P``;
 6. delete ``prev``.
 
-So at every instant one of these holds, and :func:`load_memory` reads it
+So at every instant one of these holds, and :func:`read_store` reads it
 without changing anything on disk:
 
 - ``P`` exists and is complete (old store before step 4, new one after step 5);
@@ -41,11 +41,10 @@ at a time; concurrent writers are not coordinated.
 Examples
 --------
 >>> import tempfile, os, numpy as np, densemem
->>> from densemem.store import save_memory, load_memory
 >>> mem = densemem.DenseMemory.from_array(np.eye(3), ids=["a", "b", "c"])
 >>> path = os.path.join(tempfile.mkdtemp(), "store")
->>> save_memory(mem, path)
->>> load_memory(path).ids.tolist()
+>>> mem.save(path)
+>>> densemem.DenseMemory.load(path).ids.tolist()
 ['a', 'b', 'c']
 """
 
@@ -62,10 +61,9 @@ from typing import Any
 
 import numpy as np
 
-from ..core.table import PatternTable
 from ..errors import InputTypeError, InputValueError, StoreFormatError
 
-__all__ = ["save_memory", "load_memory", "describe_store", "StoreInfo", "FORMAT_NAME", "FORMAT_VERSION"]
+__all__ = ["StoreContent", "write_store", "read_store", "describe_store", "StoreInfo", "FORMAT_NAME", "FORMAT_VERSION"]
 
 FORMAT_NAME = "densemem-store"
 FORMAT_VERSION = 1
@@ -162,52 +160,67 @@ def _write_index(path: Path, index: Any) -> dict[str, Any]:
     return {"sha256": _sha256(path), "bytes": path.stat().st_size}
 
 
-def _manifest(memory: Any, ids: np.ndarray) -> dict[str, Any]:
+@dataclass(frozen=True, slots=True)
+class StoreContent:
+    """What a store folder holds: rows, ids, settings and an optional candidate index.
+
+    The memory hands one to :func:`write_store` and builds itself from what
+    :func:`read_store` returns; the store never sees a memory object.
+    """
+
+    x: np.ndarray
+    ids: np.ndarray
+    normalize: bool
+    beta: float
+    next_id: int = 0
+    index_meta: dict[str, Any] | None = None
+    index: Any = None  # a faiss index, or None
+
+
+def _manifest(content: StoreContent, ids: np.ndarray) -> dict[str, Any]:
     from .._version import __version__
-    table = memory._table
+
     return {
         "format": FORMAT_NAME,
         "format_version": FORMAT_VERSION,
         "written_by": f"densemem {__version__}",
-        "dim": int(memory.dim),
-        "count": int(len(memory)),
+        "dim": int(content.x.shape[1]),
+        "count": int(content.x.shape[0]),
         "dtype": "float32",
-        "normalize": bool(memory.normalize),
-        "beta": float(memory.beta),
+        "normalize": bool(content.normalize),
+        "beta": float(content.beta),
         "id_kind": "int64" if ids.dtype.kind == "i" else "str",
-        "next_id": int(getattr(table, "_next_id", 0)),
+        "next_id": int(content.next_id),
         "files": {},
         "index": None,
     }
 
 
-def _fill_folder(memory: Any, tmp: Path) -> None:
+def _fill_folder(content: StoreContent, tmp: Path) -> None:
     """Step 2: every file of the store, fsynced, into the fresh folder ``tmp``."""
-    x = np.ascontiguousarray(memory._table.x, dtype=np.float32)
-    ids = memory._table.ids
+    x = np.ascontiguousarray(content.x, dtype=np.float32)
+    ids = content.ids
     ids = ids.astype(np.int64) if ids.dtype.kind in "iu" else ids.astype(f"<U{max(ids.dtype.itemsize // 4, 1)}")
-    man = _manifest(memory, ids)
+    man = _manifest(content, ids)
     man["files"][PATTERNS] = _write_file(tmp / PATTERNS, lambda fh: np.save(fh, x, allow_pickle=False))
     man["files"][IDS] = _write_file(tmp / IDS, lambda fh: np.save(fh, ids, allow_pickle=False))
-    payload = memory._index_payload() if hasattr(memory, "_index_payload") else None
-    if payload is not None:
-        meta, index = payload
-        man["files"][INDEX] = _write_index(tmp / INDEX, index)
-        man["index"] = {"file": INDEX, "meta": meta}
+    if content.index is not None:
+        man["files"][INDEX] = _write_index(tmp / INDEX, content.index)
+        man["index"] = {"file": INDEX, "meta": content.index_meta or {}}
     text = json.dumps(man, indent=2, sort_keys=True).encode("utf-8")
     _write_file(tmp / MANIFEST, lambda fh: fh.write(text))
     _fsync_dir(tmp)
 
 
-def save_memory(memory: Any, path: Any, *, overwrite: bool = True) -> None:
-    """Write ``memory`` to the store folder ``path``, atomically.
+def write_store(content: StoreContent, path: Any, *, overwrite: bool = True, where: str = "DenseMemory.save") -> None:
+    """Write ``content`` to the store folder ``path``, atomically.
 
     A crash at any moment leaves the old store or the new one loadable at
     ``path`` (the protocol is described in :mod:`densemem.store`).
 
     Parameters
     ----------
-    memory : DenseMemory
+    content : StoreContent
     path : str or os.PathLike
         The store folder. Its parent must exist.
     overwrite : bool, default True
@@ -217,7 +230,7 @@ def save_memory(memory: Any, path: Any, *, overwrite: bool = True) -> None:
     Raises
     ------
     InputTypeError
-        ``memory`` is not a DenseMemory or ``path`` is not a path.
+        ``path`` is not a path.
     InputValueError
         The parent folder is missing, ``path`` is a file or a foreign folder,
         or a store exists and ``overwrite=False``.
@@ -230,11 +243,6 @@ def save_memory(memory: Any, path: Any, *, overwrite: bool = True) -> None:
     >>> sorted(os.listdir(path))
     ['ids.npy', 'manifest.json', 'patterns.npy']
     """
-    from ..dense import DenseMemory
-
-    where = "DenseMemory.save"
-    if not isinstance(memory, DenseMemory):
-        raise InputTypeError(f"{where}: `memory` must be a DenseMemory; got {type(memory).__name__}.")
     p = _as_path(path, where)
     if not p.parent.is_dir():
         raise InputValueError(f"{where}: the parent folder of `path` does not exist: {str(p.parent)!r}.")
@@ -243,7 +251,7 @@ def save_memory(memory: Any, path: Any, *, overwrite: bool = True) -> None:
     tmp = _sibling(p, f"tmp-{os.getpid()}-{secrets.token_hex(4)}")
     tmp.mkdir()
     try:
-        _fill_folder(memory, tmp)
+        _fill_folder(content, tmp)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
@@ -368,8 +376,8 @@ def _check_arrays(x: np.ndarray, ids: np.ndarray, man: dict[str, Any], folder: P
         )
 
 
-def load_memory(path: Any, *, mmap: bool = False, verify: bool = True) -> Any:
-    """Read a store folder written by :func:`save_memory`.
+def read_store(path: Any, *, mmap: bool = False, verify: bool = True, where: str = "DenseMemory.load") -> StoreContent:
+    """Read a store folder written by :func:`write_store`.
 
     Parameters
     ----------
@@ -384,7 +392,7 @@ def load_memory(path: Any, *, mmap: bool = False, verify: bool = True) -> Any:
 
     Returns
     -------
-    DenseMemory
+    StoreContent
 
     Raises
     ------
@@ -400,7 +408,6 @@ def load_memory(path: Any, *, mmap: bool = False, verify: bool = True) -> Any:
     >>> densemem.DenseMemory.load(path, mmap=True).beta
     4.0
     """
-    where = "DenseMemory.load"
     p = _as_path(path, where)
     folder = _resolve(p)
     if folder is None:
@@ -419,28 +426,25 @@ def load_memory(path: Any, *, mmap: bool = False, verify: bool = True) -> Any:
     return _build(man, x, ids, folder, where, verify)
 
 
-def _build(man: dict[str, Any], x: np.ndarray, ids: np.ndarray, folder: Path, where: str, verify: bool) -> Any:
-    from ..dense import DenseMemory
-
-    mem = DenseMemory(man["dim"], normalize=man["normalize"], beta=man["beta"])
-    table = PatternTable.trusted(x, ids, normalize=man["normalize"])
-    if ids.dtype.kind == "i" and isinstance(man.get("next_id"), int):
-        table._next_id = max(table._next_id, man["next_id"])
-    mem._table = table
+def _build(man: dict[str, Any], x: np.ndarray, ids: np.ndarray, folder: Path, where: str, verify: bool) -> StoreContent:
     index_entry = man.get("index")
+    meta, index = None, None
     if index_entry:
         if not isinstance(index_entry, dict) or index_entry.get("file") != INDEX:
             raise StoreFormatError(f"{where}: {str(folder / MANIFEST)!r} has a bad 'index' entry.")
         fpath = _verify_file(folder, INDEX, man["files"].get(INDEX), where, hash_it=verify)
-        if hasattr(mem, "_restore_index"):
-            import faiss
+        import faiss
 
-            try:
-                index = faiss.read_index(str(fpath))
-            except RuntimeError as exc:
-                raise StoreFormatError(f"{where}: {str(fpath)!r} is not a readable faiss index ({exc}).") from None
-            mem._restore_index(index_entry.get("meta", {}), index)
-    return mem
+        try:
+            index = faiss.read_index(str(fpath))
+        except RuntimeError as exc:
+            raise StoreFormatError(f"{where}: {str(fpath)!r} is not a readable faiss index ({exc}).") from None
+        meta = index_entry.get("meta", {})
+    next_id = man.get("next_id")
+    return StoreContent(
+        x=x, ids=ids, normalize=bool(man["normalize"]), beta=float(man["beta"]),
+        next_id=next_id if isinstance(next_id, int) else 0, index_meta=meta, index=index,
+    )
 
 
 # ------------------------------------------------------------------ describe

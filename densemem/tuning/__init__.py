@@ -4,22 +4,20 @@
 frozen dataclass with ``to_dict()``.
 """
 
-from ._tune import (
+from ._reports import (
     BetaChoice,
     BetaPrediction,
     SeparationReport,
     SweepReport,
     TuneReport,
-    TuneSpec,
-    choose_beta,
     format_report,
     plot_sweep,
-    predict_beta,
-    separation,
-    sweep_beta,
-    tune_beta,
     tune_text,
+    verdict,
 )
+from ._sweep import choose_beta, sweep_beta
+from ._theory import predict_beta, separation
+from ._tune import TuneSpec, tune_beta
 
 __all__ = [
     "BetaChoice",
@@ -36,4 +34,5 @@ __all__ = [
     "sweep_beta",
     "tune_beta",
     "tune_text",
+    "verdict",
 ]

@@ -10,19 +10,6 @@ import numpy as np
 
 from ..errors import InputTypeError, InputValueError, MissingExtraError
 
-__all__ = [
-    "SeparationReport",
-    "BetaPrediction",
-    "SweepReport",
-    "BetaChoice",
-    "TuneReport",
-    "format_report",
-    "KINDS",
-    "plot_sweep",
-    "tune_text",
-    "verdict",
-    "SWEEP_COLUMNS",
-]
 
 KINDS = ("single", "metastable", "global")  # codes 0, 1, 2 of SweepReport.kind
 

@@ -24,41 +24,12 @@ from typing import Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, PositiveFloat
 
 from ._reports import (
-    KINDS,
-    BetaChoice,
-    BetaPrediction,
-    SeparationReport,
-    SweepReport,
     TuneReport,
-    format_report,
-    plot_sweep,
-    tune_text,
-    verdict,
 )
-from ._sweep import METHODS, TICK, choose_beta, sweep_beta
+from ._sweep import TICK, choose_beta, sweep_beta
 from ._theory import _check_memory, predict_beta, separation
 from ..dense import DenseMemory
 from ..errors import InputTypeError
-
-__all__ = [
-    "separation",
-    "predict_beta",
-    "sweep_beta",
-    "choose_beta",
-    "tune_beta",
-    "TuneSpec",
-    "SeparationReport",
-    "BetaPrediction",
-    "SweepReport",
-    "BetaChoice",
-    "TuneReport",
-    "format_report",
-    "plot_sweep",
-    "tune_text",
-    "verdict",
-    "KINDS",
-    "METHODS",
-]
 
 
 class TuneSpec(BaseModel):

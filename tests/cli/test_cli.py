@@ -19,7 +19,10 @@ from densemem.cli import main
 pa = pytest.importorskip("pyarrow")
 pq = pytest.importorskip("pyarrow.parquet")
 
-ENV = {**os.environ, "PYTHONWARNINGS": "ignore"}
+ROOT = Path(__file__).resolve().parents[2]
+# subprocesses import the densemem of this checkout, not whichever one is installed
+ENV = {**os.environ, "PYTHONWARNINGS": "ignore",
+       "PYTHONPATH": os.pathsep.join([str(ROOT), *filter(None, [os.environ.get("PYTHONPATH")])])}
 
 
 def _cmd(*args: str) -> list[str]:

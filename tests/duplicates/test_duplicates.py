@@ -2,7 +2,7 @@
 
 References used: brute-force pair computation in numpy (float64), faiss
 IndexFlatIP.range_search (exact inner-product search), scipy.sparse.csgraph
-connected_components, scikit-learn's bundled digits (UCI optdigits, CHECKS.md 25),
+connected_components, scikit-learn's bundled digits (UCI optdigits; E. Alpaydin, C. Kaynak, 1998),
 and Python's csv / json modules and pyarrow for reading the plan files back.
 """
 
@@ -22,7 +22,7 @@ from scipy.sparse.csgraph import connected_components
 
 import densemem
 from densemem.duplicates import _candidates as C
-from densemem.duplicates import DedupSpec, DuplicatePlan, find_duplicates
+from densemem.duplicates import DedupSpec, DuplicatePlan, plan_duplicates
 from densemem.errors import (
     DenseMemWarning,
     InputTypeError,
@@ -118,7 +118,8 @@ def planted_digits():
 # ------------------------------------------------------------------ exact edges
 def test_exact_edges_equal_brute_force_on_digits(digits, digits_unit):
     t = gap_threshold(digits, 0.995)
-    plan = find_duplicates(digits, t, candidates="exact", return_pairs=True)
+    with pytest.warns(DenseMemWarning, match=r"grouping='chain' joined items far below"):
+        plan = plan_duplicates(digits, t, candidates="exact", grouping="chain", return_pairs=True)
     ref = brute_pairs(digits, t)  # reference: numpy brute force, float64
     assert len(ref) > 1000
     assert plan_pairs(plan) == ref
@@ -127,7 +128,7 @@ def test_exact_edges_equal_brute_force_on_digits(digits, digits_unit):
     q = np.repeat(np.arange(len(digits_unit)), np.diff(lims.astype(np.int64)))
     faiss_pairs = {(a, b) for a, b in zip(q.tolist(), lab.tolist()) if a < b}
     assert plan_pairs(plan) == faiss_pairs
-    # reference: scipy connected_components of the brute-force graph gives the same groups
+    # reference: scipy connected_components of the brute-force graph gives the same chain groups
     i, j = map(np.asarray, zip(*ref))
     _, lab_cc = connected_components(coo_matrix((np.ones(i.size), (i, j)), shape=(1797, 1797)), directed=False)
     ref_groups = {frozenset(np.flatnonzero(lab_cc == c).tolist()) for c in np.unique(lab_cc)}
@@ -143,16 +144,16 @@ def _faiss_range(xu: np.ndarray, t: float):
 def test_exact_edges_equal_brute_force_on_random_data(rng):
     x = rng.standard_normal((600, 8)).astype(np.float32)
     t = gap_threshold(x, 0.995)
-    plan = find_duplicates(x, t, candidates="exact", return_pairs=True, work_mib=0.1)  # many small chunks
+    plan = plan_duplicates(x, t, candidates="exact", return_pairs=True, work_mib=0.1)  # many small chunks
     assert plan_pairs(plan) == brute_pairs(x, t)  # reference: numpy brute force
     u = unit64(x)  # reference: numpy cosine of each reported pair
     sims = np.einsum("ij,ij->i", u[plan.pair_ids[:, 0]], u[plan.pair_ids[:, 1]])
-    np.testing.assert_allclose(plan.pair_similarity, sims, atol=1e-6)
+    np.testing.assert_allclose(plan.pair_similarities, sims, atol=1e-6)
 
 
 def test_threshold_one_finds_exact_copies_only(digits):
     x = np.concatenate([digits[:50], digits[:10], 3.0 * digits[10:20]])
-    plan = find_duplicates(x, 1.0, return_pairs=True)
+    plan = plan_duplicates(x, 1.0, return_pairs=True)
     # derived: copies and positive multiples have cosine exactly 1; distinct digits rows do not
     assert brute_pairs(x[:50], 1.0) == set()
     assert partition(plan) == {frozenset({i, 50 + i}) for i in range(20)}
@@ -171,7 +172,7 @@ def test_planted_digits_precision_recall(planted_digits, candidates):
     for a, b in truth:
         mask[a, b] = False
     assert inside.min() > t + 0.005 and sim[mask].max() < t - 0.01  # the threshold separates them
-    plan = find_duplicates(x, t, candidates=candidates, return_pairs=True, seed=3)
+    plan = plan_duplicates(x, t, candidates=candidates, return_pairs=True, seed=3)
     found = plan_pairs(plan)
     precision = len(found & truth) / len(found)
     recall = len(found & truth) / len(truth)
@@ -189,7 +190,7 @@ def test_ivf_pairs_against_faiss_flat_on_clustered_data(rng):
     src = rng.integers(0, 6000, 600)
     x = np.concatenate([x, x[src] + 0.02 * rng.standard_normal((600, 32))]).astype(np.float32)
     t = 0.99
-    plan = find_duplicates(x, t, candidates="ivf", return_pairs=True, check_sample=500)
+    plan = plan_duplicates(x, t, candidates="ivf", return_pairs=True, check_sample=500)
     u = unit64(x).astype(np.float32)
     lims, _, lab = _faiss_range(u, t - 1e-4)  # reference: faiss exact range search + float64 rule
     q = np.repeat(np.arange(len(u)), np.diff(lims.astype(np.int64)))
@@ -235,32 +236,38 @@ def mixes(plan: DuplicatePlan, fam: np.ndarray) -> int:
     return sum(len({int(fam[r]) for r in g.rows if fam[r] >= 0}) > 1 for g in plan.groups)
 
 
-def test_no_chaining_keeps_planted_families_apart(digits):
+def test_star_and_complete_keep_planted_families_apart(digits):
     t = 0.98
     x, fam = bridged_families(digits, t)
     assert (fam == -1).sum() >= 4
-    loose = find_duplicates(x, t)
-    assert mixes(loose, fam) == (fam == -1).sum()  # single linkage chains each pair of families
-    for mode in (True, "complete"):
-        tight = find_duplicates(x, t, no_chaining=mode)
-        assert tight.no_chaining == "complete"
-        assert mixes(tight, fam) == 0
-        u = unit64(x)  # reference: numpy pairwise cosines within each group
+    with pytest.warns(DenseMemWarning, match=r"grouping='chain' joined items far below the threshold"):
+        loose = plan_duplicates(x, t, grouping="chain")  # single linkage chains each pair of families
+    assert mixes(loose, fam) == (fam == -1).sum()
+    u = unit64(x)  # reference: numpy pairwise cosines within each group
+    for mode in ("star", "complete"):
+        tight = plan_duplicates(x, t, grouping=mode)
+        assert tight.grouping == mode
         for g in tight.groups:
             s = u[g.rows] @ u[g.rows].T
-            assert s.min() >= t - RULE
+            r = digits_row(g)
+            assert (u[g.rows] @ u[r]).min() >= t - RULE  # every member meets t against the kept one
+            if mode == "complete":
+                assert s.min() >= t - RULE
             assert g.min_similarity == pytest.approx(s.min(), abs=1e-6)
+        assert mixes(tight, fam) <= (0 if mode == "complete" else (fam == -1).sum())
+    assert plan_duplicates(x, t).grouping == "star"  # the default
 
 
-def test_star_mode_every_member_near_its_representative(digits):
+def test_star_is_the_default_and_every_member_meets_its_representative(digits):
     t = 0.97
-    plan = find_duplicates(digits, t, no_chaining="star")
-    loose = find_duplicates(digits, t)
+    plan = plan_duplicates(digits, t)
+    with pytest.warns(DenseMemWarning, match=r"lowest 0\.7\d+, in a group of"):
+        loose = plan_duplicates(digits, t, grouping="chain")
     u = unit64(digits)
     for g in plan.groups:  # reference: numpy cosine to the representative
         r = u[digits_row(g)]
         assert (u[g.rows] @ r).min() >= t - RULE
-    assert loose.min_similarity.min() < t  # without the option, chained members fall below t
+    assert loose.min_similarity.min() < t  # chained members fall below t
     assert plan.n_groups >= loose.n_groups
 
 
@@ -273,21 +280,22 @@ def test_attractor_agrees_with_graph_on_separated_families(digits):
     base = digits[separated_rows(digits, 0.88, seed=2)].astype(np.float64)
     x, fam = plant(base, 40, np.random.default_rng(11), noise=0.2)
     t = 0.97
-    graph = find_duplicates(x, t)
-    attr = find_duplicates(x, t, method="attractor")
-    assert attr.candidates == "attractor"
-    assert attr.candidate_params["beta"] == pytest.approx(2.0 / (1.0 - t))  # derived in _dup_attractor
+    graph = plan_duplicates(x, t)
+    attr = plan_duplicates(x, t, method="attractor")
+    assert attr.method == "attractor" and attr.n_pairs == graph.n_pairs
+    assert attr.candidate_params["attractor"]["beta"] == pytest.approx(2.0 / (1.0 - t))  # derived in _attractor
     assert partition(attr) == partition(graph)
     assert partition(graph) == {frozenset(np.flatnonzero(fam == f).tolist()) for f in range(40)}
 
 
 def test_attractor_states_are_dense_memory_fixed_points(digits):
     """The attractor grouping reuses DenseMemory.retrieve: a planted pair's final state is the
-    blend of its members (CHECKS.md 9: metastable averages of subsets)."""
+    blend of its members (metastable states average a subset of
+    patterns: Ramsauer et al., "Hopfield Networks is All You Need", ICLR 2021, section 2)."""
     base = digits[separated_rows(digits, 0.88, seed=2)][:30].astype(np.float64)
     x = np.concatenate([base, base[:1] + np.random.default_rng(0).normal(0, 0.2, (1, 64))]).astype(np.float32)
     t = 0.97
-    plan = find_duplicates(x, t, method="attractor")
+    plan = plan_duplicates(x, t, method="attractor")
     assert partition(plan) == {frozenset({0, 30})}
     mem = densemem.DenseMemory.from_array(unit64(x), beta=2.0 / (1.0 - t))
     res = mem.retrieve(unit64(x)[[0, 30]], steps=300, tol=1e-7, k=2)
@@ -302,7 +310,7 @@ def test_representatives_and_stats(planted_digits):
     u = unit64(x)
     score = np.random.default_rng(0).random(len(x))
     for rule in ("medoid", "first", score):
-        plan = find_duplicates(x, 0.98, representative=rule)
+        plan = plan_duplicates(x, 0.98, representative=rule)
         for g in plan.groups:
             s = u[g.rows] @ u[g.rows].T  # reference: numpy pairwise cosines
             off = s[~np.eye(len(g), dtype=bool)]
@@ -326,8 +334,8 @@ def test_memory_input_uses_its_ids(planted_digits):
     names = [f"doc{i}" for i in range(len(x))]
     mem = densemem.DenseMemory.from_array(x, ids=names)
     before = digest(mem.patterns), digest(mem.ids)
-    plan = find_duplicates(mem, 0.98)
-    ref = find_duplicates(x, 0.98)
+    plan = plan_duplicates(mem, 0.98)
+    ref = plan_duplicates(x, 0.98)
     assert {frozenset(f"doc{i}" for i in g) for g in partition(ref)} == partition(plan)
     assert (digest(mem.patterns), digest(mem.ids)) == before
 
@@ -340,8 +348,8 @@ def test_inputs_and_files_unchanged_and_plan_files_parse(planted_digits, tmp_pat
     arr = np.load(src, mmap_mode="r")
     own = x.copy()
     own_hash = digest(own)
-    plan = find_duplicates(arr, 0.98, return_pairs=True)
-    find_duplicates(own, 0.98, method="graph", no_chaining=True)
+    plan = plan_duplicates(arr, 0.98, return_pairs=True)
+    plan_duplicates(own, 0.98, method="graph", grouping="complete")
     paths = plan.write(tmp_path)
     assert hashlib.sha256(src.read_bytes()).hexdigest() == file_hash  # sha256 before/after
     assert digest(own) == own_hash
@@ -352,7 +360,10 @@ def test_inputs_and_files_unchanged_and_plan_files_parse(planted_digits, tmp_pat
         rows = list(csv.DictReader(fh))
     assert len(rows) == plan.member_ids.size
     assert [int(r["id"]) for r in rows] == plan.member_ids.tolist()
-    assert sum(r["representative"] == "True" for r in rows) == plan.n_groups
+    assert sum(r["kept"] == "True" for r in rows) == plan.n_groups
+    assert all(r["stored"] == "False" for r in rows)
+    kept_for = dict(zip(plan.drop_ids.tolist(), plan.duplicate_of_ids.tolist()))
+    assert all(int(r["representative_id"]) == kept_for[int(r["id"])] for r in rows if r["kept"] == "False")
     doc = json.loads(Path(paths["groups_json"]).read_text())  # reference: json module
     assert doc["summary"]["n_groups"] == plan.n_groups
     assert [g["ids"] for g in doc["groups"]] == [g.ids.tolist() for g in plan.groups]
@@ -371,7 +382,7 @@ def test_inputs_and_files_unchanged_and_plan_files_parse(planted_digits, tmp_pat
 def test_zero_vectors_are_listed_excluded_and_kept():
     x = np.array([[1.0, 0.0], [0.0, 0.0], [1.0, 1e-4], [0.0, 0.0], [0.0, 1.0]], dtype=np.float32)
     with pytest.warns(DenseMemWarning, match=r"2 zero vector\(s\) .*\(ids 1, 3\)"):
-        plan = find_duplicates(x, 0.99)
+        plan = plan_duplicates(x, 0.99)
     assert plan.excluded_zero_ids.tolist() == [1, 3]
     assert partition(plan) == {frozenset({0, 2})}  # derived: cos = 1/sqrt(1 + 1e-8)
     assert plan.keep_ids.tolist() == [0, 1, 3, 4]
@@ -379,9 +390,9 @@ def test_zero_vectors_are_listed_excluded_and_kept():
 
 def test_progress_bar_on_stderr(capsys):
     x = np.eye(4, dtype=np.float32)
-    find_duplicates(x, 0.9, progress=True)
+    plan_duplicates(x, 0.9, progress=True)
     assert "dedup" in capsys.readouterr().err
-    find_duplicates(x, 0.9, progress=False)
+    plan_duplicates(x, 0.9, progress=False)
     assert capsys.readouterr().err == ""
 
 
@@ -389,14 +400,14 @@ def test_auto_choice_is_reported():
     assert C.choose_source(1797, 64, "auto")[0] == "exact"
     name, why = C.choose_source(1_000_000, 128, "auto")
     assert name == "ivf" and "inverted-file" in why
-    plan = find_duplicates(np.eye(3), 0.9)
+    plan = plan_duplicates(np.eye(3), 0.9)
     assert plan.candidates == "exact" and "brute force" in plan.candidate_params["chosen_because"]
 
 
 def test_spec_round_trip(planted_digits):
     x, _ = planted_digits
-    spec = DedupSpec.model_validate_json('{"threshold": 0.98, "no_chaining": "complete"}')
-    assert partition(spec.run(x)) == partition(find_duplicates(x, 0.98, no_chaining="complete"))
+    spec = DedupSpec.model_validate_json('{"threshold": 0.98, "grouping": "complete"}')
+    assert partition(spec.run(x)) == partition(plan_duplicates(x, 0.98, grouping="complete"))
     score = np.arange(len(x), dtype=float)
     q = DedupSpec(representative="quality").run(x, quality=score)
     assert q.representative_rule == "quality"
@@ -415,29 +426,27 @@ X3 = np.array([[1.0, 0.0], [1.0, 0.0], [0.0, 1.0]], dtype=np.float32)
         ({"threshold": "high"}, InputTypeError, r"`threshold` must be a real number; got str 'high'"),
         ({"method": "cluster"}, InputValueError, r"`method` must be one of 'graph', 'attractor'; got 'cluster'"),
         ({"candidates": "lsh"}, InputValueError, r"`candidates` must be one of .*; got 'lsh'"),
-        ({"no_chaining": "maybe"}, InputValueError, r"`no_chaining` must be one of 'off', 'star', 'complete'"),
+        ({"grouping": "maybe"}, InputValueError, r"`grouping` must be one of 'star', 'complete', 'chain'; got 'maybe'"),
         ({"retrieval": "fast"}, InputValueError, r"`retrieval` must be one of"),
         ({"representative": "best"}, InputValueError, r"`representative` must be one of 'medoid', 'first'"),
         ({"representative": None}, InputTypeError, r"`representative` must be 'medoid', 'first' or an array"),
         ({"representative": np.array(["a", "b", "c"])}, InputTypeError, r"scores must be real numbers; got dtype <U1"),
         ({"representative": np.ones(2)}, InputValueError, r"must have shape \(3,\), one per row of `data`; got shape \(2,\)"),
         ({"representative": np.array([1.0, np.nan, 0.0])}, InputValueError, r"score at row 1 is not finite"),
-        ({"method": "attractor", "candidates": "ivf"}, InputValueError, r"`candidates` applies to method='graph' only"),
-        ({"method": "attractor", "no_chaining": True}, InputValueError, r"`no_chaining` applies to method='graph' only"),
         ({"method": "attractor", "threshold": 1.0}, InputValueError, r"method='attractor' needs `threshold` < 1"),
         ({"target_recall": 0.0}, InputValueError, r"`target_recall` must be in \(0, 1\]; got 0.0"),
         ({"work_mib": 0}, InputValueError, r"`work_mib` must be a finite number > 0; got 0"),
         ({"progress": "yes"}, InputTypeError, r"`progress` must be True, False or None; got 'yes'"),
-        ({"k": 0}, InputValueError, r"find_duplicates: `k` must be an integer >= 1; got 0"),
+        ({"k": 0}, InputValueError, r"plan_duplicates: `k` must be an integer >= 1; got 0"),
         ({"check_sample": -1}, InputValueError, r"`check_sample` must be an integer >= 0; got -1"),
-        ({"beta": -2.0}, InputValueError, r"find_duplicates: `beta` must be a finite number > 0; got -2.0"),
-        ({"ids": [1, 2]}, InputValueError, r"find_duplicates: `ids` has 2 entries for 3 patterns"),
+        ({"beta": -2.0}, InputValueError, r"plan_duplicates: `beta` must be a finite number > 0; got -2.0"),
+        ({"ids": [1, 2]}, InputValueError, r"plan_duplicates: `ids` has 2 entries for 3 patterns"),
     ],
 )
 def test_bad_options(kwargs, exc, match):
     kw = {"threshold": 0.9, **kwargs}
     with pytest.raises(exc, match=match):
-        find_duplicates(X3, **kw)
+        plan_duplicates(X3, **kw)
 
 
 @pytest.mark.parametrize(
@@ -445,7 +454,7 @@ def test_bad_options(kwargs, exc, match):
     [
         (np.array([[1.0, 0.0], [np.nan, 1.0]]), InputValueError, r"`data` contains NaN at row 1; clean or drop it"),
         (np.array([[1.0, 0.0], [1.0, 0.0], [np.inf, 1.0]]), InputValueError, r"`data` contains infinity at row 2"),
-        (np.empty((0, 4)), InputValueError, r"find_duplicates: `data` is empty \(0 rows\)"),
+        (np.empty((0, 4)), InputValueError, r"plan_duplicates: `data` is empty \(0 rows\)"),
         (np.empty((3, 0)), InputValueError, r"`data` has 0 features per row"),
         (np.ones(5), InputValueError, r"`data` must be 2-D \(n_rows, n_features\); got 1-D"),
         ("embeddings.npy", InputTypeError, r"`data` must be a numeric array; got str"),
@@ -454,20 +463,20 @@ def test_bad_options(kwargs, exc, match):
 )
 def test_bad_data(data, exc, match):
     with pytest.raises(exc, match=match):
-        find_duplicates(data, 0.9)
+        plan_duplicates(data, 0.9)
 
 
 def test_memory_with_ids_and_missing_tqdm(monkeypatch):
     mem = densemem.DenseMemory.from_array(X3)
     with pytest.raises(InputValueError, match=r"`ids` must be None when `data` is a DenseMemory"):
-        find_duplicates(mem, 0.9, ids=[0, 1, 2])
+        plan_duplicates(mem, 0.9, ids=[0, 1, 2])
     monkeypatch.setitem(sys.modules, "tqdm", None)  # import tqdm now raises ImportError
     with pytest.raises(MissingExtraError, match=r"`progress=True` needs tqdm"):
-        find_duplicates(X3, 0.9, progress=True)
+        plan_duplicates(X3, 0.9, progress=True)
 
 
 def test_plan_access_and_write_errors(tmp_path):
-    plan = find_duplicates(X3, 0.9)
+    plan = plan_duplicates(X3, 0.9)
     assert plan.group(0).ids.tolist() == [0, 1]
     with pytest.raises(InputValueError, match=r"DuplicatePlan.group: `g` must be in \[0, 1\); got 1"):
         plan.group(1)
@@ -483,14 +492,14 @@ def test_plan_access_and_write_errors(tmp_path):
 def test_rewrite_without_pyarrow_removes_the_stale_parquet(tmp_path, monkeypatch):
     # a folder written with pyarrow, rewritten (overwrite=True) without it: the old
     # groups.parquet would describe the old plan, so it goes; files of other names stay
-    old = find_duplicates(X3, 0.9)
+    old = plan_duplicates(X3, 0.9)
     old.write(tmp_path)
     (tmp_path / "notes.txt").write_text("mine")
     (tmp_path / "groups.parquet.bak").write_text("mine too")
     assert (tmp_path / "groups.parquet").exists()
     monkeypatch.setitem(sys.modules, "pyarrow", None)  # `import pyarrow` now fails
     monkeypatch.setitem(sys.modules, "pyarrow.parquet", None)
-    new = find_duplicates(X3, 0.999)
+    new = plan_duplicates(X3, 0.999)
     with pytest.raises(InputValueError, match=r"DuplicatePlan.write: .*groups.csv' already exists"):
         new.write(tmp_path)
     paths = new.write(tmp_path, overwrite=True)
@@ -508,7 +517,7 @@ def test_stale_parquet_alone_blocks_a_write_without_overwrite(tmp_path, monkeypa
     monkeypatch.setitem(sys.modules, "pyarrow", None)
     with pytest.raises(InputValueError, match=r"DuplicatePlan.write: .*groups.parquet' already exists; "
                                               r"pass overwrite=True"):
-        find_duplicates(X3, 0.9).write(tmp_path)
+        plan_duplicates(X3, 0.9).write(tmp_path)
     assert (tmp_path / "groups.parquet").read_bytes() == b"old plan"
     assert sorted(p.name for p in tmp_path.iterdir()) == ["groups.parquet"]
 

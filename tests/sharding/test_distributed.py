@@ -25,9 +25,25 @@ from densemem import (
     StoreFormatError,
 )
 from densemem.sharding import _dask as D
-from densemem.sharding import shard_memory
+from densemem.sharding import open_sharded, shard_memory
 
 distributed = pytest.importorskip("distributed")
+
+
+def _on(store, client, retries=2, timeout=None):
+    sm = open_sharded(store) if isinstance(store, (str, os.PathLike)) else store
+    return sm.on_cluster(client, retries=retries, timeout=timeout)
+
+
+def _retrieve(store, q, beta=None, *, client, retries=2, timeout=None, **kw):
+    """One call through the cluster front door (ShardedMemory.on_cluster(...).retrieve)."""
+    with _on(store, client, retries, timeout) as cluster:
+        return cluster.retrieve(q, beta, **kw)
+
+
+def _nearest(store, q, k=None, *, client, retries=2, timeout=None, **kw):
+    with _on(store, client, retries, timeout) as cluster:
+        return cluster.nearest(q, k, **kw)
 
 
 @pytest.fixture(scope="module")
@@ -74,7 +90,7 @@ def test_retrieve_equals_single_machine(client, data, method, beta, steps):
     mem, sm, *_ = data
     q = data[4]
     a = mem.retrieve(q, beta, steps=steps, k=6, method=method)
-    b = D.retrieve(sm, q, beta, steps=steps, k=6, method=method, client=client, timeout=60)
+    b = _retrieve(sm, q, beta, steps=steps, k=6, method=method, client=client, timeout=60)
     _same(a, b)
     if method == "certified":
         assert np.all(b.mass_bound <= 1e-6) and np.all(b.state_bound == 2 * sm.max_norm * b.mass_bound)
@@ -86,7 +102,7 @@ def test_empty_shards_and_a_path_argument(client, data, method):
     assert 0 in sm_empty.counts
     q = np.random.default_rng(3).standard_normal((4, 24)).astype(np.float32)
     a = small.retrieve(q, steps=2, k=5, method=method)
-    b = D.retrieve(str(sm_empty.path), q, steps=2, k=5, method=method, client=client, timeout=60)
+    b = _retrieve(str(sm_empty.path), q, steps=2, k=5, method=method, client=client, timeout=60)
     _same(a, b)
 
 
@@ -98,10 +114,10 @@ def test_nearest_equals_faiss_flat(client, data, metric):
     index = faiss.IndexFlatIP(24) if metric == "ip" else faiss.IndexFlatL2(24)
     index.add(mem.patterns)
     scores, pos = index.search(q / np.linalg.norm(q, axis=1, keepdims=True), 9)  # the memory normalises
-    got = D.nearest(sm, q, 9, metric=metric, client=client, timeout=60)
+    got = _nearest(sm, q, 9, metric=metric, client=client, timeout=60)
     np.testing.assert_array_equal(got.ids, mem.ids[pos])
     np.testing.assert_allclose(got.scores, scores, rtol=1e-5, atol=1e-5)
-    one = D.nearest(sm, q[0], 3, metric=metric, client=client)
+    one = _nearest(sm, q[0], 3, metric=metric, client=client)
     assert one.ids.tolist() == mem.ids[pos[0, :3]].tolist()
 
 
@@ -109,7 +125,7 @@ def test_workers_load_each_shard_once(client, data):
     mem, sm, *_ = data
     q = data[4]
     for _ in range(3):
-        D.retrieve(sm, q, steps=2, k=3, method="exact", client=client)
+        _retrieve(sm, q, steps=2, k=3, method="exact", client=client)
     loads = client.run(lambda: [f for f in D._LOADS if "uneven" in f])
     for folders in loads.values():
         # each worker process loaded each shard at most once (the per-process cache)
@@ -120,7 +136,7 @@ def test_workers_load_each_shard_once(client, data):
 def test_one_dimensional_query(client, data):
     mem, sm, *_ = data
     a = mem.retrieve(data[4][0], k=4, method="exact")
-    b = D.retrieve(sm, data[4][0], k=4, method="exact", client=client)
+    b = _retrieve(sm, data[4][0], k=4, method="exact", client=client)
     assert b.states.shape == (24,) and isinstance(b.energy, float)
     assert b.top_ids.tolist() == a.top_ids.tolist()
 
@@ -131,47 +147,38 @@ def test_missing_shard_file_is_a_clear_error(client, tmp_path):
     os.remove(tmp_path / "s" / "shard-00002" / "ids.npy")
     with pytest.raises(
         StoreFormatError,
-        match=r"densemem.sharding.retrieve: shard 2 at .*shard-00002' cannot be loaded: .*ids.npy' is missing",
+        match=r"ClusterShards.retrieve: shard 2 at .*shard-00002' cannot be loaded: .*ids.npy' is missing",
     ):
-        D.retrieve(sm, np.ones(4), client=client, retries=0, timeout=60)
+        _retrieve(sm, np.ones(4), client=client, retries=0, timeout=60)
 
 
 def test_argument_errors(client, data):
     _, sm, *_ = data
-    with pytest.raises(InputTypeError, match=r"densemem.sharding.retrieve: `client` must be a dask.distributed.Client"):
-        D.retrieve(sm, np.ones(24), client=42)
-    with pytest.raises(InputTypeError, match=r"densemem.sharding.nearest: `store` must be a ShardedMemory"):
-        D.nearest(3, np.ones(24), client=client)
-    with pytest.raises(InputValueError, match=r"densemem.sharding.retrieve: unknown `method` 'index'"):
-        D.retrieve(sm, np.ones(24), method="index", client=client)  # type: ignore[arg-type]
-    with pytest.raises(InputValueError, match=r"densemem.sharding.retrieve: `retries` must be an integer >= 0; got -1"):
-        D.retrieve(sm, np.ones(24), client=client, retries=-1)
-    with pytest.raises(InputValueError, match=r"densemem.sharding.retrieve: `timeout` must be a finite number > 0"):
-        D.retrieve(sm, np.ones(24), client=client, timeout=0)
-    with pytest.raises(TimeoutError, match=r"densemem.sharding.retrieve: no answer within timeout="):
-        D.retrieve(sm, np.ones((2000, 24)), client=client, timeout=1e-4)
+    with pytest.raises(InputTypeError, match=r"ShardedMemory.on_cluster: `client` must be a dask.distributed.Client"):
+        _retrieve(sm, np.ones(24), client=42)
+    with pytest.raises(InputValueError, match=r"ClusterShards.retrieve: `method` 'index' is not available on a sharded"):
+        _retrieve(sm, np.ones(24), method="index", client=client)  # type: ignore[arg-type]
+    with pytest.raises(InputValueError, match=r"ShardedMemory.on_cluster: `retries` must be an integer >= 0; got -1"):
+        _retrieve(sm, np.ones(24), client=client, retries=-1)
+    with pytest.raises(InputValueError, match=r"ShardedMemory.on_cluster: `timeout` must be a finite number > 0"):
+        _retrieve(sm, np.ones(24), client=client, timeout=0)
+    with pytest.raises(TimeoutError, match=r"ClusterShards.retrieve: no answer within timeout="):
+        _retrieve(sm, np.ones((2000, 24)), client=client, timeout=1e-4)
 
 
 def test_cluster_without_workers_is_an_error(data):
     _, sm, *_ = data
     with distributed.LocalCluster(n_workers=0, processes=False, dashboard_address=":0") as cluster:
-        with pytest.raises(InputValueError, match=r"densemem.sharding.nearest: the Dask cluster has no workers"):
-            D.nearest(sm, np.ones(24), client=cluster.scheduler_address)  # an address string
+        with pytest.raises(InputValueError, match=r"ClusterShards.nearest: the Dask cluster has no workers"):
+            _nearest(sm, np.ones(24), client=cluster.scheduler_address)  # an address string
 
 
 def test_missing_extra_says_how_to_install(monkeypatch, data):
     _, sm, *_ = data
     monkeypatch.setitem(sys.modules, "distributed", None)  # import distributed now raises ImportError
     with pytest.raises(MissingExtraError, match=r"pip install densemem\[dist\]"):
-        D.retrieve(sm, np.ones(24), client="tcp://127.0.0.1:1")
+        _retrieve(sm, np.ones(24), client="tcp://127.0.0.1:1")
     assert sm.retrieve(np.ones(24), method="exact").states.shape == (24,)  # the local path still works
-
-
-def test_cluster_spec_validates_options():
-    # common practice: pydantic validates CLI options at the boundary
-    assert D.SchedulerSpec(scheduler="tcp://10.0.0.5:8786").retries == 2
-    with pytest.raises(ValueError, match=r"scheduler"):
-        D.SchedulerSpec(scheduler="10.0.0.5:8786")
 
 
 def test_killing_a_worker_mid_query_still_gives_the_right_answer(client, tmp_path):
@@ -184,7 +191,7 @@ def test_killing_a_worker_mid_query_still_gives_the_right_answer(client, tmp_pat
     q = rng.standard_normal((300, 32)).astype(np.float32)
     expect = mem.retrieve(q, k=5, method="exact")
     with ThreadPoolExecutor(1) as pool:
-        job = pool.submit(D.retrieve, sm, q, k=5, method="exact", client=client, timeout=120)
+        job = pool.submit(_retrieve, sm, q, k=5, method="exact", client=client, timeout=120)
         victim, t0 = None, time.monotonic()
         while victim is None and time.monotonic() - t0 < 60 and not job.done():
             busy = {w: keys for w, keys in client.processing().items() if any("densemem-shard" in str(k) for k in keys)}
