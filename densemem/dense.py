@@ -242,8 +242,11 @@ class DenseMemory(Retriever):
         return self._table.positions(ids, where="DenseMemory.positions")
 
     # ------------------------------------------------------------------ disk
-    def save(self, path: Any, *, overwrite: bool = True) -> None:
+    def save(self, path: Any, *, overwrite: bool = False) -> None:
         """Write the memory to a store folder (atomic; see :mod:`densemem.store`).
+
+        An existing store at ``path`` is refused unless ``overwrite=True`` (the
+        rule of every writer in densemem).
 
         Examples
         --------

@@ -90,7 +90,7 @@ class _Run:
 
     def add(self, *, library: str, method: str, label: str, params: dict[str, Any], call: Callable[[], Any],
             build: tuple[float, float], quality: Callable[[Any], dict[str, Any]], beta: float | None = None,
-            baseline: str | None = None, register: str | None = None) -> None:
+            baseline: str | None = None, register: str | None = None, held: float | None = None) -> None:
         self.tick(f"N={self.n} {method} {label}")
         extra: dict[str, Any] = {}
         if baseline is not None and baseline in self.baselines:
@@ -106,7 +106,7 @@ class _Run:
             dataset=self.name, n=self.n, dim=self.dim, n_queries=self.nq, batch_size=self.batch,
             library=library, method=method, label=label, params=params, beta=beta,
             time_s=t, times_s=times, queries_per_s=self.nq / t, build_s=build[0], build_peak_rss_mib=build[1],
-            peak_python_mib=py, peak_rss_mib=rss, repeats=self.spec.repeats, warmup=self.spec.warmup,
+            peak_python_mib=py, peak_rss_mib=rss, held_mib=held, repeats=self.spec.repeats, warmup=self.spec.warmup,
             **quality(out), **extra,
         )
         self.records.append(rec)
@@ -153,12 +153,18 @@ class _Run:
 
 
 # ------------------------------------------------------------------ rows
+def _held_mib(index: Any, binary: bool = False) -> float:
+    """MiB an index holds: the size of its faiss serialisation (measured, not estimated)."""
+    raw = faiss.serialize_index_binary(index) if binary else faiss.serialize_index(index)
+    return float(raw.nbytes) / 2.0**20
+
+
 def _flat(run: _Run) -> None:
     flat, b, brss = _build(lambda: _flat_index(run.x))
     run.truth = flat.search(run.q, run.kmax)[1]
     run.add(library="faiss", method="faiss-flat", label="IndexFlatIP", params={"k": run.kmax},
             call=run.batched(lambda qb: (flat.search(qb, run.kmax)[1],)), build=(b, brss),
-            quality=lambda out: {"recall": run.recalls(out[0])}, register="faiss-flat")
+            quality=lambda out: {"recall": run.recalls(out[0])}, register="faiss-flat", held=_held_mib(flat))
 
 
 def _flat_index(x: np.ndarray) -> Any:
@@ -168,8 +174,10 @@ def _flat_index(x: np.ndarray) -> Any:
 
 
 def _dense(run: _Run, method: str, extra_build: tuple[float, float] = (0.0, 0.0),
-           label: str = "", params: dict[str, Any] | None = None, baseline: str = "faiss-flat") -> None:
-    _, mb, mrss = run.memory()
+           label: str = "", params: dict[str, Any] | None = None, baseline: str = "faiss-flat",
+           index_mib: float = 0.0) -> None:
+    mem, mb, mrss = run.memory()
+    held = float(np.asarray(mem.patterns).nbytes) / 2.0**20 + index_mib
     sample = slice(0, min(_FLOAT64_SAMPLE, run.nq))
     for beta in run.spec.betas:
         if method == "exact":
@@ -180,7 +188,7 @@ def _dense(run: _Run, method: str, extra_build: tuple[float, float] = (0.0, 0.0)
         call = run.batched(run.retrieve_fn(beta, "index" if method.startswith("index") else method))
         run.add(library="densemem", method=method, label=(label + f" beta={beta:g}").strip(),
                 params={**(params or {}), "beta": beta}, beta=beta, call=call,
-                build=(mb + extra_build[0], max(mrss, extra_build[1])), baseline=baseline,
+                build=(mb + extra_build[0], max(mrss, extra_build[1])), baseline=baseline, held=held,
                 quality=lambda out, ref=ref, beta=beta, ref_name=ref_name, rows=rows: run.state_quality(
                     out, beta, ref, ref_name, rows, keep=method == "exact"))
 
@@ -202,11 +210,11 @@ def _hnsw(run: _Run, planned: list[str]) -> None:
         if "faiss-hnsw" in planned:
             run.add(library="faiss", method="faiss-hnsw", label=f"HNSW ef={ef}", params={**params, "k": run.kmax},
                     call=run.batched(lambda qb: (hnsw.search(qb, run.kmax)[1],)), build=(b, brss),
-                    quality=lambda out: {"recall": run.recalls(out[0])}, register=key)
+                    quality=lambda out: {"recall": run.recalls(out[0])}, register=key, held=_held_mib(hnsw))
         if "index-hnsw" in planned:
             settings = IndexSettings(kind="hnsw", M=s.hnsw_m, ef_construction=s.ef_construction, ef_search=ef)
             run.memory()[0]._restore_index({"settings": settings.to_dict(), "n_rows": run.n}, hnsw)
-            _dense(run, "index-hnsw", (b, brss), f"ef={ef}", params, baseline=key)
+            _dense(run, "index-hnsw", (b, brss), f"ef={ef}", params, baseline=key, index_mib=_held_mib(hnsw))
 
 
 def _ivf(run: _Run, planned: list[str]) -> None:
@@ -236,11 +244,11 @@ def _ivf(run: _Run, planned: list[str]) -> None:
         if "faiss-ivf" in planned:
             run.add(library="faiss", method="faiss-ivf", label=f"IVF nprobe={nprobe}", params={**params, "k": run.kmax},
                     call=run.batched(lambda qb: (ivf.search(qb, run.kmax)[1],)), build=(b, brss),
-                    quality=lambda out: {"recall": run.recalls(out[0])}, register=key)
+                    quality=lambda out: {"recall": run.recalls(out[0])}, register=key, held=_held_mib(ivf))
         if "index-ivf" in planned:
             settings = IndexSettings(kind="ivf", nlist=nlist, nprobe=nprobe, seed=s.seed)
             run.memory()[0]._restore_index({"settings": settings.to_dict(), "n_rows": run.n}, ivf)
-            _dense(run, "index-ivf", (b, brss), f"nprobe={nprobe}", params, baseline=key)
+            _dense(run, "index-ivf", (b, brss), f"nprobe={nprobe}", params, baseline=key, index_mib=_held_mib(ivf))
 
 
 def _binary_memory(model: str, codes: np.ndarray) -> Any:
@@ -266,7 +274,8 @@ def _binary(run: _Run) -> None:
     qbits = packed(qcodes)
     run.add(library="faiss", method="faiss-binary-flat", label="IndexBinaryFlat", params={"k": run.kmax},
             call=run.batched(lambda qb: (bflat.search(qb, run.kmax)[1],), qbits), build=(b, brss),
-            quality=lambda out: {"recall": run.recalls(out[0])}, register="faiss-binary-flat")
+            quality=lambda out: {"recall": run.recalls(out[0])}, register="faiss-binary-flat",
+            held=_held_mib(bflat, binary=True))
 
     def nearest_code(states: np.ndarray) -> np.ndarray:
         return bflat.search(packed(states), 1)[1]  # the stored item a returned state stands for

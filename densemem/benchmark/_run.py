@@ -117,7 +117,7 @@ class BenchReport:
         load = " ".join(f"{v:.2f}" for v in m.load_average_start)
         title = (f"densemem bench: {m.cpu_count} CPUs ({m.usable_cpus} usable), BLAS threads: {threads}, "
                  f"faiss threads {m.faiss_omp_threads}, load {load}; median of {self.spec.repeats} after "
-                 f"{self.spec.warmup} warm-up; x base = time / faiss baseline time (same run)")
+                 f"{self.spec.warmup} warm-up")
         ks = sorted({k for r in self.records for k in r.recall})
         return format_table(self.records, ks, title)
 

@@ -187,7 +187,12 @@ class BenchRecord(_Model):
     ``warmup`` calls); ``time_ratio = time_s / baseline_time_s``, the baseline
     being the faiss method named in ``baseline``, timed in the same run
     alternately with this row (so its median can differ a little from that
-    faiss row's own ``time_s``).
+    faiss row's own ``time_s``). Memory: ``peak_python_mib`` and
+    ``peak_rss_mib`` are what one search call adds (faiss allocates in C++,
+    which tracemalloc does not see, and reuses freed pages, so its search rows
+    are near 0); ``held_mib`` is what the searched structure holds: the
+    serialised faiss index (``faiss.serialize_index``) for faiss rows, the
+    float32 pattern table plus any index for densemem rows.
     """
 
     dataset: str
@@ -212,6 +217,7 @@ class BenchRecord(_Model):
     build_peak_rss_mib: NonNeg
     peak_python_mib: NonNeg
     peak_rss_mib: NonNeg
+    held_mib: NonNeg | None = None
     baseline: str | None = None
     baseline_time_s: Positive | None = None
     time_ratio: Positive | None = None

@@ -29,7 +29,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from pathlib import Path
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
@@ -431,7 +431,7 @@ class CapacitySpec(BaseModel):
 
     models: list[str] = Field(default_factory=lambda: ["hebbian", "storkey", "pseudo_inverse"],
                               min_length=1)
-    dims: list[int] = Field(default_factory=lambda: [25, 50, 100, 200], min_length=1)
+    dims: list[Annotated[int, Field(ge=2)]] = Field(default_factory=lambda: [25, 50, 100, 200], min_length=1)
     patterns: Literal["pm1", "unit", "gaussian"] = "pm1"
     patterns_file: str | None = None  # an array file the caller loads and passes as patterns
     corruption: str | None = None  # "flip:0.1", "mask:0.25", "gauss:0.5"

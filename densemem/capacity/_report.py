@@ -19,7 +19,7 @@ import numpy as np
 from ..errors import InputTypeError, InputValueError
 
 TABLE_COLUMNS = (
-    "model", "dim", "capacity", "rate", "ci_low", "ci_high", "first_fail", "fail_rate",
+    "model", "dim", "capacity", "success_rate", "ci_low", "ci_high", "first_fail", "success_at_first_fail",
     "capped", "patterns", "corruption", "success", "scope", "delta", "n_trials", "seed",
 )
 
@@ -161,13 +161,18 @@ class CapacityReport(_Plain):
         return self.rates[j], self.ci_low[j], self.ci_high[j]
 
     def row(self) -> dict[str, Any]:
-        """One table row: the capacity, its rate and interval, the first failing count."""
+        """One table row: the capacity, its success rate and interval, the first failing count.
+
+        ``success_rate`` is the success rate measured at ``capacity`` patterns;
+        ``success_at_first_fail`` the (failing) success rate at ``first_fail``.
+        When ``capped`` the search stopped at its cap: ``capacity`` is a lower bound.
+        """
         at, fail = self._at(self.capacity), self._at(self.first_fail)
         return {
             "model": self.model, "dim": self.dim, "capacity": self.capacity,
-            "rate": at[0] if at else None, "ci_low": at[1] if at else None,
+            "success_rate": at[0] if at else None, "ci_low": at[1] if at else None,
             "ci_high": at[2] if at else None, "first_fail": self.first_fail,
-            "fail_rate": fail[0] if fail else None, "capped": self.capped,
+            "success_at_first_fail": fail[0] if fail else None, "capped": self.capped,
             "patterns": self.patterns, "corruption": self.corruption, "success": self.success,
             "scope": self.scope, "delta": self.delta, "n_trials": self.n_trials, "seed": self.seed,
         }

@@ -14,8 +14,10 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import re
 import sys
 import traceback
+import warnings
 from pathlib import Path
 from typing import Any, Iterator, Sequence
 
@@ -23,7 +25,7 @@ import numpy as np
 
 from . import _output as out
 from ._specs import BuildSpec, DemoSpec, InfoSpec, NearestSpec, RetrieveSpec, SpecError, make_spec
-from ..errors import DenseMemError
+from ..errors import DenseMemError, InputValueError
 
 __all__ = ["main", "build_parser"]
 
@@ -129,6 +131,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--photos", type=int, default=4000, help="invented photos in the archive (default 4000)")
     p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     p.add_argument("--no-plots", dest="plots", action="store_false", help="skip the PNG plots")
+    p.add_argument("--overwrite", action="store_true", help="write into OUT even when it holds files")
     p.set_defaults(run=_run_demo)
 
     from ._jobs import register
@@ -144,13 +147,18 @@ Result = tuple[Any, str]
 def _run_build(a: argparse.Namespace) -> Result:
     from ..dense import DenseMemory
     from ..store._readers import read_embeddings
+    from ._hints import collapse_hint
 
     s = make_spec(BuildSpec, vars(a), positional=("input", "store"))
     emb = read_embeddings(s.input, column=s.column, id_column=s.id_column)
+    if s.shards is not None and s.shards > emb.vectors.shape[0]:
+        raise SpecError(f"--shards must be at most the number of rows ({emb.vectors.shape[0]} in "
+                        f"{str(s.input)!r}) so that no shard is empty; got {s.shards}.")
+    if s.shards is not None and s.index:
+        raise SpecError("--index cannot be combined with --shards (shards use exact or certified retrieval).")
     mem = DenseMemory.from_array(emb.vectors, emb.ids, normalize=s.normalize, beta=s.beta)
+    hint = collapse_hint(mem, "build again with --normalize --overwrite (cosine geometry)")
     if s.shards is not None:
-        if s.index:
-            raise SpecError("--index cannot be combined with --shards (shards use exact or certified retrieval).")
         from ..sharding._memory import shard_memory
 
         shard_memory(mem, s.store, s.shards, by=s.shard_by, overwrite=s.overwrite)
@@ -159,15 +167,16 @@ def _run_build(a: argparse.Namespace) -> Result:
         text = out.table(["store", "patterns", "dim", "normalize", "beta", "shards"],
                          [[str(s.store), len(mem), mem.dim, mem.normalize, mem.beta, s.shards]],
                          title=f"built from {emb.source} ({emb.kind})")
-        return data, text
-    index = mem.build_index(s.index) if s.index else None
-    mem.save(s.store, overwrite=s.overwrite)
-    data = {"store": str(s.store), "source": emb.to_dict(), "count": len(mem), "dim": mem.dim,
-            "normalize": mem.normalize, "beta": mem.beta, "index": index}
-    text = out.table(["store", "patterns", "dim", "normalize", "beta", "index"],
-                     [[str(s.store), len(mem), mem.dim, mem.normalize, mem.beta, s.index]],
-                     title=f"built from {emb.source} ({emb.kind})")
-    return data, text
+    else:
+        index = mem.build_index(s.index) if s.index else None
+        mem.save(s.store, overwrite=s.overwrite)
+        data = {"store": str(s.store), "source": emb.to_dict(), "count": len(mem), "dim": mem.dim,
+                "normalize": mem.normalize, "beta": mem.beta, "index": index}
+        text = out.table(["store", "patterns", "dim", "normalize", "beta", "index"],
+                         [[str(s.store), len(mem), mem.dim, mem.normalize, mem.beta, s.index]],
+                         title=f"built from {emb.source} ({emb.kind})")
+    data["warnings"] = [] if hint is None else [hint]
+    return data, text if hint is None else f"{text}\n\n{hint}"
 
 
 def _run_info(a: argparse.Namespace) -> Result:
@@ -205,6 +214,9 @@ def _opened(s: Any) -> Iterator[tuple[Any, np.ndarray, list[Any]]]:
 
     mem = open_store(s.store, mmap=s.mmap)
     emb = read_embeddings(s.queries, column=s.column, id_column=s.id_column)
+    if emb.vectors.shape[0] == 0:
+        raise InputValueError(f"QUERIES: {str(s.queries)!r} holds no query vectors (0 rows); "
+                              "give a file with at least one row.")
     names = emb.ids.tolist() if emb.ids is not None else list(range(emb.vectors.shape[0]))
     if not s.scheduler:
         yield mem, emb.vectors, names
@@ -256,7 +268,7 @@ def _run_demo(a: argparse.Namespace) -> Result:
     from .demo import run_demo
 
     s = make_spec(DemoSpec, vars(a))
-    report = run_demo(s.out, n_photos=s.photos, seed=s.seed, plots=s.plots, quiet=a.quiet)
+    report = run_demo(s.out, n_photos=s.photos, seed=s.seed, plots=s.plots, quiet=a.quiet, overwrite=s.overwrite)
     return report.to_dict(), report.summary_text()
 
 
@@ -270,7 +282,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         return int(exc.code or 0)
     prog = f"{PROG} {args.command}"
     try:
-        data, text = args.run(args)
+        with warnings.catch_warnings():
+            warnings.showwarning = _show_warning(prog)
+            data, text = args.run(args)
     except SpecError as exc:
         sys.stderr.write(f"{prog}: error: {exc}\n")
         if args.debug:
@@ -279,7 +293,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     except (DenseMemError, OSError, ValueError) as exc:
         if args.debug:
             traceback.print_exc()
-        sys.stderr.write(f"{prog}: error: {_one_line(exc)}\n")
+        usage = _as_usage(parser, args, argv, exc)
+        if usage is not None:  # the library refused a value the user gave as an option
+            sys.stderr.write(f"{prog}: error: {usage}\n")
+            return 2
+        sys.stderr.write(f"{prog}: error: {as_flags(_one_line(exc))}\n")
         return 1
     except KeyboardInterrupt:
         sys.stderr.write(f"{prog}: interrupted\n")
@@ -291,6 +309,68 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 1
     sys.stdout.write((out.to_json(data) if args.json else text) + "\n")
     return 0
+
+
+_ARG_ERROR = re.compile(r"^[\w.]+: `(\w+)` (.*)$", re.S)
+
+
+def _as_usage(parser: argparse.ArgumentParser, args: argparse.Namespace, argv: Sequence[str] | None,
+              exc: BaseException) -> str | None:
+    """``--flag <reason>`` when ``exc`` is the library refusing an argument the user gave as an option, else None.
+
+    The library names its argument (``DenseMemory.retrieve: `k` must be ...``); when that name is an
+    option of this command and the option is on the command line, the error is a usage error. A refusal
+    to replace existing files stays a failure (exit 1), the same for every writer.
+    """
+    from ..errors import InputTypeError, InputValueError
+
+    if not isinstance(exc, (InputValueError, InputTypeError)):
+        return None
+    m = _ARG_ERROR.match(_one_line(exc))
+    if m is None or "overwrite" in m.group(2):  # refusing to replace files is a failure (1), as in build
+        return None
+    name, reason = m.groups()
+    given = list(sys.argv[1:] if argv is None else argv)
+    sub = next((a.choices[args.command] for a in parser._actions
+                if isinstance(a, argparse._SubParsersAction) and args.command in a.choices), None)
+    for action in [] if sub is None else sub._actions:
+        if action.dest == name and action.option_strings:
+            used = [o for o in action.option_strings if any(g == o or g.startswith(o + "=") for g in given)]
+            if used:
+                sep = " " if reason.startswith(("must", "applies", "is ", "needs", "cannot")) else ": "
+                return f"{max(action.option_strings, key=len)}{sep}{reason}"
+    return None
+
+
+def _show_warning(prog: str) -> Any:
+    """``warnings.showwarning`` for the command: one line, no source path or line number."""
+
+    def show(message: Any, category: Any, filename: Any, lineno: Any, file: Any = None, line: Any = None) -> None:
+        sys.stderr.write(f"{prog}: warning: {message}\n")
+
+    return show
+
+
+#: Library wording -> the command's flags, for errors raised below the command line.
+_AS_FLAGS = (
+    (re.compile(r" and overwrite=False; pass overwrite=True to replace it"), "; pass --overwrite to replace it"),
+    (re.compile(r"pass overwrite=True"), "pass --overwrite"),
+    (re.compile(r"call build_index\('hnsw'\) or build_index\('ivf'\) first"),
+     "rebuild the store with `densemem build ... --index hnsw` (or ivf)"),
+)
+
+
+def as_flags(message: str) -> str:
+    """An error message of the library reworded with the command's flags instead of keyword arguments.
+
+    Examples
+    --------
+    >>> as_flags("x exists; pass overwrite=True to replace it.")
+    'x exists; pass --overwrite to replace it.'
+    """
+    for pattern, flag in _AS_FLAGS:
+        message = pattern.sub(flag, message)
+    return message
 
 
 def _one_line(exc: BaseException) -> str:

@@ -11,8 +11,9 @@ visitors are the queries.
 betas), checks sharp retrieval against faiss exact nearest-neighbour search,
 and, when :mod:`densemem.duplicates` and :mod:`densemem.tuning` are present,
 groups the near-duplicates and tunes beta on the de-duplicated archive. It
-writes a report folder: ``summary.md``, PNG plots (with matplotlib), the store
-folder and the de-duplication plan.
+writes a report folder: ``summary.md``, ``report.html`` (one self-contained
+page, plots embedded), PNG plots (with matplotlib), the store folder and the
+de-duplication plan.
 
 Examples
 --------
@@ -37,7 +38,7 @@ import numpy as np
 
 from .._validation import as_rng, check_positive_int
 from ..dense import DenseMemory
-from ..errors import InputValueError
+from ..errors import InputTypeError, InputValueError
 
 __all__ = ["Archive", "make_archive", "faded_prints", "DemoReport", "run_demo", "THEMES", "LABEL"]
 
@@ -287,7 +288,8 @@ def _plot_weights(mem: DenseMemory, q: np.ndarray, betas: tuple[float, float], p
         r = mem.retrieve(q, beta, k=20, method="exact")
         ax.bar(np.arange(20), r.top_weights[0], color="#3a6ea5" if name == "sharp" else "#c9783a")
         ax.set_title(f"{name}: beta = {beta:g}")
-        ax.set_xlabel("stored scans, heaviest first")
+        ax.set_xlabel("rank of the stored scan (heaviest first)")
+        ax.xaxis.get_major_locator().set_params(integer=True)  # ranks are whole numbers
     axes[0].set_ylabel("softmax weight")
     fig.suptitle("One faded print (invented data)", fontsize=10)
     fig.tight_layout()
@@ -327,14 +329,15 @@ def run_demo(
     seed: Any = 0,
     plots: bool = True,
     quiet: bool = True,
+    overwrite: bool = False,
 ) -> DemoReport:
     """Run the invented archive scenario and write the report folder ``out``.
 
     Parameters
     ----------
     out : str or os.PathLike
-        Report folder (created; files the demo writes are replaced, each atomically: a temp
-        file in the folder, then os.replace; other files are kept).
+        Report folder (created if missing; each file is written atomically: a temp
+        file in the folder, then os.replace).
     n_photos : int, default 4000
         Original photos (rescans and crops are added on top).
     n_queries : int, default 200
@@ -344,6 +347,9 @@ def run_demo(
         Draw PNG plots (skipped silently when matplotlib is missing).
     quiet : bool, default True
         No progress bar on stderr.
+    overwrite : bool, default False
+        Write into ``out`` even when it holds files (the demo's own files are
+        replaced; others are kept). Without it a non-empty ``out`` is refused.
 
     Returns
     -------
@@ -361,6 +367,13 @@ def run_demo(
     out = Path(out)
     if out.exists() and not out.is_dir():
         raise InputValueError(f"run_demo: `out` must be a folder; {str(out)!r} is a file.")
+    if not isinstance(overwrite, bool):
+        raise InputTypeError(f"run_demo: `overwrite` must be True or False; got {overwrite!r}.")
+    if out.is_dir() and any(out.iterdir()) and not overwrite:
+        raise InputValueError(
+            f"run_demo: `out` {str(out)!r} is a folder that already holds files; pass overwrite=True to write "
+            "into it or choose a new folder."
+        )
     out.mkdir(parents=True, exist_ok=True)
     from ._output import progress
 
@@ -370,7 +383,7 @@ def run_demo(
     q, src = faded_prints(arc, n_queries, seed=as_rng(seed).integers(1 << 31))
     sharp_beta, blended_beta = 40.0, 10.0
     mem = DenseMemory.from_array(arc.vectors, arc.ids, normalize=True, beta=sharp_beta)
-    mem.save(out / "store")
+    mem.save(out / "store", overwrite=overwrite)
     files = {"store": str(out / "store")}
     next(steps, None)
     sharp = _retrieval_stats(mem, arc, q, src, sharp_beta)
@@ -392,12 +405,16 @@ def run_demo(
         files["weights_png"] = str(out / "weights-sharp-vs-blended.png")
         files["curve_png"] = str(out / "retrieval-vs-beta.png")
     files["summary"] = str(out / "summary.md")
+    files["html"] = str(out / "report.html")
     report = DemoReport(
         out=str(out), label=LABEL, n_scans=len(arc.ids), n_photos=int(n_photos), n_queries=int(q.shape[0]),
         sharp_beta=sharp_beta, blended_beta=blended_beta, sharp=sharp, blended=blended, faiss=faiss_stats,
         dedup=dedup, tuning=tuned, files=files, seconds=time.perf_counter() - t0,
     )
     _write_text(out / "summary.md", _markdown(report))
+    from ._pages import demo_page
+
+    _write_text(out / "report.html", demo_page(report, out))
     for _ in steps:
         pass
     return report

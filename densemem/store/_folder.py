@@ -517,3 +517,51 @@ def describe_store(path: Any, *, verify: bool = True) -> StoreInfo:
         index=man.get("index"),
         verified=verify,
     )
+
+
+def set_stored_beta(path: Any, beta: float) -> float:
+    """Replace the default beta in the manifest of the store folder ``path``, atomically.
+
+    Only ``manifest.json`` changes (the arrays and their checksums stay): the
+    new manifest is written to a temp file in the store folder, fsynced and
+    moved over the old one with ``os.replace``, so a reader sees the old beta
+    or the new one. Returns the beta that was stored before.
+
+    Raises
+    ------
+    InputTypeError
+        ``beta`` is not a real number.
+    InputValueError
+        ``beta`` is not finite and > 0.
+    StoreFormatError
+        ``path`` is not a complete store folder.
+
+    Examples
+    --------
+    >>> import tempfile, os, numpy as np, densemem
+    >>> from densemem.store._folder import set_stored_beta
+    >>> path = os.path.join(tempfile.mkdtemp(), "store")
+    >>> densemem.DenseMemory.from_array(np.eye(2), beta=4.0).save(path)
+    >>> set_stored_beta(path, 30.0), densemem.DenseMemory.load(path).beta
+    (4.0, 30.0)
+    """
+    where = "set_stored_beta"
+    if isinstance(beta, bool) or not isinstance(beta, (int, float, np.integer, np.floating)):
+        raise InputTypeError(f"{where}: `beta` must be a real number; got {type(beta).__name__}.")
+    if not (np.isfinite(beta) and beta > 0):
+        raise InputValueError(f"{where}: `beta` must be a finite number > 0; got {float(beta)!r}.")
+    p = _as_path(path, where)
+    if not p.is_dir():
+        raise StoreFormatError(f"{where}: there is no store folder at {str(p)!r}.")
+    man = _read_manifest(p, where)
+    old = float(man["beta"])
+    man["beta"] = float(beta)
+    text = json.dumps(man, indent=2, sort_keys=True).encode("utf-8")
+    tmp = p / f".{MANIFEST}.tmp-{os.getpid()}-{secrets.token_hex(4)}"
+    try:
+        _write_file(tmp, lambda fh: fh.write(text))
+        os.replace(tmp, p / MANIFEST)
+    finally:
+        tmp.unlink(missing_ok=True)
+    _fsync_dir(p)
+    return old

@@ -12,6 +12,8 @@ from ._reports import (
     TuneReport,
     format_report,
     plot_sweep,
+    tune_text,
+    verdict,
 )
 from ._sweep import choose_beta, sweep_beta
 from ._theory import predict_beta, separation
@@ -31,4 +33,6 @@ __all__ = [
     "separation",
     "sweep_beta",
     "tune_beta",
+    "tune_text",
+    "verdict",
 ]

@@ -5,6 +5,7 @@ Public names are re-exported by :mod:`densemem.tuning`.
 
 from __future__ import annotations
 
+import contextvars
 import math
 from collections.abc import Callable
 from typing import Any
@@ -260,7 +261,10 @@ def sweep_beta(
         else _check_betas(betas, where)
     q, src, info = _make_queries(memory, queries, sources, opts, where)
     geometry = _geometry(memory)
-    per = [_measure(memory, q, src, float(b), run, geometry) for b in grid]
+    per = []
+    for b in grid:
+        per.append(_measure(memory, q, src, float(b), run, geometry))
+        _ticked()
     return _sweep_report(grid, per, src, {**info, **run, "n_patterns": len(memory)}, predicted_beta)
 
 
@@ -293,6 +297,16 @@ def _sweep_report(grid: np.ndarray, per: list[dict[str, Any]], src: np.ndarray |
 
 
 # ------------------------------------------------------------ choose beta
+#: A progress tick set by :func:`densemem.tuning.tune_beta` for one call (None: no bar).
+TICK: contextvars.ContextVar[Callable[[], None] | None] = contextvars.ContextVar("densemem_tune_tick", default=None)
+
+
+def _ticked() -> None:
+    tick = TICK.get()
+    if tick is not None:
+        tick()
+
+
 def _bisect(f: Callable[[float], float], lo: float, hi: float, rtol: float, up: Callable[[float], bool],
             log: list[tuple[float, float]]) -> tuple[float, float]:
     """Shrink [lo, hi] in log beta, keeping ``up(f(hi))`` true and ``up(f(lo))`` false."""
@@ -404,6 +418,7 @@ def choose_beta(
 def _choose_sharp(memory: DenseMemory, q: np.ndarray, src: np.ndarray | None, run: dict[str, Any],
                   lo: float, hi: float, rtol: float, goal: float) -> BetaChoice:
     def frac(b: float) -> float:
+        _ticked()
         res = memory.retrieve(q, b, steps=run["steps"], tol=run["tol"], k=1, method=run["method"],
                               return_energy=False)
         ok = res.top_weights[:, 0] >= run["sharp_weight"]
@@ -424,6 +439,7 @@ def _choose_sharp(memory: DenseMemory, q: np.ndarray, src: np.ndarray | None, ru
 def _choose_blend(memory: DenseMemory, q: np.ndarray, run: dict[str, Any], lo: float, hi: float,
                   rtol: float, goal: float) -> BetaChoice:
     def size(b: float) -> float:
+        _ticked()
         return float(np.mean(np.exp(_weights(memory, q, b, run).entropy)))
 
     log = [(lo, size(lo)), (hi, size(hi))]

@@ -42,7 +42,11 @@ def test_rerun_replaces_demo_files_and_keeps_others(tmp_path):
     demo.run_demo(out, seed=0, **SMALL)
     (out / "notes.txt").write_text("mine")
     first = (out / "summary.md").read_text(encoding="utf-8")
-    demo.run_demo(out, seed=0, **{**SMALL, "n_queries": 30})
+    with pytest.raises(InputValueError, match=r"run_demo: `out` .*rep' is a folder that already holds files; "
+                       r"pass overwrite=True"):
+        demo.run_demo(out, seed=0, **{**SMALL, "n_queries": 30})
+    assert (out / "summary.md").read_text(encoding="utf-8") == first
+    demo.run_demo(out, seed=0, overwrite=True, **{**SMALL, "n_queries": 30})
     second = (out / "summary.md").read_text(encoding="utf-8")
     assert second != first
     # the query count is reported as written, not merely some number containing "30"

@@ -384,7 +384,11 @@ def test_reports_are_json_and_tables(rng: np.random.Generator, tmp_path) -> None
     table = tu.format_report(rep)
     for head in ("separation (exact", "predicted beta", "beta", "chosen beta (blend)"):
         assert head in table
-    assert len(tu.format_report(rep.sweep).splitlines()) == 1 + 6 + 1
+    from densemem.tuning._reports import SWEEP_COLUMNS
+
+    # header, one line per beta, a blank line, "legend" and one legend line per column
+    assert len(tu.format_report(rep.sweep).splitlines()) == 1 + 6 + 2 + len(SWEEP_COLUMNS)
+    assert table.splitlines()[0].startswith("verdict: for blends of about 5 items use beta = ")
     gen = tu.sweep_beta(mem, betas=[1.0], n_queries=4, seed=np.random.default_rng(3))
     json.dumps(gen.to_dict(), allow_nan=False)  # a Generator seed is recorded as text
     assert repr(rep.sweep).startswith("SweepReport(betas=array(shape=(6,))")
