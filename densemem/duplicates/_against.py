@@ -148,7 +148,7 @@ def plan_against(data: Any, stored: Any, ids: Any, representative: Any, opt: Opt
     x, bids = batch_matrix(data, ids, stored)
     n, d = x.shape
     rule, score = check_score(representative, n)
-    chunk = C.chunk_rows_for(d, opt.work_mib)
+    chunk = C.chunk_rows_for(d, opt.tile_mib)
     store = _StoreIndex(stored.patterns, opt, n, rng, chunk)
     if store.source == "ivf" and opt.check_sample > 0:
         sample = np.sort(rng.choice(n, size=min(opt.check_sample, n), replace=False))

@@ -54,9 +54,9 @@ class PairSet:
 Progress = Callable[[str, int], Any]
 
 
-def chunk_rows_for(d: int, work_mib: float) -> int:
-    """Query rows per chunk so that a chunk's working arrays stay near ``work_mib``."""
-    rows = int(work_mib * 2**20 / (4.0 * max(d, 1) * 8))
+def chunk_rows_for(d: int, tile_mib: float) -> int:
+    """Query rows per chunk so that a chunk's working arrays stay near ``tile_mib``."""
+    rows = int(tile_mib * 2**20 / (4.0 * max(d, 1) * 8))
     return max(256, min(rows, 1 << 16))
 
 

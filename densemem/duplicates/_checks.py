@@ -33,9 +33,9 @@ class Options:
     check_sample: int
     target_recall: float
     beta: float | None
-    max_steps: int
-    retrieval: str
-    work_mib: float
+    steps: int
+    retrieve_method: str
+    tile_mib: float
     show_progress: bool | None
 
 
@@ -75,9 +75,9 @@ def check_options(**kw: Any) -> Options:
     target = _real(kw["target_recall"], "target_recall")
     if not 0.0 < target <= 1.0:
         raise InputValueError(f"{WHERE}: `target_recall` must be in (0, 1]; got {kw['target_recall']!r}.")
-    work = _real(kw["work_mib"], "work_mib")
+    work = _real(kw["tile_mib"], "tile_mib")
     if not (np.isfinite(work) and work > 0):
-        raise InputValueError(f"{WHERE}: `work_mib` must be a finite number > 0; got {kw['work_mib']!r}.")
+        raise InputValueError(f"{WHERE}: `tile_mib` must be a finite number > 0; got {kw['tile_mib']!r}.")
     progress = kw["progress"]
     if progress is not None and not isinstance(progress, bool):
         raise InputTypeError(f"{WHERE}: `progress` must be True, False or None; got {progress!r}.")
@@ -92,9 +92,9 @@ def check_options(**kw: Any) -> Options:
         check_sample=check_positive_int(kw["check_sample"], name="check_sample", where=WHERE, minimum=0),
         target_recall=target,
         beta=None if kw["beta"] is None else check_beta(kw["beta"], where=WHERE),
-        max_steps=check_positive_int(kw["max_steps"], name="max_steps", where=WHERE),
-        retrieval=_choice(kw["retrieval"], "retrieval", RETRIEVALS),
-        work_mib=work,
+        steps=check_positive_int(kw["steps"], name="steps", where=WHERE),
+        retrieve_method=_choice(kw["retrieve_method"], "retrieve_method", RETRIEVALS),
+        tile_mib=work,
         show_progress=progress,
     )
 

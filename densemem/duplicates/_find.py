@@ -57,9 +57,9 @@ def plan_duplicates(
     check_sample: int = 1000,
     target_recall: float = 0.995,
     beta: float | None = None,
-    max_steps: int = 300,
-    retrieval: Literal["exact", "auto", "certified"] = "auto",
-    work_mib: float = 64.0,
+    steps: int = 300,
+    retrieve_method: Literal["exact", "auto", "certified"] = "auto",
+    tile_mib: float = 64.0,
     return_pairs: bool = False,
     progress: bool | None = None,
     seed: Any = 0,
@@ -119,10 +119,10 @@ def plan_duplicates(
     nlist, nprobe, check_sample, target_recall
         IVF settings (default nlist about 4 * sqrt(n), a power of two) and
         the sampled recall check (0 rows: no check, no tuning).
-    beta, max_steps, retrieval
+    beta, steps, retrieve_method
         Attractor settings: beta (default ``2 / (1 - threshold)``), most
         updates, and the DenseMemory.retrieve method.
-    work_mib : float, default 64
+    tile_mib : float, default 64
         Memory budget of one query chunk.
     return_pairs : bool, default False
         Also return every pair judged (``pair_ids``, ``pair_similarities``).
@@ -197,7 +197,7 @@ def plan_duplicates(
     opt = check_options(
         threshold=threshold, method=method, candidates=candidates, k=k, grouping=grouping,
         nlist=nlist, nprobe=nprobe, check_sample=check_sample, target_recall=target_recall,
-        beta=beta, max_steps=max_steps, retrieval=retrieval, work_mib=work_mib, progress=progress,
+        beta=beta, steps=steps, retrieve_method=retrieve_method, tile_mib=tile_mib, progress=progress,
     )
     bar = _progress_factory(opt.show_progress)
     rng = as_rng(seed)
@@ -214,7 +214,7 @@ def plan_duplicates(
         return plan if return_pairs else _without_pairs(plan)
     x, all_ids = input_matrix(data, ids)
     rule, score = check_score(representative, x.shape[0])
-    chunk = C.chunk_rows_for(x.shape[1], opt.work_mib)
+    chunk = C.chunk_rows_for(x.shape[1], opt.tile_mib)
     xn, valid, zero = normalised_copy(x, all_ids, chunk)
     vscore = None if score is None else score[valid]
     groups, reps, source, params, pairs = judge_and_group(xn, opt, rule, vscore, rng, chunk, bar)
@@ -280,7 +280,7 @@ def judge_and_group(xn: np.ndarray, opt: Options, rule: str, score: np.ndarray |
     if opt.method == "attractor" and lo.size:
         b = beta_for_threshold(opt.threshold) if opt.beta is None else opt.beta
         joined, info = attractor_edges(
-            xn, lo, hi, opt.threshold, beta=b, max_steps=opt.max_steps, tol=1e-5, retrieval=opt.retrieval,
+            xn, lo, hi, opt.threshold, beta=b, steps=opt.steps, tol=1e-5, retrieve_method=opt.retrieve_method,
             progress=bar,
         )
         info["beta_rule"] = "2 / (1 - threshold)" if opt.beta is None else "given"
@@ -375,9 +375,9 @@ class DedupSpec(BaseModel):
     check_sample: int = Field(1000, ge=0)
     target_recall: float = Field(0.995, gt=0.0, le=1.0)
     beta: float | None = Field(None, gt=0.0, allow_inf_nan=False)
-    max_steps: int = Field(300, ge=1)
-    retrieval: Literal["exact", "auto", "certified"] = "auto"
-    work_mib: float = Field(64.0, gt=0.0, allow_inf_nan=False)
+    steps: int = Field(300, ge=1)
+    retrieve_method: Literal["exact", "auto", "certified"] = "auto"
+    tile_mib: float = Field(64.0, gt=0.0, allow_inf_nan=False)
     seed: int = 0
 
     def kwargs(self, quality: Any = None) -> dict[str, Any]:
