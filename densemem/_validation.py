@@ -201,7 +201,7 @@ def check_ids(ids: Any, *, n: int, where: str, name: str = "ids") -> np.ndarray:
 
 
 def unit_rows(x: np.ndarray, *, where: str, what: str) -> np.ndarray:
-    """L2-normalise float32 rows (norms in float64, so huge entries do not overflow).
+    """L2-normalize float32 rows (norms in float64, so huge entries do not overflow).
 
     ``what`` names the rows in the error, e.g. "query" or "`patterns`".
     """
@@ -209,7 +209,7 @@ def unit_rows(x: np.ndarray, *, where: str, what: str) -> np.ndarray:
     zero = np.flatnonzero(norms == 0)
     if zero.size:
         raise InputValueError(
-            f"{where}: {what} row {int(zero[0])} has zero norm and cannot be normalised (normalize=True); "
+            f"{where}: {what} row {int(zero[0])} has zero norm and cannot be normalized (normalize=True); "
             "drop it first."
         )
     return (x / norms[:, None]).astype(np.float32)
@@ -248,7 +248,7 @@ def unknown_id_error(where: str, missing: Any) -> UnknownIdError:
 
 
 def as_rng(seed: Any) -> np.random.Generator:
-    """Normalise ``seed`` (None, int or Generator) with ``np.random.default_rng``."""
+    """Normalize ``seed`` (None, int or Generator) with ``np.random.default_rng``."""
     if isinstance(seed, np.random.Generator):
         return seed
     return np.random.default_rng(seed)

@@ -29,7 +29,7 @@ class DenseMemory(Retriever):
     dim : int
         Number of features of every stored pattern.
     normalize : bool, default False
-        L2-normalise stored patterns and queries (cosine geometry).
+        L2-normalize stored patterns and queries (cosine geometry).
     beta : float, default 1.0
         Default inverse temperature for :meth:`retrieve` and :meth:`energy`.
     tile_mib : float, default 16.0
@@ -132,7 +132,7 @@ class DenseMemory(Retriever):
 
     @property
     def normalize(self) -> bool:
-        """Whether patterns and queries are L2-normalised."""
+        """Whether patterns and queries are L2-normalized."""
         return self._table.normalize
 
     @property

@@ -110,8 +110,8 @@ def test_non_real_dtypes(arr: np.ndarray) -> None:
         DenseMemory(2).add(arr)
 
 
-def test_zero_row_cannot_be_normalised() -> None:
-    with pytest.raises(InputValueError, match=lit("DenseMemory.add: `patterns` row 1 has zero norm and cannot be normalised")):
+def test_zero_row_cannot_be_normalized() -> None:
+    with pytest.raises(InputValueError, match=lit("DenseMemory.add: `patterns` row 1 has zero norm and cannot be normalized")):
         DenseMemory(2, normalize=True).add([[1.0, 0.0], [0.0, 0.0]])
 
 
@@ -162,9 +162,9 @@ def test_string_query(mem: DenseMemory) -> None:
         mem.retrieve("abcd", method="exact")
 
 
-def test_zero_query_cannot_be_normalised() -> None:
+def test_zero_query_cannot_be_normalized() -> None:
     m = DenseMemory.from_array(np.eye(2), normalize=True)
-    with pytest.raises(InputValueError, match=lit("DenseMemory.retrieve: query row 1 has zero norm and cannot be normalised (normalize=True); drop it first.")):
+    with pytest.raises(InputValueError, match=lit("DenseMemory.retrieve: query row 1 has zero norm and cannot be normalized (normalize=True); drop it first.")):
         m.retrieve([[1.0, 0.0], [0.0, 0.0]], method="exact")
 
 
@@ -353,7 +353,7 @@ def test_beta_too_large_for_float32_scores() -> None:
 
 def test_normalize_huge_rows_are_not_zeroed() -> None:
     # Norms of rows with entries near 1e20 overflow in float32 (max 3.4e38, common practice);
-    # they are computed in float64, so normalising keeps the direction (reference: numpy float64).
+    # they are computed in float64, so normalizing keeps the direction (reference: numpy float64).
     x = np.array([[3e20, 4e20], [1.0, 0.0]])
     m = DenseMemory.from_array(x, normalize=True)
     np.testing.assert_allclose(m.patterns[0], [0.6, 0.8], rtol=1e-6)

@@ -105,12 +105,12 @@ def _rows(spec: BenchSpec, n: int | None, rng: np.random.Generator) -> tuple[str
     return name, x
 
 
-def _normalise(x: np.ndarray, what: str) -> np.ndarray:
+def _normalize(x: np.ndarray, what: str) -> np.ndarray:
     norms = np.linalg.norm(x, axis=1)
     zero = np.flatnonzero(norms == 0)
     if zero.size:
         raise InputValueError(
-            f"{_WHERE}: {what} row {int(zero[0])} has zero norm and cannot be normalised; "
+            f"{_WHERE}: {what} row {int(zero[0])} has zero norm and cannot be normalized; "
             "drop it or set normalize=False."
         )
     return x / norms[:, None].astype(x.dtype)
@@ -143,7 +143,7 @@ def load_data(spec: BenchSpec, n: int | None, seed: int) -> BenchData:
     else:
         q = _corrupt(spec, x, rng)
     if spec.normalize:
-        x, q = _normalise(x, "dataset"), _normalise(q, "query")
+        x, q = _normalize(x, "dataset"), _normalize(q, "query")
     return BenchData(name, np.ascontiguousarray(x, np.float32), np.ascontiguousarray(q, np.float32))
 
 

@@ -161,7 +161,7 @@ def check_weights(weights: object, where: str) -> np.ndarray:
 
 
 def as_rng(seed: object, where: str) -> np.random.Generator:
-    """Normalise `seed` (None, int >= 0 or Generator) with ``np.random.default_rng``."""
+    """Normalize `seed` (None, int >= 0 or Generator) with ``np.random.default_rng``."""
     if isinstance(seed, np.random.Generator):
         return seed
     if seed is None or (isinstance(seed, numbers.Integral) and not isinstance(seed, bool)):

@@ -1,6 +1,6 @@
 """Checks the commands run on a store to warn before retrieval misleads (private).
 
-:func:`collapse_hint` finds the failure a raw (not normalised) store shows when
+:func:`collapse_hint` finds the failure a raw (not normalized) store shows when
 a few rows have much larger norms than the rest: by inner product those rows
 are the nearest stored pattern of almost every query, the stored rows
 themselves included, so softmax retrieval returns the same id at any beta.

@@ -93,7 +93,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("store", help="store folder to write (its parent must exist)")
     p.add_argument("--column", help="array (.npz) or column (.parquet) holding the vectors")
     p.add_argument("--id-column", help="array / column / csv header (or 0-based number) holding ids")
-    p.add_argument("--normalize", action="store_true", help="L2-normalise patterns and queries (cosine geometry)")
+    p.add_argument("--normalize", action="store_true", help="L2-normalize patterns and queries (cosine geometry)")
     p.add_argument("--beta", type=float, default=1.0, help="default inverse temperature (default 1.0)")
     p.add_argument("--index", choices=["hnsw", "ivf"], help="also build and store a candidate index")
     p.add_argument("--overwrite", action="store_true", help="replace an existing store at STORE")

@@ -7,7 +7,7 @@ update.
 Certified bound. With candidates C (the exact top-kc by score, kc = |C|) and
 z = beta * score, every omitted row has z <= z_kc (the smallest candidate), so
 the omitted mass is at most (N - kc) exp(z_kc - m) relative to the candidate
-normaliser l = sum_C exp(z - m). The omitted *fraction* of the full softmax is
+normalizer l = sum_C exp(z - m). The omitted *fraction* of the full softmax is
 therefore at most eps = (N - kc) exp(z_kc - m) / l, and the state, a convex
 blend of rows of norm <= M, moves by at most 2 M eps when the omitted rows are
 put back.

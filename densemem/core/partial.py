@@ -239,7 +239,7 @@ class Finished:
 
 
 def finish(p: Partial) -> Finished:
-    """Normalise a partial: states = acc / l, lse = m + log l, sorted top list."""
+    """Normalize a partial: states = acc / l, lse = m + log l, sorted top list."""
     states = None
     if p.acc is not None:
         states = (p.acc / p.l[:, None]).astype(np.float32)

@@ -9,10 +9,10 @@ rows and, for "certified" and "auto", the per-query bound. Two id partials over
 disjoint rows merge exactly (:func:`merge`), so the step loop in
 :mod:`densemem.core.steps` never knows which source it drives.
 
-Bound of a merge. A certified part over rows ``R`` with normaliser ``l_R``
+Bound of a merge. A certified part over rows ``R`` with normalizer ``l_R``
 omits at most ``eps_R l_R`` of mass (in the units of its own reference ``m_R``).
 The merge rescales both omitted masses to the merged reference and divides by
-the merged normaliser: ``eps = (eps_A l_A e^(m_A-m) + eps_B l_B e^(m_B-m)) / l``,
+the merged normalizer: ``eps = (eps_A l_A e^(m_A-m) + eps_B l_B e^(m_B-m)) / l``,
 at most ``max(eps_A, eps_B)`` since ``l`` is at least each rescaled ``l_R``. An
 exact part omits nothing. The state bound ``2 M eps`` follows as on one machine.
 """

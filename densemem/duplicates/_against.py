@@ -1,7 +1,7 @@
 """A new batch against a stored memory: which new items duplicate a stored item or another new one.
 
 The store is only read (its memory-mapped patterns): a faiss index over a
-normalised float32 copy of them is built in memory for this run, and nothing
+normalized float32 copy of them is built in memory for this run, and nothing
 is written back. The batch is read chunk by chunk (a memory-mapped ``.npy``
 stays on disk); each chunk is searched against the store, and only the new
 items that match no stored item are kept in memory for the within-batch search.
@@ -59,7 +59,7 @@ def _batch_unit_rows(x: np.ndarray, rows: np.ndarray) -> np.ndarray:
 
 
 class _StoreIndex:
-    """A faiss index over the stored memory's non-zero rows, normalised (built chunk by chunk)."""
+    """A faiss index over the stored memory's non-zero rows, normalized (built chunk by chunk)."""
 
     def __init__(self, patterns: np.ndarray, opt: Options, n_batch: int, rng: np.random.Generator,
                  chunk: int) -> None:

@@ -1,7 +1,7 @@
 """Candidate pairs for near-duplicate search: exact, IVF and HNSW sources from faiss.
 
 Every source returns pairs ``(lo, hi)`` with ``lo < hi`` (row numbers of the
-normalised matrix), re-scored in float64 so a pair gets the same similarity
+normalized matrix), re-scored in float64 so a pair gets the same similarity
 whichever source found it. The edge rule is ``cosine >= threshold - SLACK``.
 """
 

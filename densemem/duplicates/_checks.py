@@ -12,7 +12,7 @@ import numpy as np
 from .._validation import as_float_matrix, check_beta, check_ids, check_positive_int
 from ..errors import DenseMemWarning, InputTypeError, InputValueError
 
-__all__ = ["Options", "batch_matrix", "check_options", "check_score", "input_matrix", "normalised_copy"]
+__all__ = ["Options", "batch_matrix", "check_options", "check_score", "input_matrix", "normalized_copy"]
 
 WHERE = "plan_duplicates"
 METHODS = ("graph", "attractor")
@@ -147,7 +147,7 @@ def check_score(representative: Any, n: int) -> tuple[str, np.ndarray | None]:
     return "quality", score
 
 
-def normalised_copy(x: np.ndarray, ids: np.ndarray, chunk: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def normalized_copy(x: np.ndarray, ids: np.ndarray, chunk: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Unit-norm float32 copy of the non-zero rows, their row numbers, and the zero rows.
 
     Norms are taken in float64. Zero rows have no direction: they are left out
@@ -193,7 +193,7 @@ def check_stored(stored: Any) -> Any:
 def batch_matrix(data: Any, ids: Any, stored: Any) -> tuple[np.ndarray, np.ndarray]:
     """The new batch as it is (a memory map stays one: nothing is converted whole) and its ids.
 
-    Finiteness is checked chunk by chunk later, while the rows are normalised.
+    Finiteness is checked chunk by chunk later, while the rows are normalized.
     Default ids continue the stored memory's integer ids (largest + 1, + 2, ...);
     a memory with string ids needs explicit ``ids``. Ids shared with the stored
     memory are refused.

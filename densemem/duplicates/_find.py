@@ -32,7 +32,7 @@ from ._checks import (
     check_score,
     check_stored,
     input_matrix,
-    normalised_copy,
+    normalized_copy,
 )
 from ._plan import DuplicateGroup, DuplicatePlan
 from .._validation import as_rng
@@ -69,7 +69,7 @@ def plan_duplicates(
     Parameters
     ----------
     data : array-like of shape (n_items, n_features) or DenseMemory
-        Embeddings (any norm; a normalised copy is used) or a memory, whose
+        Embeddings (any norm; a normalized copy is used) or a memory, whose
         patterns and ids are used. Never modified. With ``stored`` this is the
         new batch; a memory-mapped array (``np.load(path, mmap_mode="r")``) is
         then read chunk by chunk.
@@ -175,7 +175,7 @@ def plan_duplicates(
     coarse assignment (``n * nlist * d``, shared by adding and searching) plus
     ``n * nprobe * n / nlist * d`` for the range search; candidate pairs are
     re-scored in float64. Group statistics cost ``size**2 * d`` per group.
-    Against a stored memory: a faiss index holds a normalised float32 copy of
+    Against a stored memory: a faiss index holds a normalized float32 copy of
     the stored patterns; the batch is read in chunks and only the new items
     that match no stored item are kept in memory for the within-batch search.
 
@@ -215,7 +215,7 @@ def plan_duplicates(
     x, all_ids = input_matrix(data, ids)
     rule, score = check_score(representative, x.shape[0])
     chunk = C.chunk_rows_for(x.shape[1], opt.tile_mib)
-    xn, valid, zero = normalised_copy(x, all_ids, chunk)
+    xn, valid, zero = normalized_copy(x, all_ids, chunk)
     vscore = None if score is None else score[valid]
     groups, reps, source, params, pairs = judge_and_group(xn, opt, rule, vscore, rng, chunk, bar)
     stats = G.summarise(xn, groups, rule, vscore, reps)

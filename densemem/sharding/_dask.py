@@ -30,9 +30,9 @@ A partial over rows ``R`` is ``(m, l, acc, top)`` with ``m`` a reference
 ``A u B`` is ``m = max(m_A, m_B)``, ``l = l_A e^(m_A - m) + l_B e^(m_B - m)``,
 ``acc`` likewise, ``top`` = the best k of both (derived merge of partials): an
 identity, not an approximation, and associative and commutative, so any tree
-gives the single-machine normaliser, state and top list up to float rounding.
+gives the single-machine normalizer, state and top list up to float rounding.
 Certified shards bound their own omitted mass; the merged bound is the merged
-omitted mass over the merged normaliser, proved in :mod:`densemem.core.rows`.
+omitted mass over the merged normalizer, proved in :mod:`densemem.core.rows`.
 
 Where shards live on workers (and why not Actors)
 -------------------------------------------------

@@ -2,7 +2,7 @@
 
 Layout of a sharded store (a plain folder)::
 
-    shards.json      format name and version, dim, normalisation, default beta,
+    shards.json      format name and version, dim, normalization, default beta,
                      id kind, total count, next free id, how rows were split,
                      and per shard: its folder, count, largest norm and the
                      sha256 of its manifest.json
@@ -141,7 +141,7 @@ class ShardedMemory(Retriever):
     the partials merge exactly, so the result equals one memory holding every
     row (states to float32 rounding, identical top ids). Certified bounds are
     per shard and merged (the reported ``mass_bound`` is the merged omitted
-    mass over the merged normaliser). For Dask, :meth:`on_cluster` gives the
+    mass over the merged normalizer). For Dask, :meth:`on_cluster` gives the
     same calls run by the workers.
 
     Examples
@@ -172,7 +172,7 @@ class ShardedMemory(Retriever):
 
     @property
     def normalize(self) -> bool:
-        """Whether patterns and queries are L2-normalised."""
+        """Whether patterns and queries are L2-normalized."""
         return bool(self._man["normalize"])
 
     @property

@@ -23,7 +23,7 @@ Shard ``s`` reduces its candidates to ``(m_s, l_s)`` and certifies that the
 softmax mass of its omitted rows is ``O_s <= eps_s * l_s * e^(m_s)`` (its own
 bound, ``eps_s = (N_s - kc_s) e^(z_kc,s - m_s) / l_s``; 0 where the shard fell
 back to its exact path). The shards hold disjoint rows, so the merged omitted
-mass is exactly ``O = sum_s O_s`` and the merged candidate normaliser is
+mass is exactly ``O = sum_s O_s`` and the merged candidate normalizer is
 ``L = sum_s l_s e^(m_s) = l e^m``. Hence the reported global bound
 
     eps = O / L <= sum_s eps_s l_s e^(m_s) / (l e^m)

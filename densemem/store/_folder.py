@@ -2,7 +2,7 @@
 
 Layout of a store folder::
 
-    manifest.json    format name and version, dim, count, dtype, normalisation,
+    manifest.json    format name and version, dim, count, dtype, normalization,
                      default beta, id kind, and the sha256 and size of every file
     patterns.npy     float32 (count, dim), C order
     ids.npy          int64 (count,) or fixed-width unicode '<U..' (count,); never object

@@ -102,7 +102,7 @@ def _make_queries(
         norms = np.linalg.norm(q, axis=1)
         if np.any(norms == 0):
             raise InputValueError(
-                f"{where}: query row {int(np.flatnonzero(norms == 0)[0])} has zero norm and cannot be normalised."
+                f"{where}: query row {int(np.flatnonzero(norms == 0)[0])} has zero norm and cannot be normalized."
             )
         q = (q / norms[:, None]).astype(np.float32)
     return q, src, {**info, "n_queries": int(q.shape[0])}

@@ -66,7 +66,7 @@ def test_recall_against_faiss_ground_truth_on_digits(digits: np.ndarray, digits_
     # deliberately wrong 1: the true list shifted by one rank -> recall@1 = 0, recall@10 = 9/10 exactly
     assert recall_at_k(truth[:, 1:], truth, 1) == 0.0
     assert recall_at_k(truth[:, 1:], truth, 10) == pytest.approx(0.9)
-    # deliberately wrong 2: Euclidean search on the raw (unnormalised) pixels ranks by another geometry
+    # deliberately wrong 2: Euclidean search on the raw (unnormalized) pixels ranks by another geometry
     _, l2 = faiss.knn(digits[::9], digits, 10, metric=faiss.METRIC_L2)
     expected = _naive_recall(l2, truth, 10)
     assert 0.3 < expected < 1.0

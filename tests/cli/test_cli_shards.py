@@ -43,7 +43,7 @@ def test_sharded_build_info_and_retrieve_equal_single_store(data: Path) -> None:
     for a, b in zip(one["queries"], sh["queries"]):
         assert a["top_ids"] == b["top_ids"]
         np.testing.assert_allclose(a["top_weights"], b["top_weights"], rtol=1e-4, atol=1e-7)
-    # faiss exact search on the normalised rows names the same top-1 (beta 25 is sharp here).
+    # faiss exact search on the normalized rows names the same top-1 (beta 25 is sharp here).
     x = np.load(data / "x.npy")
     q = np.load(data / "q.npy")
     xn = x / np.linalg.norm(x, axis=1, keepdims=True)

@@ -23,9 +23,9 @@ is off by at most
 
 Shifting every z by at most Delta changes each softmax weight by a factor within
 exp(+-2 Delta), so a convex blend of rows of norm <= M moves by at most M expm1(2 Delta);
-summing n weighted rows and dividing by the float32 normaliser adds at most 2 gamma_(n+4) M.
+summing n weighted rows and dividing by the float32 normalizer adds at most 2 gamma_(n+4) M.
 The true omitted mass is then at most mass_bound * exp(2 Delta) (the bound is computed on the
-perturbed scores and both the omitted sum and the candidate normaliser move by exp(Delta)).
+perturbed scores and both the omitted sum and the candidate normalizer move by exp(Delta)).
 How much: unit vectors, d=128, beta=60 give Delta ~ 4.7e-4, so the state slack is ~1e-3 M; at
 d=16, |x| ~ 1, beta=1 it is ~3e-6 M. It is a worst-case bound, typically 10-100x above the
 error seen, and it is smallest at small beta, where the mass bound itself is largest.
@@ -134,7 +134,7 @@ def check_certified_against_reference(mem: DenseMemory, x: np.ndarray, q: np.nda
             omitted[cand[0]] = False
             true_mass = float(np.sum(p[i, omitted]))
             assert true_mass <= res.mass_bound[i] * grow[i] * (1 + 1e-9) + 1e-300, (true_mass, res.mass_bound[i])
-            # Reported weights are softmax weights renormalised over the candidates:
+            # Reported weights are softmax weights renormalized over the candidates:
             # p_j e^(-2 Delta) <= w_j <= p_j e^(2 Delta) / (1 - omitted mass).
             mb = res.mass_bound[i] * grow[i]
             if mb < 0.5:
@@ -277,8 +277,8 @@ def test_loose_bound_still_holds() -> None:
 def test_certified_weights_are_probabilities() -> None:
     # Reference: scipy.special.softmax weights lie in [0, 1] and sum to 1; the
     # reported top weights (float64) are part of one softmax, so their sum cannot exceed 1 by more
-    # than float32-level rounding of the normaliser: 16 u = 2^-20 ~ 9.5e-7 (the exact path, whose
-    # normaliser is a float32 sum, stays well inside it). beta * score ~ 80 here.
+    # than float32-level rounding of the normalizer: 16 u = 2^-20 ~ 9.5e-7 (the exact path, whose
+    # normalizer is a float32 sum, stays well inside it). beta * score ~ 80 here.
     x, q = _gauss_case(n=500)
     mem = DenseMemory.from_array(x)
     res = mem.retrieve(q, 5.0, method="certified", k=5)
@@ -308,7 +308,7 @@ def test_energy_of_blended_results_keeps_float32_accuracy(method: str) -> None:
 
 # --------------------------------------------------------------- digits and 100k unit vectors
 def test_digits_beta60_matches_faiss_top1_and_exact(digits_unit: np.ndarray) -> None:
-    # Open data: scikit-learn's digits (UCI optdigits), L2-normalised. Stored: the
+    # Open data: scikit-learn's digits (UCI optdigits), L2-normalized. Stored: the
     # first 1500 rows; queries: the other 297 real digits plus noisy copies of stored ones.
     # References: faiss IndexFlatIP top-1 and method="exact".
     rng = np.random.default_rng(5)

@@ -208,7 +208,7 @@ def test_ivf_pairs_against_faiss_flat_on_clustered_data(rng):
 # ------------------------------------------------------------------ chaining
 def bridged_families(digits: np.ndarray, t: float, n_pairs: int = 8):
     """Pairs of digits rows (a, b) at cosine in [0.94, 0.955] (below t), each with a family of
-    copies, joined by a bridge item at the normalised midpoint (within t of both)."""
+    copies, joined by a bridge item at the normalized midpoint (within t of both)."""
     u = unit64(digits)
     sim = u @ u.T
     rng = np.random.default_rng(5)

@@ -115,7 +115,7 @@ def test_nearest_equals_faiss_flat(client, data, metric):
     # outside reference: faiss flat index over all rows
     index = faiss.IndexFlatIP(24) if metric == "ip" else faiss.IndexFlatL2(24)
     index.add(mem.patterns)
-    scores, pos = index.search(q / np.linalg.norm(q, axis=1, keepdims=True), 9)  # the memory normalises
+    scores, pos = index.search(q / np.linalg.norm(q, axis=1, keepdims=True), 9)  # the memory normalizes
     got = _nearest(sm, q, 9, metric=metric, client=client, timeout=60)
     np.testing.assert_array_equal(got.ids, mem.ids[pos])
     np.testing.assert_allclose(got.scores, scores, rtol=1e-5, atol=1e-5)

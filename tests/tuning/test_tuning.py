@@ -156,7 +156,7 @@ def test_predicted_beta_is_conservative_random(rng: np.random.Generator) -> None
 
 
 def test_predicted_beta_is_conservative_digits(digits_unit: np.ndarray, rng: np.random.Generator) -> None:
-    # Same claim on scikit-learn's bundled digits (UCI optdigits), first 120 normalised rows.
+    # Same claim on scikit-learn's bundled digits (UCI optdigits), first 120 normalized rows.
     x = np.ascontiguousarray(digits_unit[:120])
     assert _check_sphere_maps_into_itself(densemem.DenseMemory.from_array(x), x, rng) == 240
 
