@@ -24,7 +24,7 @@ from typing import Any, Iterator, Sequence
 import numpy as np
 
 from . import _output as out
-from ._specs import BuildSpec, DemoSpec, InfoSpec, NearestSpec, RetrieveSpec, SpecError, make_spec
+from ._specs import BuildSpec, DemoSpec, InfoSpec, NearestSpec, RebalanceSpec, RetrieveSpec, SpecError, make_spec
 from ..errors import DenseMemError, InputValueError
 
 __all__ = ["main", "build_parser"]
@@ -106,6 +106,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("store", help="store folder")
     p.add_argument("--no-verify", dest="verify", action="store_false", help="skip the sha256 checks")
     p.set_defaults(run=_run_info)
+
+    p = _sub(subs, "rebalance", "split and merge the shards of a sharded store to a target count or size",
+             "densemem rebalance archive-shards --shards 8")
+    p.add_argument("store", help="sharded store folder written by `densemem build --shards`")
+    size = p.add_mutually_exclusive_group(required=True)
+    size.add_argument("--shards", type=int, help="the number of shards to end with")
+    size.add_argument("--rows", type=int, help="about this many rows per shard")
+    p.set_defaults(run=_run_rebalance)
 
     p = _sub(subs, "retrieve", "retrieve stored patterns by the softmax update",
              "densemem retrieve archive-store queries.npy --beta 20 --steps 3 -k 5 --json")
@@ -198,6 +206,22 @@ def _run_info(a: argparse.Namespace) -> Result:
           "verified" if info.verified else "not checked"]],
     )
     return info.to_dict(), head + "\n\n" + out.table(["file", "bytes", "sha256 (first 16)"], rows)
+
+
+def _run_rebalance(a: argparse.Namespace) -> Result:
+    from ..sharding import open_sharded
+
+    s = make_spec(RebalanceSpec, vars(a), positional=("store",))
+    if not _is_sharded(s.store):
+        raise SpecError(f"STORE: {str(s.store)!r} is not a sharded store (build one with --shards).")
+    sm = open_sharded(s.store)
+    before = sm.counts
+    sm.rebalance(n_shards=s.shards, rows_per_shard=s.rows)
+    data = {"store": str(s.store), "counts_before": list(before), "counts_after": list(sm.counts)}
+    text = out.table(["store", "shards before", "shards after", "rows per shard"],
+                     [[str(s.store), len(before), sm.n_shards, f"{min(sm.counts)}-{max(sm.counts)}"]],
+                     title="rebalance")
+    return data, text
 
 
 def _is_sharded(store: Any) -> bool:

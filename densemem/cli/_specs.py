@@ -52,6 +52,14 @@ class InfoSpec(_Spec):
     verify: bool = True
 
 
+class RebalanceSpec(_Spec):
+    """``densemem rebalance``: split and merge the shards of a sharded store."""
+
+    store: Path
+    shards: int | None = Field(None, ge=1)
+    rows: int | None = Field(None, ge=1)
+
+
 class _QuerySpec(_Spec):
     store: Path
     queries: Path
