@@ -64,24 +64,22 @@ def one_d(value: Any, name: str, where: str, what: str) -> list[Any]:
     return items
 
 
+def _items(value: Any, name: str, where: str, kind: type, plural: str, one: str) -> list[Any]:
+    items = one_d(value, name, where, plural)
+    for i, x in enumerate(items):
+        if isinstance(x, bool) or not isinstance(x, kind):
+            raise InputTypeError(f"{where}: every entry of `{name}` must be {one}; got {x!r} at position {i}.")
+    return items
+
+
 def int_items(value: Any, name: str, where: str) -> list[int]:
     """`value` as a non-empty list of Python ints (any 1-D sequence or integer array)."""
-    items = one_d(value, name, where, "integers")
-    for i, x in enumerate(items):
-        if isinstance(x, bool) or not isinstance(x, numbers.Integral):
-            raise InputTypeError(f"{where}: every entry of `{name}` must be an integer; got {x!r} at "
-                                 f"position {i}.")
-    return [int(x) for x in items]
+    return [int(x) for x in _items(value, name, where, numbers.Integral, "integers", "an integer")]
 
 
 def real_items(value: Any, name: str, where: str) -> list[float]:
     """`value` as a non-empty list of Python floats (any 1-D sequence or numeric array)."""
-    items = one_d(value, name, where, "numbers")
-    for i, x in enumerate(items):
-        if isinstance(x, bool) or not isinstance(x, numbers.Real):
-            raise InputTypeError(f"{where}: every entry of `{name}` must be a number; got {x!r} at "
-                                 f"position {i}.")
-    return [float(x) for x in items]
+    return [float(x) for x in _items(value, name, where, numbers.Real, "numbers", "a number")]
 
 
 def check_progress(progress: Any, where: str) -> bool:

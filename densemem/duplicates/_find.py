@@ -181,8 +181,8 @@ def plan_duplicates(
 
     References
     ----------
-    .. [1] H. Ramsauer et al., "Hopfield Networks is All You Need", ICLR 2021,
-       arXiv:2008.02217.
+    .. [1] The retrieval update and its metastable states: Ramsauer et al. (ICLR 2021),
+       as cited by :class:`densemem.DenseMemory`.
 
     Examples
     --------
