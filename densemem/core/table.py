@@ -111,7 +111,7 @@ class PatternTable:
     def ids_at(self, pos: np.ndarray) -> np.ndarray:
         """Ids of row numbers ``pos``; -1 (a missing result) maps to the missing-id marker.
 
-        The marker is -1 for int ids and "" for str ids (see :data:`MISSING_ID`).
+        The marker is -1 for int ids and "" for str ids (as :func:`densemem.core.rows.id_fill`).
         """
         out = self._ids[np.maximum(pos, 0)]
         missing = pos < 0
