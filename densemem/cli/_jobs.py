@@ -13,6 +13,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from . import _output as out
+from ._pages import _CAPACITY_COLUMNS
 from ._specs import SpecError, make_spec
 
 __all__ = ["ADDERS"]
@@ -108,7 +109,7 @@ def _run_tune(a: argparse.Namespace) -> tuple[Any, str]:
     html = _html_target(a)
     if a.write_beta and spec.target is None:
         raise SpecError("--write-beta needs a chosen beta; drop --target none.")
-    from ._main import _is_sharded
+    from ..sharding import is_sharded_store as _is_sharded
 
     if _is_sharded(a.store):
         raise InputValueError(f"STORE: tune works on a single store; {str(a.store)!r} is a sharded store "
@@ -268,11 +269,6 @@ def _run_capacity(a: argparse.Namespace) -> tuple[Any, str]:
 
 
 #: Capacity table columns: (row key, heading).
-_CAPACITY_COLUMNS = (
-    ("model", "model"), ("dim", "dim"), ("capacity", "capacity"), ("success_rate", "success at capacity"),
-    ("ci_low", "ci low"), ("ci_high", "ci high"), ("first_fail", "first failing count"),
-    ("success_at_first_fail", "success there"),
-)
 
 
 def capacity_table(rows: list[dict[str, Any]]) -> str:

@@ -18,7 +18,6 @@ import re
 import sys
 import traceback
 import warnings
-from pathlib import Path
 from typing import Any, Iterator, Sequence
 
 import numpy as np
@@ -225,9 +224,9 @@ def _run_rebalance(a: argparse.Namespace) -> Result:
 
 
 def _is_sharded(store: Any) -> bool:
-    from ..sharding._store import TOP_MANIFEST
+    from ..sharding import is_sharded_store
 
-    return (Path(store) / TOP_MANIFEST).is_file()
+    return is_sharded_store(store)
 
 
 @contextlib.contextmanager

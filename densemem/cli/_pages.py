@@ -27,6 +27,13 @@ __all__ = ["tune_page", "dedup_page", "capacity_page", "bench_page", "demo_page"
 
 _NO_PLOTS = "Plots left out: matplotlib is not installed (pip install densemem[plot])."
 
+_CAPACITY_COLUMNS = (
+    ("model", "model"), ("dim", "dim"), ("capacity", "capacity"), ("success_rate", "success at capacity"),
+    ("ci_low", "ci low"), ("ci_high", "ci high"), ("first_fail", "first failing count"),
+    ("success_at_first_fail", "success there"),
+)
+
+
 
 def _num(x: Any) -> Any:
     if x is None:
@@ -117,7 +124,6 @@ def dedup_page(plan: Any, source: str, out: str, *, plots: bool = True, largest:
 # --------------------------------------------------------------- capacity
 def capacity_page(curve: Any, *, plots: bool = True) -> str:
     """The capacity table as a page, capped searches marked, with the capacity plot."""
-    from ._jobs import _CAPACITY_COLUMNS
 
     rows = []
     for r in curve.rows():

@@ -35,6 +35,7 @@ import numpy as np
 from . import _candidates as C
 from . import _groups as G
 from ._checks import Options, batch_matrix, check_score, finite_unit_chunk
+from ._judge import judge_and_group, warn_far_chains  # the within-batch plan is the ordinary one
 from ._plan import DuplicatePlan
 
 __all__ = ["plan_against"]
@@ -143,7 +144,6 @@ class _StoreIndex:
 def plan_against(data: Any, stored: Any, ids: Any, representative: Any, opt: Options,
                  rng: np.random.Generator, bar: Any, t0: float) -> DuplicatePlan:
     """Plan the new batch ``data`` against the DenseMemory ``stored`` (see the module notes)."""
-    from ._find import judge_and_group, warn_far_chains  # the within-batch plan is the ordinary one
 
     x, bids = batch_matrix(data, ids, stored)
     n, d = x.shape

@@ -724,6 +724,19 @@ def open_sharded(path: Any, *, verify: bool = True) -> ShardedMemory:
     return ShardedMemory(p, man, verify=verify)
 
 
+def is_sharded_store(path: Any) -> bool:
+    """Whether ``path`` is a sharded store folder (it holds a ``shards.json`` of this format).
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> from densemem.sharding import is_sharded_store
+    >>> is_sharded_store(tempfile.mkdtemp())
+    False
+    """
+    return isinstance(path, (str, os.PathLike)) and _is_sharded(Path(os.fspath(path)))
+
+
 def open_store(path: Any, *, mmap: bool = False, verify: bool = True) -> Any:
     """Open a store folder of either kind: a :class:`~densemem.DenseMemory` or a :class:`ShardedMemory`.
 
@@ -751,6 +764,6 @@ def open_store(path: Any, *, mmap: bool = False, verify: bool = True) -> Any:
     >>> type(open_store(os.path.join(base, "one"))).__name__, type(open_store(os.path.join(base, "many"))).__name__
     ('DenseMemory', 'ShardedMemory')
     """
-    if isinstance(path, (str, os.PathLike)) and _is_sharded(Path(os.fspath(path))):
+    if is_sharded_store(path):
         return open_sharded(path, verify=verify)
     return DenseMemory.load(path, mmap=mmap, verify=verify)
