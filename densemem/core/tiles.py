@@ -49,6 +49,7 @@ def reduce_rows(
     k: int,
     tile_rows: int,
     need_acc: bool = True,
+    moments: bool = False,
 ) -> P.Partial:
     """Fold all stored rows, tile by tile, into one partial.
 
@@ -63,10 +64,12 @@ def reduce_rows(
         Stored rows per tile.
     need_acc : bool
         Whether the weighted sum (second GEMM) is needed.
+    moments : bool
+        Whether to carry the entropy / participation sums (see :mod:`.partial`).
     """
     n, dim = patterns.shape
     b = qz.shape[0]
-    run = P.empty(b, dim, k, need_acc=need_acc)
+    run = P.empty(b, dim, k, need_acc=need_acc, moments=moments)
     if n == 0:
         return run
     t = min(tile_rows, n)
@@ -77,7 +80,7 @@ def reduce_rows(
         width = rows.shape[0]
         z = buf[: b * width].reshape(b, width)
         np.matmul(qz, rows.T, out=z)
-        blk = P.block(z, rows, k=k, offset=start, need_acc=need_acc)
+        blk = P.block(z, rows, k=k, offset=start, need_acc=need_acc, moments=moments)
         run = blk if first else P.merge(run, blk)
         first = False
     return run
