@@ -20,7 +20,9 @@ from typing import Callable, TypeVar
 import numpy as np
 from threadpoolctl import threadpool_limits
 
+from . import _fused
 from . import partial as P
+
 __all__ = ["tile_rows_for", "reduce_rows", "map_query_chunks", "n_threads_default"]
 
 T = TypeVar("T")
@@ -73,6 +75,8 @@ def reduce_rows(
     if n == 0:
         return run
     t = min(tile_rows, n)
+    if need_acc and not moments and _fused.available(k):
+        return _reduce_fused(qz, patterns, run, t)
     buf = np.empty(b * t, dtype=np.float32)
     first = True
     for start in range(0, n, t):
@@ -83,6 +87,21 @@ def reduce_rows(
         blk = P.block(z, rows, k=k, offset=start, need_acc=need_acc, moments=moments)
         run = blk if first else P.merge(run, blk)
         first = False
+    return run
+
+
+def _reduce_fused(qz: np.ndarray, patterns: np.ndarray, run: P.Partial, t: int) -> P.Partial:
+    """:func:`reduce_rows` with the compiled tile kernel (:mod:`._fused`): one visit per tile row."""
+    assert run.acc is not None
+    b, n = qz.shape[0], patterns.shape[0]
+    buf = np.empty(b * t, dtype=np.float32)
+    for start in range(0, n, t):
+        rows = patterns[start : start + t]
+        z = buf[: b * rows.shape[0]].reshape(b, rows.shape[0])
+        np.matmul(qz, rows.T, out=z)
+        scale = _fused.fold_tile(z, start, run.m, run.l, run.top_z, run.top_i)
+        run.acc *= scale.astype(np.float32)[:, None]
+        run.acc += z @ rows
     return run
 
 
