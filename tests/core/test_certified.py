@@ -230,11 +230,13 @@ def _gauss_case(seed: int = 3, n: int = 800, d: int = 16) -> tuple[np.ndarray, n
 
 def test_growth_beyond_k_stays_within_bound() -> None:
     # References: scipy softmax float64, faiss IndexFlatIP (CHECKS.md 13). At beta=2 on Gaussian
-    # patterns (|x| ~ 4) top-1 carries most but not all mass: kc must double past k=1.
+    # patterns (|x| ~ 4) top-1 carries most but not all mass: kc must grow past k=1. Queries whose
+    # scores predict more candidates than k_max = N allows go to the exact path instead.
     x, q = _gauss_case()
     mem = DenseMemory.from_array(x)
     res = mem.retrieve(q, 2.0, method="certified", k=1)
-    assert np.any(res.k_used > 1) and not np.any(res.fell_back)
+    certified = ~res.fell_back
+    assert np.mean(certified) >= 0.5 and np.all(res.k_used[certified] > 1)
     check_certified_against_reference(mem, x, q, 2.0, res, k=1, k_max=1024, tol_mass=1e-6)
 
 
