@@ -44,9 +44,30 @@ def exp32(x: Any) -> Any:
 
 
 
+@njit(inline="always", boundscheck=False)
+def heap_replace(hz: Any, hi: Any, v: Any, idx: Any) -> Any:
+    """Replace the root of the min-heap (hz, hi) by (v, idx), sift it down; return the new root."""
+    k = hz.shape[0]
+    p = 0
+    while True:
+        c = 2 * p + 1
+        if c >= k:
+            break
+        if c + 1 < k and hz[c + 1] < hz[c]:
+            c += 1
+        if hz[c] >= v:
+            break
+        hz[p] = hz[c]
+        hi[p] = hi[c]
+        p = c
+    hz[p] = v
+    hi[p] = idx
+    return hz[0]
+
+
 @njit(nogil=True, fastmath=True, boundscheck=False, cache=True)
-def kernel(z: Any, offset: Any, m: Any, l: Any, top_z: Any, top_i: Any, scale: Any) -> None:
-    """See :func:`densemem.core._fused.fold_tile`."""
+def kernel(z: Any, offset: Any, m: Any, l: Any, top_z: Any, top_i: Any, scale: Any, weights: Any) -> None:
+    """See :func:`densemem.core._fused.fold_tile` (``weights`` False: max and top-k only)."""
     b, w = z.shape
     k = top_z.shape[1]
     g_n = w // _GROUP
@@ -61,15 +82,8 @@ def kernel(z: Any, offset: Any, m: Any, l: Any, top_z: Any, top_i: Any, scale: A
             for g in range(g_n):
                 v = row[base + g]
                 gm[g] = v if v > gm[g] else gm[g]
-        # running k-th best and where it sits
-        thr = np.float32(np.inf)
-        pos = 0
-        if k > 0:
-            thr = top_z[i, 0]
-            for t in range(1, k):
-                if top_z[i, t] < thr:
-                    thr = top_z[i, t]
-                    pos = t
+        # the top list is a min-heap: its root top_z[i, 0] is the running k-th best
+        thr = top_z[i, 0] if k > 0 else np.float32(np.inf)
         mx = np.float32(-np.inf)
         for g in range(g_n):
             gv = gm[g]
@@ -79,29 +93,18 @@ def kernel(z: Any, offset: Any, m: Any, l: Any, top_z: Any, top_i: Any, scale: A
                 for c in range(_GROUP):
                     v = row[c * g_n + g]
                     if v > thr:
-                        top_z[i, pos] = v
-                        top_i[i, pos] = offset + c * g_n + g
-                        thr = top_z[i, 0]
-                        pos = 0
-                        for t in range(1, k):
-                            if top_z[i, t] < thr:
-                                thr = top_z[i, t]
-                                pos = t
+                        thr = heap_replace(top_z[i], top_i[i], v, offset + c * g_n + g)
         for j in range(main, w):
             v = row[j]
             if v > mx:
                 mx = v
             if v > thr:
-                top_z[i, pos] = v
-                top_i[i, pos] = offset + j
-                thr = top_z[i, 0]
-                pos = 0
-                for t in range(1, k):
-                    if top_z[i, t] < thr:
-                        thr = top_z[i, t]
-                        pos = t
+                thr = heap_replace(top_z[i], top_i[i], v, offset + j)
         m_old = m[i]
         m_new = max(m_old, np.float64(mx))
+        if not weights:
+            m[i] = m_new
+            continue
         a = math.exp(m_old - m_new) if m_old > -np.inf else 0.0
         mf = np.float32(m_new)
         s = 0.0

@@ -22,7 +22,10 @@ from typing import Callable
 import faiss
 import numpy as np
 
+from . import _fused
 from . import partial as P
+from .tiles import n_threads_default, search_top
+
 __all__ = ["CertifiedOptions", "certified_reduce", "index_reduce", "bound_can_hold"]
 
 
@@ -90,7 +93,17 @@ def _put(out: P.Partial, where: np.ndarray, part: P.Partial, sel: np.ndarray) ->
     out.top_i[where] = part.top_i[sel]
 
 
-SEARCH_COST = 0.5  # one faiss flat top-k search, in units of one exact pass (two products + the rest)
+# Cost of one exact top-kc search per query, in units of one exact pass (two products and the
+# rest): about 0.6 + 0.0014 kc, measured by bench/exact_floor.py's machine (2 cores, N = 1e5,
+# d = 128, 1000 queries) for both the compiled search and faiss.knn. A search that costs more
+# than the exact pass is never started.
+SEARCH_COST = 0.6
+SEARCH_COST_PER_CANDIDATE = 0.0014
+
+
+def search_cost(kc: int) -> float:
+    """Cost of one top-``kc`` search per query, in exact passes."""
+    return SEARCH_COST + SEARCH_COST_PER_CANDIDATE * kc
 AUTO_SAMPLE = 32  # auto: queries tried first to price the certified path for the batch
 MAX_ROUNDS = 3  # searches of at least MIN_PREDICT candidates per query before the exact path answers it
 MIN_PREDICT = 8  # fewer first candidates than this: the next search takes this many, unpredicted
@@ -159,7 +172,7 @@ def certified_reduce(
     if math.isfinite(opts.give_up) and b > 4 * AUTO_SAMPLE:
         sample = np.unique(np.linspace(0, b - 1, AUTO_SAMPLE).round().astype(np.int64))
         s_exact, searches = _certify(x, q, sample, beta, k, need_acc, opts, state)
-        cost = (searches * SEARCH_COST + s_exact.size) / sample.size
+        cost = (searches + s_exact.size) / sample.size
         rest = np.setdiff1d(todo, sample)
         if cost >= 1.0:
             to_exact = np.concatenate([s_exact, rest])
@@ -180,24 +193,26 @@ def certified_reduce(
 def _certify(
     x: np.ndarray, q: np.ndarray, todo: np.ndarray, beta: float, k: int, need_acc: bool,
     opts: CertifiedOptions, state: tuple[P.Partial, np.ndarray, np.ndarray],
-) -> tuple[np.ndarray, int]:
+) -> tuple[np.ndarray, float]:
     """Search candidates for queries ``todo``; certified answers go into ``state``.
 
-    Returns the queries left for the exact path and the number of (query, search) pairs run.
+    Returns the queries left for the exact path and the cost of the searches run (in exact
+    passes, :func:`search_cost` per query and search).
     """
     out, bound, k_used = state
     n = x.shape[0]
     kc0 = min(n, max(opts.k_start, k, 1))
     k_cap = min(n, max(opts.k_max, kc0))
     give_up = math.isfinite(opts.give_up)
+    k_affordable = int((1.0 - SEARCH_COST) / SEARCH_COST_PER_CANDIDATE)
     left: list[np.ndarray] = []
-    searches = 0
+    searches = 0.0
     # (queries, kc) groups still to search, and the round each is in
     groups: list[tuple[np.ndarray, int, int]] = [(todo, kc0, 0)] if todo.size else []
     while groups:
         idx, kc, rnd = groups.pop()
-        scores, pos = faiss.knn(q[idx], x, kc, metric=faiss.METRIC_INNER_PRODUCT)
-        searches += idx.size
+        scores, pos = _search(q[idx], x, kc, opts.tile_mib)
+        searches += idx.size * search_cost(kc)
         part = _gather_partial(x, scores, pos, beta, k=k, need_acc=need_acc, tile_mib=opts.tile_mib)
         z = beta * scores.astype(np.float64)
         eps = _mass_bound(part, z[:, -1], n - kc)
@@ -214,7 +229,8 @@ def _certify(
             need[bad] = MIN_PREDICT
         else:
             need[bad] = _needed_k(z[bad], _rows(part, bad), n, opts.tol_mass)
-        hopeless = bad & (need > k_cap)
+        # grow only to a count within k_max whose search costs less than the exact pass
+        hopeless = bad & (need > min(k_cap, k_affordable))
         if give_up and rnd == 0:
             hopeless |= bad & (eps > opts.tol_mass * opts.give_up)
         left.append(idx[hopeless])
@@ -226,6 +242,13 @@ def _certify(
             for kk in np.unique(want):
                 groups.append((idx[grow][want == kk], int(kk), rnd + (kc >= MIN_PREDICT)))
     return (np.concatenate(left) if left else np.empty(0, np.int64)), searches
+
+
+def _search(q: np.ndarray, x: np.ndarray, kc: int, tile_mib: float) -> tuple[np.ndarray, np.ndarray]:
+    """Exact top-kc by inner product, best first: the compiled tile kernel where it applies, else faiss."""
+    if _fused.available(kc):
+        return search_top(q, x, kc, tile_mib=tile_mib, n_threads=n_threads_default())
+    return faiss.knn(q, x, kc, metric=faiss.METRIC_INNER_PRODUCT)
 
 
 def _rows(part: P.Partial, sel: np.ndarray) -> P.Partial:

@@ -23,7 +23,7 @@ from threadpoolctl import threadpool_limits
 from . import _fused
 from . import partial as P
 
-__all__ = ["tile_rows_for", "reduce_rows", "map_query_chunks", "n_threads_default"]
+__all__ = ["tile_rows_for", "reduce_rows", "search_top", "map_query_chunks", "n_threads_default"]
 
 T = TypeVar("T")
 
@@ -103,6 +103,38 @@ def _reduce_fused(qz: np.ndarray, patterns: np.ndarray, run: P.Partial, t: int) 
         run.acc *= scale.astype(np.float32)[:, None]
         run.acc += z @ rows
     return run
+
+
+def search_top(
+    q: np.ndarray, patterns: np.ndarray, kc: int, *, tile_mib: float, n_threads: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Exact top-``kc`` stored rows by inner product, best first: (scores, row numbers).
+
+    The compiled kernel's max-and-top-k visit of each tile after the first product
+    (NumPy's BLAS), with no exponentials and no second product; callers check
+    :func:`densemem.core._fused.available` first.
+    """
+    n = patterns.shape[0]
+    qf = np.ascontiguousarray(q, dtype=np.float32)
+
+    def run(sl: slice) -> tuple[np.ndarray, np.ndarray]:
+        part = qf[sl]
+        b = part.shape[0]
+        t = min(tile_rows_for(b, tile_mib), n)
+        top_z = np.full((b, kc), -np.inf, dtype=np.float32)
+        top_i = np.full((b, kc), -1, dtype=np.int64)
+        m, l = np.full(b, -np.inf), np.zeros(b)
+        buf = np.empty(b * t, dtype=np.float32)
+        for start in range(0, n, t):
+            rows = patterns[start : start + t]
+            z = buf[: b * rows.shape[0]].reshape(b, rows.shape[0])
+            np.matmul(part, rows.T, out=z)
+            _fused.fold_tile(z, start, m, l, top_z, top_i, weights=False)
+        order = np.argsort(-top_z, axis=1, kind="stable")
+        return np.take_along_axis(top_z, order, 1), np.take_along_axis(top_i, order, 1)
+
+    parts = map_query_chunks(run, qf.shape[0], n_threads=n_threads, chunk=512)
+    return np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts])
 
 
 def map_query_chunks(

@@ -20,14 +20,13 @@ from densemem.core.exact import exact_reduce
 
 
 @pytest.fixture(params=["numpy", "compiled"])
-def kernel(request: pytest.FixtureRequest, monkeypatch: pytest.MonkeyPatch) -> str:
+def kernel(request: pytest.FixtureRequest) -> str:
     if request.param == "numpy":
-        monkeypatch.setattr(_fused, "_tried", True)
-        monkeypatch.setattr(_fused, "_kernel", None)
-        assert not _fused.available(10)
+        assert not _fused.set_enabled(False) and not _fused.available(10)
+        request.addfinalizer(lambda: _fused.set_enabled(True))
     else:
         pytest.importorskip("numba")
-        assert _fused.available(10)
+        assert _fused.set_enabled(True) and _fused.available(10)
     return request.param
 
 
@@ -54,13 +53,16 @@ def test_kernel_matches_scipy_and_faiss(kernel: str, beta: float, k: int, tile_m
     assert np.all(np.diff(fin.top_z, axis=1) <= 0)  # heaviest first
 
 
-def test_kernels_agree_to_float32_rounding(monkeypatch: pytest.MonkeyPatch) -> None:
+def test_kernels_agree_to_float32_rounding() -> None:
     pytest.importorskip("numba")
     x, q = _case(5, 3001, 64, 50)
+    assert _fused.set_enabled(True)
     fast = P.finish(exact_reduce(q, x, 20.0, k=5, tile_mib=0.02, n_threads=1))
-    monkeypatch.setattr(_fused, "_tried", True)
-    monkeypatch.setattr(_fused, "_kernel", None)
-    slow = P.finish(exact_reduce(q, x, 20.0, k=5, tile_mib=0.02, n_threads=1))
+    try:
+        _fused.set_enabled(False)
+        slow = P.finish(exact_reduce(q, x, 20.0, k=5, tile_mib=0.02, n_threads=1))
+    finally:
+        _fused.set_enabled(True)
     np.testing.assert_array_equal(fast.top_i, slow.top_i)
     np.testing.assert_allclose(fast.states, slow.states, rtol=0, atol=1e-6)
     np.testing.assert_allclose(fast.top_w, slow.top_w, rtol=1e-5)
