@@ -104,7 +104,7 @@ SEARCH_COST_PER_CANDIDATE = 0.0014
 def search_cost(kc: int) -> float:
     """Cost of one top-``kc`` search per query, in exact passes."""
     return SEARCH_COST + SEARCH_COST_PER_CANDIDATE * kc
-AUTO_SAMPLE = 32  # auto: queries tried first to price the certified path for the batch
+AUTO_SAMPLE = 32  # queries tried first to price the certified path for the batch
 MAX_ROUNDS = 3  # searches of at least MIN_PREDICT candidates per query before the exact path answers it
 MIN_PREDICT = 8  # fewer first candidates than this: the next search takes this many, unpredicted
 
@@ -169,7 +169,7 @@ def certified_reduce(
     fell_back = np.zeros(b, dtype=bool)
     state = (out, bound, k_used)
     todo = np.arange(b)
-    if math.isfinite(opts.give_up) and b > 4 * AUTO_SAMPLE:
+    if b > 4 * AUTO_SAMPLE:
         sample = np.unique(np.linspace(0, b - 1, AUTO_SAMPLE).round().astype(np.int64))
         s_exact, searches = _certify(x, q, sample, beta, k, need_acc, opts, state)
         cost = (searches + s_exact.size) / sample.size
