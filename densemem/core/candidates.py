@@ -104,7 +104,7 @@ SEARCH_COST_PER_CANDIDATE = 0.0014
 def search_cost(kc: int) -> float:
     """Cost of one top-``kc`` search per query, in exact passes."""
     return SEARCH_COST + SEARCH_COST_PER_CANDIDATE * kc
-AUTO_SAMPLE = 32  # queries tried first to price the certified path for the batch
+AUTO_SAMPLE = 32  # most queries tried first to price the certified path for the batch
 MAX_ROUNDS = 3  # searches of at least MIN_PREDICT candidates per query before the exact path answers it
 MIN_PREDICT = 8  # fewer first candidates than this: the next search takes this many, unpredicted
 
@@ -169,8 +169,9 @@ def certified_reduce(
     fell_back = np.zeros(b, dtype=bool)
     state = (out, bound, k_used)
     todo = np.arange(b)
-    if b > 4 * AUTO_SAMPLE:
-        sample = np.unique(np.linspace(0, b - 1, AUTO_SAMPLE).round().astype(np.int64))
+    n_sample = min(AUTO_SAMPLE, b // 16)  # at most 1/16 of the batch
+    if n_sample >= 8:
+        sample = np.unique(np.linspace(0, b - 1, n_sample).round().astype(np.int64))
         s_exact, searches = _certify(x, q, sample, beta, k, need_acc, opts, state)
         cost = (searches + s_exact.size) / sample.size
         rest = np.setdiff1d(todo, sample)
