@@ -15,13 +15,12 @@ import time
 from collections.abc import Callable
 from typing import Any
 
-import faiss
 import numpy as np
 
 from ._data import BenchData, packed, sign_codes
 from ._measure import median, memory_peaks, paired_times, recall_at_k, time_calls
 from ._spec import BenchRecord, BenchSpec
-from ..core.index import IndexSettings, default_settings
+from ..core.index import CandidateIndex, IndexSettings, binary_flat, default_settings, make_index
 from ..errors import InputValueError
 
 __all__ = ["count_rows", "run_rows"]
@@ -168,7 +167,7 @@ def _flat(run: _Run) -> None:
 
 
 def _flat_index(x: np.ndarray) -> Any:
-    idx = faiss.IndexFlatIP(x.shape[1])
+    idx = make_index("flat", x.shape[1])
     idx.add(x)
     return idx
 
@@ -197,10 +196,8 @@ def _hnsw(run: _Run, planned: list[str]) -> None:
     s = run.spec
 
     def build() -> Any:
-        idx = faiss.IndexHNSWFlat(run.dim, s.hnsw_m, faiss.METRIC_INNER_PRODUCT)
-        idx.hnsw.efConstruction = s.ef_construction
-        idx.add(run.x)
-        return idx
+        graph = IndexSettings(kind="hnsw", M=s.hnsw_m, ef_construction=s.ef_construction)
+        return CandidateIndex.build(run.x, graph, version=0).faiss_index
 
     hnsw, b, brss = _build(build)
     for ef in s.ef_search:
@@ -224,17 +221,8 @@ def _ivf(run: _Run, planned: list[str]) -> None:
         raise InputValueError(f"run_benchmark: `nlist` ({nlist}) must be at most the {run.n} stored rows.")
 
     def build() -> Any:
-        quantizer = faiss.IndexFlatIP(run.dim)
-        idx = faiss.IndexIVFFlat(quantizer, run.dim, nlist, faiss.METRIC_INNER_PRODUCT)
-        idx.cp.seed = s.seed
-        n_train = min(run.n, 64 * nlist)
-        rng = np.random.default_rng(s.seed)
-        sample = run.x if n_train == run.n else run.x[np.sort(rng.choice(run.n, n_train, replace=False))]
-        idx.train(np.ascontiguousarray(sample))
-        idx.add(run.x)
-        idx.own_fields = True
-        quantizer.this.disown()
-        return idx
+        lists = IndexSettings(kind="ivf", nlist=nlist, nprobe=1, seed=s.seed)
+        return CandidateIndex.build(run.x, lists, version=0).faiss_index
 
     ivf, b, brss = _build(build)
     for nprobe in sorted({min(p, nlist) for p in s.nprobe}):
@@ -266,7 +254,7 @@ def _binary(run: _Run) -> None:
     bits = 8 * ((run.dim + 7) // 8)
 
     def build() -> Any:
-        idx = faiss.IndexBinaryFlat(bits)
+        idx = binary_flat(bits)
         idx.add(packed(codes))
         return idx
 

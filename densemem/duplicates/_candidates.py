@@ -18,6 +18,8 @@ import faiss
 import numpy as np
 from faiss.contrib.ivf_tools import add_preassigned, range_search_preassigned
 
+from ..core.index import make_index, train_ivf
+
 __all__ = [
     "SLACK",
     "PairSet",
@@ -144,7 +146,7 @@ def exact_pairs(
 ) -> PairSet:
     """Every pair above the rule, by faiss ``IndexFlatIP.range_search`` (brute force)."""
     n, d = xn.shape
-    index = faiss.IndexFlatIP(d)
+    index = make_index("flat", d)
     index.add(xn)
     radius = _radius(threshold)
     parts = []
@@ -174,16 +176,11 @@ def default_nlist(n: int) -> int:
 
 
 def _train_ivf(xn: np.ndarray, nlist: int, rng: np.random.Generator) -> faiss.IndexIVFFlat:
-    n, d = xn.shape
-    quantizer = faiss.IndexFlatIP(d)
-    index = faiss.IndexIVFFlat(quantizer, d, nlist, faiss.METRIC_INNER_PRODUCT)
-    index.cp.spherical = True  # unit centroids: inner-product assignment is cosine
-    index.cp.niter = 8
-    index.cp.min_points_per_centroid = 1  # we choose the sample size; silence faiss' warning
-    n_train = min(n, TRAIN_PER_LIST * nlist)
-    rows = np.sort(rng.choice(n, size=n_train, replace=False)) if n_train < n else slice(None)
-    index.train(np.ascontiguousarray(xn[rows]))
-    # faiss' python wrapper keeps a reference to `quantizer` inside `index`
+    # spherical: unit centroids, so inner-product assignment is cosine; min_points_per_centroid=1:
+    # we choose the sample size, which silences faiss' warning
+    index = make_index("ivf", xn.shape[1], nlist=nlist,
+                       kmeans={"spherical": True, "niter": 8, "min_points_per_centroid": 1})
+    train_ivf(index, xn, TRAIN_PER_LIST * nlist, rng)
     return index
 
 
@@ -286,10 +283,8 @@ def hnsw_pairs(
     """Pairs among each row's ``k`` approximate nearest neighbours (faiss IndexHNSWFlat)."""
     n, d = xn.shape
     k = min(k + 1, n)
-    index = faiss.IndexHNSWFlat(d, m, faiss.METRIC_INNER_PRODUCT)
-    index.hnsw.efConstruction = max(40, 2 * m)
     ef = max(2 * k, 64) if ef_search is None else ef_search
-    index.hnsw.efSearch = ef
+    index = make_index("hnsw", d, M=m, ef_construction=max(40, 2 * m), ef_search=ef)
     bar = _bar(progress, "dedup: hnsw build", n)
     for a, b in _chunks(n, chunk):
         index.add(xn[a:b])

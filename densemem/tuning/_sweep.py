@@ -13,7 +13,10 @@ from typing import Any
 import faiss
 import numpy as np
 
-from ..core.weight_stats import weight_stats
+from ..core import partial as P
+from ..core.exact import exact_reduce
+from ..core.candidates import CertifiedOptions
+from ..core.steps import Steps, reduce, run_steps
 from ._queries import CORRUPTIONS, corrupt
 from ._reports import BetaChoice, SweepReport
 from ._theory import _check_fraction, _check_memory
@@ -24,6 +27,7 @@ from .._validation import (
     check_nonneg_float,
     check_positive_int,
     check_queries,
+    unit_rows,
 )
 from ..dense import DenseMemory
 from ..errors import InputValueError, UnknownIdError
@@ -115,37 +119,60 @@ def _rivals(x: np.ndarray, rows: np.ndarray) -> np.ndarray:
 
 
 # ---------------------------------------------------------------- measure
-def _last_input(memory: DenseMemory, q: np.ndarray, beta: float, run: dict[str, Any]) -> np.ndarray:
-    """The state the last update starts from (the query itself for one step)."""
-    if run["steps"] == 1:
-        return q
-    prev = memory.retrieve(q, beta, steps=run["steps"] - 1, tol=run["tol"], k=1, method=run["method"],
-                           return_energy=False)
-    return prev.states
+def _one_beta(memory: DenseMemory, q: np.ndarray, beta: float, run: dict[str, Any], k: int) -> Steps:
+    """Retrieve ``q`` at ``beta``; each step's info carries the entropy and PR of its weights.
 
+    "exact" and "auto": one exact pass per step gives the states, the top list
+    and (from the same partial's moments) the statistics of all N weights; auto
+    takes it because the statistics need every row anyway, so no candidate
+    path can be cheaper. "certified" and "index": the asked path gives the
+    answers and a pass without the weighted sum gives the statistics. The step
+    loop keeps, per query, the info of its last update.
+    """
+    x, ids = memory.patterns, memory.ids
+    MISSING = "" if ids.dtype.kind == "U" else -1
+    opts = {"certified": CertifiedOptions(tile_mib=memory.tile_mib), "n_candidates": max(k, 32)}  # retrieve's
 
-def _weights(memory: DenseMemory, q: np.ndarray, beta: float, run: dict[str, Any]) -> Any:
-    inp = _last_input(memory, q, beta, run)
-    return weight_stats(inp, memory.patterns, beta, tile_mib=memory.tile_mib, n_threads=memory.n_threads)
+    def stats(states: np.ndarray, kk: int, acc: bool) -> P.Finished:
+        part = exact_reduce(states, x, beta, k=kk, tile_mib=memory.tile_mib, n_threads=memory.n_threads,
+                            need_acc=acc, moments=True)
+        return P.finish(part)
+
+    def one_pass(states: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, dict[str, Any]]:
+        if run["method"] in ("exact", "auto"):
+            fin = stats(states, k, True)
+            assert fin.states is not None
+            new, top_ids, top_w = fin.states, ids[fin.top_i], fin.top_w
+        else:
+            got, _ = reduce(memory, states, beta, k=k, method=run["method"], need_acc=True, opts=opts)
+            assert got.states is not None
+            new, top_w = got.states, got.top_w
+            top_ids = np.where(got.top_i >= 0, ids[np.maximum(got.top_i, 0)], MISSING)  # index misses
+            fin = stats(states, 0, False)
+        return new, top_ids, top_w, {"entropy": fin.entropy, "participation": fin.participation}
+
+    if memory.normalize:  # as DenseMemory.retrieve does with its queries
+        q = unit_rows(q, where="sweep_beta", what="query")
+    return run_steps(one_pass, q, steps=run["steps"], tol=run["tol"], max_norm=memory.max_norm, k=k)
 
 
 def _measure(memory: DenseMemory, q: np.ndarray, src: np.ndarray | None, beta: float, run: dict[str, Any],
              geometry: tuple[np.ndarray, float]) -> dict[str, np.ndarray]:
     """Everything the sweep records for one beta, per query."""
-    res = memory.retrieve(q, beta, steps=run["steps"], tol=run["tol"], k=run["k"], method=run["method"])
-    ws = _weights(memory, q, beta, run)
+    res = _one_beta(memory, q, beta, run, run["k"])
     states = np.ascontiguousarray(res.states, dtype=np.float32)
+    energy = memory.energy(states, beta)
     d2, _ = faiss.knn(states, memory.patterns, 1, metric=faiss.METRIC_L2)
     mean, spread = geometry
     d_mean = np.linalg.norm(states.astype(np.float64) - mean, axis=1)
-    pr = ws.participation
+    pr = res.info["participation"]
     kind = np.where(pr < run["single_pr"], 0, np.where(d_mean <= run["global_frac"] * spread, 2, 1))
-    correct = None if src is None else res.top_ids[:, 0] == src
+    correct = None if src is None else res.ids[:, 0] == src
     return {
-        "top_ids": res.top_ids, "top_weights": res.top_weights, "entropy": ws.entropy, "participation": pr,
+        "top_ids": res.ids, "top_weights": res.weights, "entropy": res.info["entropy"], "participation": pr,
         "nearest": np.sqrt(np.maximum(d2[:, 0].astype(np.float64), 0.0)), "kind": kind.astype(np.int8),
-        "energy": np.asarray(res.energy, dtype=np.float64), "correct": correct,
-        "sharp": (res.top_weights[:, 0] >= run["sharp_weight"]) & (True if correct is None else correct),
+        "energy": np.asarray(energy, dtype=np.float64), "correct": correct,
+        "sharp": (res.weights[:, 0] >= run["sharp_weight"]) & (True if correct is None else correct),
     }
 
 
@@ -440,7 +467,7 @@ def _choose_blend(memory: DenseMemory, q: np.ndarray, run: dict[str, Any], lo: f
                   rtol: float, goal: float) -> BetaChoice:
     def size(b: float) -> float:
         _ticked()
-        return float(np.mean(np.exp(_weights(memory, q, b, run).entropy)))
+        return float(np.mean(np.exp(_one_beta(memory, q, b, run, 1).info["entropy"])))
 
     log = [(lo, size(lo)), (hi, size(hi))]
     if log[0][1] <= goal or log[1][1] >= goal:

@@ -12,6 +12,7 @@ import faiss
 import numpy as np
 from scipy.special import lambertw
 
+from ..core.index import make_index, train_ivf
 from ._reports import BetaPrediction, SeparationReport
 from .._validation import check_nonneg_float
 from ..dense import DenseMemory
@@ -47,14 +48,11 @@ def _ann_top(x: np.ndarray, kind: str, k: int) -> tuple[np.ndarray, np.ndarray]:
     """Top-k inner-product neighbours of every stored row from a temporary faiss index."""
     n, d = x.shape
     if kind == "hnsw":
-        index = faiss.IndexHNSWFlat(d, 32, faiss.METRIC_INNER_PRODUCT)
-        index.hnsw.efConstruction = 80  # common practice for HNSW builds
-        index.hnsw.efSearch = 64
+        index = make_index("hnsw", d, M=32, ef_construction=80, ef_search=64)  # common practice for HNSW
     else:
         nlist = max(1, min(round(4 * math.sqrt(n)), n // 39))  # faiss wants >= 39 points per list
-        index = faiss.IndexIVFFlat(faiss.IndexFlatIP(d), d, nlist, faiss.METRIC_INNER_PRODUCT)
-        index.train(x)
-        index.nprobe = max(8, nlist // 32)
+        index = make_index("ivf", d, nlist=nlist, nprobe=max(8, nlist // 32))
+        train_ivf(index, x, n, None)
     index.add(x)
     return index.search(x, k)
 

@@ -17,7 +17,8 @@ from scipy.stats import entropy as scipy_entropy
 
 import densemem
 import densemem.tuning as tu
-from densemem.core.weight_stats import weight_stats
+from densemem.core import partial as P
+from densemem.core.exact import exact_reduce
 from densemem.tuning._queries import corrupt
 from densemem.errors import InputTypeError, InputValueError, MissingExtraError, UnknownIdError
 
@@ -200,16 +201,41 @@ def test_target_beta_covers_the_fraction(rng: np.random.Generator) -> None:
 
 
 # ------------------------------------------------------- weights / sweep
-def test_weight_stats_match_scipy_on_uneven_tiles(rng: np.random.Generator) -> None:
-    # Reference: scipy.special.softmax and scipy.stats.entropy; tiles of a
-    # few rows and query chunks of 7 over 2 threads make every tile and chunk boundary uneven.
+def test_partial_moments_match_scipy_on_uneven_tiles(rng: np.random.Generator) -> None:
+    # Reference: scipy.special.softmax and scipy.stats.entropy (Shannon entropy -sum p ln p);
+    # participation ratio 1 / sum p^2 from the same scipy weights. Tiles of a few rows and
+    # query chunks of 7 over 2 threads make every tile, merge and chunk boundary uneven.
     x = rng.standard_normal((1003, 10)).astype(np.float32)
     q = rng.standard_normal((37, 10)).astype(np.float32)
     for beta in (1e-9, 0.2, 3.0):
-        ws = weight_stats(q, x, beta, tile_mib=0.002, n_threads=2, chunk=7)
-        p = softmax(beta * (q.astype(np.float64) @ x.T.astype(np.float64)), axis=1)
-        np.testing.assert_allclose(ws.entropy, scipy_entropy(p, axis=1), atol=2e-6)
-        np.testing.assert_allclose(ws.participation, 1.0 / np.sum(p * p, axis=1), rtol=1e-5)
+        for need_acc in (True, False):
+            part = exact_reduce(q, x, beta, k=3, tile_mib=0.002, n_threads=2, chunk=7, need_acc=need_acc,
+                                moments=True)
+            fin = P.finish(part)
+            p = softmax(beta * (q.astype(np.float64) @ x.T.astype(np.float64)), axis=1)
+            np.testing.assert_allclose(fin.entropy, scipy_entropy(p, axis=1), atol=2e-6)
+            np.testing.assert_allclose(fin.participation, 1.0 / np.sum(p * p, axis=1), rtol=1e-5)
+    plain = P.finish(exact_reduce(q, x, 3.0, k=3, tile_mib=0.002, n_threads=2, chunk=7))
+    assert plain.entropy is None and plain.participation is None  # only when asked
+
+
+def test_gathered_moments_match_scipy_with_missing_candidates(rng: np.random.Generator) -> None:
+    # Reference: scipy.special.softmax / scipy.stats.entropy over each query's present
+    # candidates; -inf marks a missing candidate and must weigh nothing.
+    z = rng.standard_normal((6, 40)) * 4.0
+    ids = np.tile(np.arange(40), (6, 1))
+    z[:, 30:] = -np.inf
+    ids[:, 30:] = -1
+    fin = P.finish(P.gathered(z, None, ids, k=2, moments=True))
+    p = softmax(z[:, :30].astype(np.float32).astype(np.float64), axis=1)
+    np.testing.assert_allclose(fin.entropy, scipy_entropy(p, axis=1), atol=1e-9)
+    np.testing.assert_allclose(fin.participation, 1.0 / np.sum(p * p, axis=1), rtol=1e-9)
+    # Split the candidates in two disjoint halves: the merge rescales the moments exactly.
+    a = P.gathered(z[:, :13], None, ids[:, :13], k=2, moments=True)
+    b = P.gathered(z[:, 13:], None, ids[:, 13:], k=2, moments=True)
+    both = P.finish(P.merge(a, b))
+    np.testing.assert_allclose(both.entropy, fin.entropy, atol=1e-12)
+    np.testing.assert_allclose(both.participation, fin.participation, rtol=1e-12)
 
 
 def test_entropy_non_increasing_in_beta_and_ln_n_at_zero(rng: np.random.Generator) -> None:
