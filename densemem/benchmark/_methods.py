@@ -153,7 +153,9 @@ class _Run:
 
 # ------------------------------------------------------------------ rows
 def _held_mib(index: Any, binary: bool = False) -> float:
-    """MiB an index holds: the size of its faiss serialisation (measured, not estimated)."""
+    """MiB an index holds: the size of its faiss serialization (measured, not estimated)."""
+    import faiss
+
     raw = faiss.serialize_index_binary(index) if binary else faiss.serialize_index(index)
     return float(raw.nbytes) / 2.0**20
 

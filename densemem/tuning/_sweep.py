@@ -16,7 +16,8 @@ import numpy as np
 from ..core import partial as P
 from ..core.exact import exact_reduce
 from ..core.candidates import CertifiedOptions
-from ..core.steps import Steps, reduce, run_steps
+from ..core.rows import TableRows, finish
+from ..core.steps import Steps, run_steps
 from ._queries import CORRUPTIONS, corrupt
 from ._reports import BetaChoice, SweepReport
 from ._theory import _check_fraction, _check_memory
@@ -130,8 +131,9 @@ def _one_beta(memory: DenseMemory, q: np.ndarray, beta: float, run: dict[str, An
     loop keeps, per query, the info of its last update.
     """
     x, ids = memory.patterns, memory.ids
-    MISSING = "" if ids.dtype.kind == "U" else -1
-    opts = {"certified": CertifiedOptions(tile_mib=memory.tile_mib), "n_candidates": max(k, 32)}  # retrieve's
+    cert = CertifiedOptions(tile_mib=memory.tile_mib)  # retrieve's defaults
+    index = (lambda: memory._fresh_index(where="sweep_beta")) if run["method"] == "index" else None
+    rows = TableRows(x, ids, memory.max_norm, run["method"], memory.tile_mib, memory.n_threads, max(k, 32), index)
 
     def stats(states: np.ndarray, kk: int, acc: bool) -> P.Finished:
         part = exact_reduce(states, x, beta, k=kk, tile_mib=memory.tile_mib, n_threads=memory.n_threads,
@@ -144,10 +146,9 @@ def _one_beta(memory: DenseMemory, q: np.ndarray, beta: float, run: dict[str, An
             assert fin.states is not None
             new, top_ids, top_w = fin.states, ids[fin.top_i], fin.top_w
         else:
-            got, _ = reduce(memory, states, beta, k=k, method=run["method"], need_acc=True, opts=opts)
+            got, top_ids = finish(rows.reduce(states, beta, k=k, need_acc=True, cert=cert))  # misses: fill ids
             assert got.states is not None
             new, top_w = got.states, got.top_w
-            top_ids = np.where(got.top_i >= 0, ids[np.maximum(got.top_i, 0)], MISSING)  # index misses
             fin = stats(states, 0, False)
         return new, top_ids, top_w, {"entropy": fin.entropy, "participation": fin.participation}
 
