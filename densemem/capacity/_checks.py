@@ -7,7 +7,6 @@ and echoes what came.
 from __future__ import annotations
 
 import numbers
-import sys
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -17,7 +16,8 @@ import numpy as np
 from . import _models as cm
 from ._search import CI_METHODS, DECISIONS
 from .._validation import check_nonneg_float, check_positive_int
-from ..errors import InputTypeError, InputValueError, MissingExtraError
+from .._util import progress_bar as make_bar, stderr_is_tty
+from ..errors import InputTypeError, InputValueError
 
 
 def choice(value: Any, name: str, options: Sequence[str], where: str) -> str:
@@ -86,22 +86,14 @@ def real_items(value: Any, name: str, where: str) -> list[float]:
 
 def check_progress(progress: Any, where: str) -> bool:
     if progress is None:
-        progress = sys.stderr.isatty()
+        progress = stderr_is_tty()
     if not isinstance(progress, bool):
         raise InputTypeError(f"{where}: `progress` must be True, False or None; got {progress!r}.")
     return progress
 
 
 def progress_bar(progress: Any, total: int | None, desc: str, where: str) -> Any:
-    if not check_progress(progress, where):
-        return None
-    try:
-        from tqdm.auto import tqdm
-    except ImportError:
-        raise MissingExtraError(
-            f"{where}: progress bars need tqdm; install it with: pip install densemem[progress]"
-        ) from None
-    return tqdm(total=total, desc=desc, file=sys.stderr, leave=False)
+    return make_bar(total=total, desc=desc, show=check_progress(progress, where), where=where)
 
 
 def setup(where: str, model: Any, dim: Any, patterns: Any, corruption: Any, damage: Any,

@@ -24,17 +24,14 @@ Examples
 
 from __future__ import annotations
 
-import contextlib
-import os
-import secrets
 import time
-from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from .._util import replacing, write_atomic
 from .._validation import as_rng, check_positive_int
 from ..dense import DenseMemory
 from ..errors import InputValueError
@@ -231,7 +228,7 @@ def _tune(mem: DenseMemory, plan: Any, out: Path, plots: bool) -> tuple[dict[str
     _write_text(out / "tuning.txt", tuning.format_report(rep) + "\n")
     files["tuning"] = str(out / "tuning.txt")
     if plots and rep.sweep is not None and _have_matplotlib():
-        with _replacing(out / "beta-sweep.png") as tmp:
+        with replacing(out / "beta-sweep.png") as tmp:
             tuning.plot_sweep(rep.sweep, tmp, predicted_beta=rep.prediction.beta_target_separated,
                               chosen_beta=rep.choice.beta if rep.choice else None)
         files["beta_sweep_png"] = str(out / "beta-sweep.png")
@@ -240,31 +237,13 @@ def _tune(mem: DenseMemory, plan: Any, out: Path, plots: bool) -> tuple[dict[str
             "predicted_beta": float(rep.prediction.beta_target_separated)}, files
 
 
-@contextlib.contextmanager
-def _replacing(path: Path) -> Iterator[Path]:
-    """Yield a temp path beside `path` (same suffix); once written, fsync it and move it
-    into place with os.replace, so a reader sees the old file or the new one, never half."""
-    tmp = path.with_name(f".{path.stem}.tmp-{os.getpid()}-{secrets.token_hex(4)}{path.suffix}")
-    try:
-        yield tmp
-        fd = os.open(tmp, os.O_RDWR)
-        try:
-            os.fsync(fd)
-        finally:
-            os.close(fd)
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
-
-
 def _write_text(path: Path, text: str) -> None:
     """Write a report text file atomically (temp file in the same folder + os.replace)."""
-    with _replacing(path) as tmp, open(tmp, "x", encoding="utf-8") as fh:
-        fh.write(text)
+    write_atomic(path, text)
 
 
 def _save_figure(fig: Any, path: Path) -> None:
-    with _replacing(path) as tmp:
+    with replacing(path) as tmp:
         fig.savefig(tmp, format="png", dpi=110)
 
 

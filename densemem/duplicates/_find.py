@@ -11,7 +11,6 @@ read only.
 from __future__ import annotations
 
 import dataclasses
-import sys
 import time
 from typing import Any, Literal
 
@@ -29,8 +28,9 @@ from ._checks import (
     normalised_copy,
 )
 from ._plan import DuplicateGroup, DuplicatePlan
+from .._util import bar_factory
 from .._validation import as_rng
-from ..errors import InputValueError, MissingExtraError
+from ..errors import InputValueError
 
 __all__ = ["DedupSpec", "DuplicateGroup", "DuplicatePlan", "find_duplicates"]
 
@@ -253,17 +253,7 @@ def _without_pairs(plan: DuplicatePlan) -> DuplicatePlan:
 
 def _progress_factory(show: bool | None) -> Any:
     """A ``(desc, total) -> bar`` callable for tqdm bars on stderr, or None."""
-    if show is False or (show is None and not C.stderr_is_tty()):
-        return None
-    try:
-        from tqdm import tqdm
-    except ImportError:
-        if show:
-            raise MissingExtraError(
-                "find_duplicates: `progress=True` needs tqdm; pip install densemem[progress] (or tqdm)."
-            ) from None
-        return None
-    return lambda desc, total: tqdm(total=total, desc=desc, unit="row", file=sys.stderr, leave=False)
+    return bar_factory(show, unit="row", where="find_duplicates")
 
 
 class DedupSpec(BaseModel):

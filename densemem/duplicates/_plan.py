@@ -6,7 +6,6 @@ import csv
 import io
 import json
 import os
-import tempfile
 from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Any
@@ -14,7 +13,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import InputTypeError, InputValueError
-from ..results import _plain
+from .._util import fsync_dir, to_plain, write_atomic
 
 __all__ = ["PLAN_FILES", "DuplicateGroup", "DuplicatePlan"]
 
@@ -188,7 +187,7 @@ class DuplicatePlan:
             "threshold": self.threshold,
             "method": self.method,
             "candidates": self.candidates,
-            "candidate_params": _plain_deep(self.candidate_params),
+            "candidate_params": to_plain(self.candidate_params),
             "no_chaining": self.no_chaining,
             "representative_rule": self.representative_rule,
             "n_items": self.n_items,
@@ -211,7 +210,7 @@ class DuplicatePlan:
         >>> plan.to_dict()["threshold"]
         0.99
         """
-        return {f.name: _plain_deep(getattr(self, f.name)) for f in fields(self)}
+        return {f.name: to_plain(getattr(self, f.name)) for f in fields(self)}
 
     # ----------------------------------------------------------- files
     def write(self, folder: str | os.PathLike[str], *, overwrite: bool = False) -> dict[str, str]:
@@ -258,13 +257,13 @@ class DuplicatePlan:
                 )
         out.mkdir(parents=True, exist_ok=True)
         for role, data in blobs.items():
-            _atomic_write(targets[role], data)
+            write_atomic(targets[role], data)
         for role, name in PLAN_FILES.items():  # stale files of an earlier plan, own names only
             if role not in targets:
                 stale = out / name
                 if stale.is_file() or stale.is_symlink():
                     stale.unlink()
-        _fsync_dir(out)
+        fsync_dir(out)
         return {role: str(p) for role, p in targets.items()}
 
     def _member_table(self) -> dict[str, np.ndarray]:
@@ -316,14 +315,6 @@ class DuplicatePlan:
         return (json.dumps(doc, indent=1) + "\n").encode("utf-8")
 
 
-def _plain_deep(value: Any) -> Any:
-    if isinstance(value, dict):
-        return {str(k): _plain_deep(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_plain_deep(v) for v in value]
-    return _plain(value)
-
-
 def _csv_bytes(table: dict[str, np.ndarray]) -> bytes:
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
@@ -347,31 +338,3 @@ def _parquet_bytes(table: dict[str, np.ndarray]) -> bytes | None:
     buf = pa.BufferOutputStream()
     pq.write_table(pa.table({c: table[c] for c in _CSV_COLUMNS}), buf)
     return buf.getvalue().to_pybytes()
-
-
-def _atomic_write(path: Path, data: bytes) -> None:
-    """Temp file in the same folder, flush + fsync, then os.replace."""
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
-def _fsync_dir(folder: Path) -> None:
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-    except OSError:  # some platforms cannot open folders
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)

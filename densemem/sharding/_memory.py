@@ -60,14 +60,13 @@ from ._store import (
     _as_path,
     _check_target,
     _fill,
-    _max_norm,
     _read_top,
     _swap_in,
     _write_json_atomic,
     load_shard,
 )
 from ..core.tiles import DEFAULT_TILE_MIB
-from .._validation import check_ids, check_patterns, check_positive_int
+from .._validation import check_ids, check_patterns, check_positive_int, max_row_norm
 from ..errors import InputTypeError, InputValueError, StoreFormatError
 from ..results import NearestResult, RetrievalResult
 from ..store._folder import MANIFEST, _sha256, save_memory
@@ -279,7 +278,7 @@ class ShardedMemory:
         save_memory(mem, folder)
         man = json.loads(json.dumps(self._man))
         man["shards"][target].update(
-            count=len(mem), max_norm=_max_norm(mem._table.x), manifest_sha256=_sha256(Path(folder) / MANIFEST)
+            count=len(mem), max_norm=max_row_norm(mem._table.x), manifest_sha256=_sha256(Path(folder) / MANIFEST)
         )
         man["count"] = sum(int(s["count"]) for s in man["shards"])
         if new_ids.dtype.kind == "i" and new_ids.size:

@@ -8,18 +8,18 @@ from __future__ import annotations
 
 import json
 import os
-import secrets
 import shutil
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from .._util import fsync_dir, write_atomic
+from .._validation import max_row_norm
 from ..core.table import PatternTable
 from ..errors import InputTypeError, InputValueError, StoreFormatError
 from ..store._folder import (
     MANIFEST,
-    _fsync_dir,
     _sha256,
     load_memory,
     read_json_manifest,
@@ -46,25 +46,9 @@ def _shard_name(i: int) -> str:
     return f"shard-{i:05d}"
 
 
-def _max_norm(x: np.ndarray) -> float:
-    """Largest row norm, computed as :attr:`DenseMemory.max_norm` does."""
-    return float(np.sqrt(np.max(np.einsum("ij,ij->i", x, x)))) if len(x) else 0.0
-
-
 def _write_json_atomic(path: Path, payload: dict[str, Any]) -> None:
-    """Write ``path`` by temp file + fsync + rename + fsync of the folder."""
-    tmp = path.parent / f".{path.name}.tmp-{os.getpid()}-{secrets.token_hex(4)}"
-    text = json.dumps(payload, indent=2, sort_keys=True).encode("utf-8")
-    try:
-        with open(tmp, "xb") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
-    _fsync_dir(path.parent)
+    """Write ``path`` atomically (see :func:`densemem._util.write_atomic`)."""
+    write_atomic(path, json.dumps(payload, indent=2, sort_keys=True))
 
 
 def _is_sharded(d: Path) -> bool:
@@ -119,7 +103,7 @@ def _fill(memory: Any, tmp: Path, n_shards: int, by: str) -> dict[str, Any]:
         folder = tmp / _shard_name(i)
         save_memory(part, folder)
         shards.append({
-            "folder": folder.name, "count": int(rows.size), "max_norm": _max_norm(part._table.x),
+            "folder": folder.name, "count": int(rows.size), "max_norm": max_row_norm(part._table.x),
             "manifest_sha256": _sha256(folder / MANIFEST),
         })
     from .._version import __version__
@@ -154,7 +138,7 @@ def _swap_in(tmp: Path, p: Path) -> None:
     if p.exists():
         os.rename(p, prev)
     os.rename(tmp, p)
-    _fsync_dir(p.parent)
+    fsync_dir(p.parent)
     if prev.exists():
         shutil.rmtree(prev)
 

@@ -62,6 +62,7 @@ from typing import Any
 
 import numpy as np
 
+from .._util import fsync_dir
 from ..core.table import PatternTable
 from ..errors import InputTypeError, InputValueError, StoreFormatError
 
@@ -90,17 +91,9 @@ def _sibling(p: Path, tag: str) -> Path:
     return p.parent / f".{p.name}.densemem-{tag}"
 
 
-def _fsync_dir(d: Path) -> None:
-    fd = os.open(d, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
 def _rename(src: Path, dst: Path) -> None:
     os.rename(src, dst)
-    _fsync_dir(dst.parent)
+    fsync_dir(dst.parent)
 
 
 def _is_store(d: Path) -> bool:
@@ -133,7 +126,7 @@ def _recover(p: Path) -> None:
     for stale in [nxt, prev, *p.parent.glob(f".{p.name}.densemem-tmp-*")]:
         if stale.is_dir():
             shutil.rmtree(stale)
-    _fsync_dir(p.parent)
+    fsync_dir(p.parent)
 
 
 # -------------------------------------------------------------------- writing
@@ -196,7 +189,7 @@ def _fill_folder(memory: Any, tmp: Path) -> None:
         man["index"] = {"file": INDEX, "meta": meta}
     text = json.dumps(man, indent=2, sort_keys=True).encode("utf-8")
     _write_file(tmp / MANIFEST, lambda fh: fh.write(text))
-    _fsync_dir(tmp)
+    fsync_dir(tmp)
 
 
 def save_memory(memory: Any, path: Any, *, overwrite: bool = True) -> None:

@@ -309,7 +309,7 @@ def test_progress_bar_on_stderr(capsys, monkeypatch):
     assert "capacity hebbian" in capsys.readouterr().err
     estimate_capacity("hebbian", 16, n_trials=1, min_probes=8, progress=False)
     assert capsys.readouterr().err == ""
-    monkeypatch.setitem(sys.modules, "tqdm.auto", None)
+    monkeypatch.setitem(sys.modules, "tqdm", None)
     with pytest.raises(MissingExtraError, match=r"pip install densemem\[progress\]"):
         estimate_capacity("hebbian", 16, progress=True)
 
