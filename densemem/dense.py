@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
+import functools
 import warnings
-from typing import Any, Literal
+from typing import Any, Callable, Literal, TypeVar
 
 import faiss
 import numpy as np
@@ -17,6 +18,7 @@ from .core.tiles import DEFAULT_TILE_MIB, n_threads_default
 from ._validation import (
     check_beta,
     check_fraction,
+    check_index_params,
     check_k,
     check_nonneg_float,
     check_positive_int,
@@ -31,6 +33,19 @@ from .results import NearestResult, RetrievalResult
 __all__ = ["DenseMemory"]
 
 Method = Literal["auto", "exact", "certified", "index"]
+_F = TypeVar("_F", bound=Callable[..., Any])
+
+
+def _one_snapshot(method: _F) -> _F:
+    """Run a reading method on the rows and ids of one moment (see *Thread safety*)."""
+
+    @functools.wraps(method)
+    def reading(self: "DenseMemory", *args: Any, **kwargs: Any) -> Any:
+        with self._table.pinned():
+            return method(self, *args, **kwargs)
+
+    return reading  # type: ignore[return-value]
+
 _METHODS = ("auto", "exact", "certified", "index")
 
 
@@ -65,6 +80,22 @@ class DenseMemory:
     .. [1] H. Ramsauer et al., "Hopfield Networks is All You Need", ICLR 2021,
        arXiv:2008.02217.
 
+    Thread safety
+    -------------
+    Rows and ids are held as one snapshot that changes never write into:
+    :meth:`add` and :meth:`remove` build new arrays and swap them in at once,
+    one change at a time (a lock). Reads (:meth:`retrieve`, :meth:`energy`,
+    :meth:`nearest`, :attr:`patterns`, :attr:`ids`) may run from many threads
+    while another thread adds or removes; each call works on the rows and ids
+    of the moment it started, so its ids belong to its rows. The candidate
+    index of ``method="index"`` / ``nearest(index=True)`` is shared, not part
+    of the snapshot: do not change the memory while those run.
+
+    Two processes saving to the same store folder: one save wins whole, the
+    other raises :class:`~densemem.errors.StoreBusyError` and writes nothing
+    (an advisory ``fcntl`` lock beside the folder, POSIX only). Loads never
+    take the lock and always see a complete store.
+
     Examples
     --------
     >>> import numpy as np, densemem
@@ -89,8 +120,7 @@ class DenseMemory:
         self.n_threads = (
             n_threads_default() if n_threads is None else check_positive_int(n_threads, name="n_threads", where=where)
         )
-        self._max_norm: float | None = None
-        self._max_norm_version = -1
+        self._max_norm_cache: tuple[int, float] | None = None  # (table version, M)
         self._index: Any = None  # a candidate index (see build_index); seam for the store format
 
     # ------------------------------------------------------------------ build
@@ -174,11 +204,12 @@ class DenseMemory:
     @property
     def max_norm(self) -> float:
         """Largest stored pattern norm ``M`` (0.0 for an empty memory)."""
-        if self._max_norm_version != self._table.version or self._max_norm is None:
-            x = self._table.x
-            self._max_norm = float(np.sqrt(np.max(np.einsum("ij,ij->i", x, x)))) if len(x) else 0.0
-            self._max_norm_version = self._table.version
-        return self._max_norm
+        snap = self._table.snapshot()
+        cached = self._max_norm_cache
+        if cached is None or cached[0] != snap.version:
+            cached = (snap.version, max_row_norm(snap.x))  # float64: no overflow at 1e38, no underflow at 1e-30
+            self._max_norm_cache = cached
+        return cached[1]
 
     def __len__(self) -> int:
         return len(self._table)
@@ -220,16 +251,19 @@ class DenseMemory:
         return self._add(patterns, ids, where="DenseMemory.add")
 
     def _add(self, patterns: Any, ids: Any, *, where: str) -> np.ndarray:
-        x, new_ids = self._table.prepare(patterns, ids, where=where)
-        self._table.append(x, new_ids)
-        if self._index is not None:
-            self._index.add(x, self._table.version)
+        with self._table._lock:  # check and append as one change (two adders never take one id)
+            x, new_ids = self._table.prepare(patterns, ids, where=where)
+            self._table.append(x, new_ids)
+            if self._index is not None:
+                self._index.add(x, self._table.version)
         return new_ids.copy()
 
     def remove(self, ids: Any) -> int:
         """Remove the patterns with these ids; return how many were removed.
 
         Every id is checked first: an unknown id raises and removes nothing.
+        ``ids`` is one id or a flat iterable of ids of the memory's kind (int
+        or str); bools, floats, None and nested lists are refused.
 
         Examples
         --------
@@ -238,9 +272,10 @@ class DenseMemory:
         >>> mem.remove([1]), mem.ids.tolist()
         (1, [0, 2])
         """
-        removed = self._table.delete(ids, where="DenseMemory.remove")
-        if self._index is not None:
-            self._index.stale = True  # positions shifted: rebuilt on next use
+        with self._table._lock:
+            removed = self._table.delete(ids, where="DenseMemory.remove")
+            if self._index is not None:
+                self._index.stale = True  # positions shifted: rebuilt on next use
         return removed
 
     def positions(self, ids: Any) -> np.ndarray:
@@ -303,6 +338,7 @@ class DenseMemory:
     ) -> tuple[P.Finished, dict[str, Any]]:
         return R.reduce(self, states, beta, k=k, method=method, need_acc=need_acc, opts=opts)
 
+    @_one_snapshot
     def retrieve(
         self,
         queries: Any,
@@ -411,6 +447,7 @@ class DenseMemory:
             result = R.replace(result, candidate_recall=recall)
         return result
 
+    @_one_snapshot
     def energy(self, states: Any, beta: float | None = None) -> np.ndarray:
         """Log-sum-exp energy of states (computed exactly, tile by tile).
 
@@ -476,6 +513,7 @@ class DenseMemory:
         where = "DenseMemory.build_index"
         if len(self) == 0:
             raise InputValueError(f"{where}: the memory is empty; add patterns first.")
+        params = check_index_params(kind, params, where=where)  # before anything reaches faiss
         settings = default_settings(kind, len(self), **params)
         self._index = CandidateIndex.build(self._table.x, settings, self._table.version)
         return settings.to_dict()
@@ -509,6 +547,7 @@ class DenseMemory:
             )
         self._index = CandidateIndex(IndexSettings(**meta["settings"]), index, len(self), self._table.version)
 
+    @_one_snapshot
     def nearest(
         self,
         queries: Any,

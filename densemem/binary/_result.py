@@ -101,7 +101,7 @@ def retrieve_batch(owner: str, engine: Engine, free: np.ndarray, states: str, n_
     where = f"{owner}.retrieve"
     mode = chk.check_choice(mode, "mode", chk.MODES, where)
     max_sweeps = chk.check_int(max_sweeps, "max_sweeps", where, minimum=1)
-    rng = chk.as_rng(seed, where)
+    rng = chk.as_rng(seed, where=where)
     s0 = chk.check_width(chk.check_binary(probes, "probes", states, where), n_units, "probes",
                          where)
     out = run(engine, s0, mode=mode, max_sweeps=max_sweeps, rng=rng, free=free,

@@ -15,7 +15,7 @@ import numpy as np
 
 from . import _models as cm
 from ._search import CI_METHODS, DECISIONS
-from .._validation import check_nonneg_float, check_positive_int
+from .._validation import SEED_MAX, check_nonneg_float, check_positive_int, check_seed
 from .._util import progress_bar as make_bar, stderr_is_tty
 from ..errors import InputTypeError, InputValueError
 
@@ -111,8 +111,8 @@ def setup(where: str, model: Any, dim: Any, patterns: Any, corruption: Any, dama
     default_steps = 50 if m.binary else 1
     steps = default_steps if steps is None else check_positive_int(steps, name="steps", where=where)
     if seed is None:
-        seed = int(np.random.SeedSequence().entropy % (2**63))
-    seed = check_positive_int(seed, name="seed", where=where, minimum=0)
+        seed = int(np.random.SeedSequence().entropy % (SEED_MAX + 1))
+    seed = check_seed(seed, where=where)
     choice(ci, "ci", CI_METHODS, where)
     confidence = check_nonneg_float(confidence, name="confidence", where=where, strict=True)
     if confidence >= 1:

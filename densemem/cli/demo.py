@@ -90,7 +90,7 @@ def make_archive(n_photos: int = 4000, *, seed: Any = 0, rescan_rate: float = 0.
     ['crop', 'original', 'rescan']
     """
     n = check_positive_int(n_photos, name="n_photos", where="make_archive", minimum=20)
-    rng = as_rng(seed)
+    rng = as_rng(seed, where="make_archive")
     centres = _unit(rng.standard_normal((len(THEMES), DIM)))
     theme = rng.integers(0, len(THEMES), n)
     own = _unit(rng.standard_normal((n, DIM)))
@@ -120,7 +120,7 @@ def faded_prints(archive: Archive, n: int = 200, *, fade: float = 0.9, seed: Any
     >>> q.shape, src.shape
     ((5, 64), (5,))
     """
-    rng = as_rng(seed)
+    rng = as_rng(seed, where="faded_prints")
     originals = np.flatnonzero(archive.kind == "original")
     src = rng.choice(originals, min(n, originals.size), replace=False)
     noise = _unit(rng.standard_normal((src.size, DIM))) * fade
@@ -346,7 +346,7 @@ def run_demo(
     steps = progress(range(5), total=5, desc="demo", quiet=quiet)
     next(steps, None)
     arc = make_archive(n_photos, seed=seed)
-    q, src = faded_prints(arc, n_queries, seed=as_rng(seed).integers(1 << 31))
+    q, src = faded_prints(arc, n_queries, seed=as_rng(seed, where="run_demo").integers(1 << 31))
     sharp_beta, blended_beta = 40.0, 10.0
     mem = DenseMemory.from_array(arc.vectors, arc.ids, normalize=True, beta=sharp_beta)
     mem.save(out / "store")

@@ -171,7 +171,7 @@ def find_duplicates(
     x, all_ids = input_matrix(data, ids)
     rule, score = check_score(representative, x.shape[0])
     bar = _progress_factory(opt.show_progress)
-    rng = as_rng(seed)
+    rng = as_rng(seed, where="find_duplicates")
     chunk = C.chunk_rows_for(x.shape[1], opt.work_mib)
     xn, valid, zero = normalised_copy(x, all_ids, chunk)
     vscore = None if score is None else score[valid]

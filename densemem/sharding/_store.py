@@ -22,12 +22,13 @@ from ..store._folder import (
     MANIFEST,
     _sha256,
     load_memory,
+    manifest_text,
     read_json_manifest,
     save_memory,
 )
 
 SHARDS_FORMAT_NAME = "densemem-shards"
-SHARDS_FORMAT_VERSION = 1
+SHARDS_FORMAT_VERSION = 2  # 2: shards.json carries manifest_sha256 (its own checksum); 1 still opens
 TOP_MANIFEST = "shards.json"
 _SPLITS = ("round_robin", "contiguous")
 
@@ -48,7 +49,7 @@ def _shard_name(i: int) -> str:
 
 def _write_json_atomic(path: Path, payload: dict[str, Any]) -> None:
     """Write ``path`` atomically (see :func:`densemem._util.write_atomic`)."""
-    write_atomic(path, json.dumps(payload, indent=2, sort_keys=True))
+    write_atomic(path, manifest_text(payload))
 
 
 def _is_sharded(d: Path) -> bool:
@@ -146,7 +147,7 @@ def _swap_in(tmp: Path, p: Path) -> None:
 def _read_top(p: Path, where: str) -> dict[str, Any]:
     mpath = p / TOP_MANIFEST
     man = read_json_manifest(
-        mpath, name=SHARDS_FORMAT_NAME, version=SHARDS_FORMAT_VERSION, where=where,
+        mpath, name=SHARDS_FORMAT_NAME, version=SHARDS_FORMAT_VERSION, where=where, unsealed=(1,),
         missing=f"there is no sharded store at {str(p)!r} ({TOP_MANIFEST} is missing).",
     )
     shards = man.get("shards")

@@ -15,9 +15,10 @@ import numpy as np
 from ..core.weight_stats import weight_stats
 from ._queries import CORRUPTIONS, corrupt
 from ._reports import BetaChoice, SweepReport
-from ._theory import _check_fraction, _check_memory
+from ._theory import _check_memory
 from .._validation import (
     as_rng,
+    check_positive_fraction,
     check_beta,
     check_k,
     check_nonneg_float,
@@ -84,7 +85,7 @@ def _make_queries(
             raise InputValueError(f"{where}: `sources` is only used with `queries`; got sources without queries.")
         level = _check_level(opts["corruption"], opts["level"], where)
         n_q = check_positive_int(opts["n_queries"], name="n_queries", where=where)
-        rng = as_rng(opts["seed"])
+        rng = as_rng(opts["seed"], where=where)
         n = len(memory)
         rows = rng.choice(n, size=n_q, replace=n_q > n)
         rivals = _rivals(memory.patterns, rows) if opts["corruption"] == "mix" else None
@@ -157,7 +158,7 @@ def _check_run(memory: DenseMemory, opts: dict[str, Any], where: str) -> dict[st
         "tol": check_nonneg_float(opts["tol"], name="tol", where=where),
         "k": min(10, n) if opts.get("k") is None else check_k(opts["k"], n=n, where=where),
         "method": opts["method"],
-        "sharp_weight": _check_fraction(opts["sharp_weight"], "sharp_weight", where),
+        "sharp_weight": check_positive_fraction(opts["sharp_weight"], name="sharp_weight", where=where),
         "single_pr": check_nonneg_float(opts.get("single_pr", 1.5), name="single_pr", where=where),
         "global_frac": check_nonneg_float(opts.get("global_frac", 0.1), name="global_frac", where=where),
     }
@@ -387,7 +388,7 @@ def choose_beta(
         raise InputValueError(f"{where}: `beta_min` must be below `beta_max`; got {lo!r} and {hi!r}.")
     rtol = check_nonneg_float(rtol, name="rtol", where=where, strict=True)
     if target == "sharp":
-        goal = _check_fraction(fraction, "fraction", where)
+        goal = check_positive_fraction(fraction, name="fraction", where=where)
     else:
         goal = check_nonneg_float(blend_size, name="blend_size", where=where)
         if not 1.0 <= goal <= len(memory):
