@@ -28,7 +28,7 @@ def choice(value: Any, name: str, options: Sequence[str], where: str) -> str:
 
 
 def check_corruption(value: Any, where: str, name: str = "corruption") -> tuple[str, float] | None:
-    """None, ("flip"|"mask", fraction in [0, 1]), ("gauss", sigma >= 0), or "kind:level"."""
+    """None, ("flip"|"mask", fraction in [0, 1]), ("gaussian", sigma >= 0), or "kind:level"."""
     if value is None or value == "none":
         return None
     if isinstance(value, str):
@@ -40,11 +40,11 @@ def check_corruption(value: Any, where: str, name: str = "corruption") -> tuple[
     if not (isinstance(value, (tuple, list)) and len(value) == 2 and value[0] in cm.CORRUPTIONS):
         raise InputValueError(
             f"{where}: `{name}` must be None, ('flip', fraction), ('mask', fraction) or "
-            f"('gauss', sigma) (or a string like 'flip:0.1'); got {value!r}."
+            f"('gaussian', sigma) (or a string like 'flip:0.1'); got {value!r}."
         )
     kind, level = value
     level = check_nonneg_float(level, name=f"{name} level", where=where)
-    if kind != "gauss" and level > 1:
+    if kind != "gaussian" and level > 1:
         raise InputValueError(f"{where}: the {kind} fraction must be in [0, 1]; got {level!r}.")
     return kind, level
 

@@ -111,7 +111,7 @@ def add_capacity(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None
                    help="models, e.g. hebbian storkey pseudo_inverse softmax:50")
     p.add_argument("--dims", nargs="+", type=int, default=[25, 50, 100, 200])
     p.add_argument("--patterns", choices=["pm1", "unit", "gaussian"], default="pm1")
-    p.add_argument("--corruption", help="query corruption, e.g. flip:0.1, mask:0.25, gauss:0.5")
+    p.add_argument("--corruption", help="query corruption, e.g. flip:0.1, mask:0.25, gaussian:0.5")
     p.add_argument("--n-trials", type=int, default=5)
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--csv", dest="csv_path", help="also write the table as CSV (new file)")

@@ -16,6 +16,7 @@ import numpy as np
 from . import partial as P
 from .candidates import bound_can_hold, certified_reduce, index_reduce
 from .exact import exact_reduce
+from .lse import lse_energy
 from ..results import RetrievalResult
 
 if TYPE_CHECKING:
@@ -173,10 +174,9 @@ def energy_of(mem: "DenseMemory", states: np.ndarray, beta: float, method: str, 
         cert = opts["certified"]
         opts = {**opts, "certified": dataclasses.replace(cert, k_start=max(cert.k_start, AUTO_K_START))}
     fin, _ = reduce(mem, states, beta, k=0, method=method, need_acc=False, opts=opts)
-    sq = np.einsum("ij,ij->i", states.astype(np.float64), states.astype(np.float64))
-    n = len(mem)
-    m = mem.max_norm
-    return -fin.lse / beta + 0.5 * sq + np.log(n) / beta + 0.5 * m * m
+    x = mem._table.x
+    return lse_energy(fin.lse, states, beta, n=len(mem), max_norm=mem.max_norm,
+                      row_blocks=lambda: (x[a : a + 8192] for a in range(0, x.shape[0], 8192)))
 
 
 def candidate_recall(mem: "DenseMemory", q: np.ndarray, n_cand: int, k: int, n_sample: int) -> float:

@@ -13,7 +13,9 @@ import faiss
 import numpy as np
 
 from ..core.weight_stats import weight_stats
-from ._queries import CORRUPTIONS, corrupt
+from .._synthetic import corrupt
+
+CORRUPTIONS = ("gaussian", "mask", "mix")  # the kinds of densemem._synthetic a sweep offers
 from ._reports import BetaChoice, SweepReport
 from ._theory import _check_memory
 from .._validation import (
@@ -89,7 +91,9 @@ def _make_queries(
         n = len(memory)
         rows = rng.choice(n, size=n_q, replace=n_q > n)
         rivals = _rivals(memory.patterns, rows) if opts["corruption"] == "mix" else None
-        q = corrupt(memory.patterns, rows, corruption=opts["corruption"], level=level, rng=rng, rivals=rivals)
+        x = memory.patterns
+        q = corrupt(x[rows], opts["corruption"], level, rng,
+                    rivals=None if rivals is None else x[rivals]).astype(np.float32)
         src: np.ndarray | None = memory.ids[rows]
         seed = opts["seed"] if opts["seed"] is None or isinstance(opts["seed"], int) else repr(opts["seed"])
         info = {"queries": "generated", "corruption": opts["corruption"], "level": level, "seed": seed}

@@ -143,7 +143,7 @@ def test_softmax_capacity_grows_exponentially_in_dimension(hebbian_small):
 def test_exponential_binary_capacity_grows_exponentially(hebbian_small):
     # Demircigil et al. 2017 (published abstract: capacity exponential in N); one-step
     # retrieval from a probe with Gaussian noise (sigma 0.5, about 2% of bits flipped)
-    caps = [estimate_capacity("exp", d, corruption=("gauss", 0.5), mode="sync", steps=1,
+    caps = [estimate_capacity("exp", d, corruption=("gaussian", 0.5), mode="sync", steps=1,
                               rel_tol=0.1, n_trials=3, min_probes=128).capacity for d in DIMS]
     slope, r2 = _fit(DIMS, caps)
     h_slope, _ = _fit(DIMS, hebbian_small)
@@ -250,7 +250,7 @@ def test_user_patterns_subsampled_and_not_modified(digits, digits_unit):
     np.testing.assert_array_equal(binary, before)
     unit_before = digits_unit.copy()
     soft = estimate_capacity(("softmax", 100.0), 64, patterns=digits_unit, success="top1",
-                             corruption=("gauss", 0.2), max_patterns=10_000)
+                             corruption=("gaussian", 0.2), max_patterns=10_000)
     assert 1 <= soft.capacity <= digits_unit.shape[0]
     np.testing.assert_array_equal(digits_unit, unit_before)
 
@@ -350,7 +350,7 @@ E = "estimate_capacity"
     (dict(patterns=np.ones((4, 8)), dim=9), InputValueError, r"`dim` is 9 but the `patterns`"),
     (dict(corruption=("blur", 0.1)), InputValueError, r"`corruption` must be None, \('flip'"),
     (dict(corruption=("flip", 1.5)), InputValueError, r"flip fraction must be in \[0, 1\]"),
-    (dict(corruption=("gauss", -1.0)), InputValueError, r"`corruption level` must be a finite"),
+    (dict(corruption=("gaussian", -1.0)), InputValueError, r"`corruption level` must be a finite"),
     (dict(success="exact"), InputValueError, r"`success` must be one of 'fixed_point'"),
     (dict(eps=-0.1), InputValueError, r"`eps` must be a finite number >= 0"),
     (dict(delta=0.0), InputValueError, r"`delta` must be a finite number > 0"),
@@ -358,7 +358,7 @@ E = "estimate_capacity"
     (dict(n_trials=0), InputValueError, r"`n_trials` must be an integer >= 1; got 0"),
     (dict(min_probes=0), InputValueError, r"`min_probes` must be an integer >= 1"),
     (dict(max_probes=0), InputValueError, r"`max_probes` must be an integer >= 1"),
-    (dict(seed=-1), InputValueError, r"`seed` must be an integer >= 0; got -1"),
+    (dict(seed=-1), InputValueError, r"`seed` must be an int in \[0, 2147483647\]; got -1"),
     (dict(max_patterns=0), InputValueError, r"`max_patterns` must be an integer >= 1"),
     (dict(steps=0), InputValueError, r"`steps` must be an integer >= 1"),
     (dict(mode="parallel"), InputValueError, r"`mode` must be one of 'async', 'sync'"),
