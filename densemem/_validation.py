@@ -33,6 +33,8 @@ __all__ = [
     "check_seed",
     "as_rng",
     "check_index_params",
+    "check_search_sizes",
+    "check_nearest_range",
     "check_finite_result",
     "SEED_MAX",
     "SCORE_LIMIT",
@@ -475,6 +477,51 @@ def check_index_params(kind: Any, params: dict[str, Any], *, where: str) -> dict
             raise InputValueError(f"{where}: `{key}` must be an integer in [{low}, {high}]; got {v}.")
         out[key] = v
     return out
+
+
+def check_search_sizes(n_rows: int, *, where: str, **counts: Any) -> None:
+    """Check faiss list and candidate counts (``nlist``, ``nprobe``, ``k``...) before faiss sees them.
+
+    Each given count (None: the default is chosen later) must be an int in
+    [1, 2**31 - 1] (faiss stores them as C ints); ``nlist`` and ``nprobe`` must also
+    be at most ``n_rows`` (no more lists than rows to put in them), so no count can
+    make faiss allocate beyond the data.
+
+    Examples
+    --------
+    >>> from densemem._validation import check_search_sizes
+    >>> check_search_sizes(100, where="demo", nlist=10, nprobe=None)  # fine: nothing raised
+    """
+    for key, val in counts.items():
+        if val is None:
+            continue
+        v = check_positive_int(val, name=key, where=where)
+        if v > _C_INT_MAX:
+            raise InputValueError(f"{where}: `{key}` must be an integer in [1, {_C_INT_MAX}]; got {v}.")
+        if key in ("nlist", "nprobe") and v > n_rows:
+            raise InputValueError(
+                f"{where}: `{key}` must be at most the number of rows ({n_rows}); got {v}."
+            )
+
+
+def check_nearest_range(query_norm: float, max_norm: float, metric: str, *, where: str) -> None:
+    """Refuse queries whose faiss scores would leave float32 (inf inner products, saturated L2).
+
+    Inner products are at most ``|q| M``; squared L2 distances at most ``(|q| + M)^2``.
+
+    Examples
+    --------
+    >>> from densemem._validation import check_nearest_range
+    >>> check_nearest_range(1.0, 1.0, "l2", where="demo")  # fine: nothing raised
+    """
+    top = query_norm * max_norm if metric == "ip" else (query_norm + max_norm) ** 2
+    if not np.isfinite(top) or top > SCORE_LIMIT:
+        what = "|q| * M" if metric == "ip" else "(|q| + M)^2"
+        raise InputValueError(
+            f"{where}: the largest query norm ({query_norm:.3g}) and stored norm ({max_norm:.3g}) give "
+            f"{metric} scores {what} = {top:.3g} beyond the float32 range ({SCORE_LIMIT:.3g}); rescale the "
+            "queries or the patterns."
+        )
 
 
 def check_finite_result(arr: np.ndarray, *, what: str, where: str) -> None:

@@ -29,7 +29,7 @@ from ._checks import (
 )
 from ._plan import DuplicateGroup, DuplicatePlan
 from .._util import bar_factory
-from .._validation import as_rng
+from .._validation import as_rng, check_search_sizes
 from ..errors import InputValueError
 
 __all__ = ["DedupSpec", "DuplicateGroup", "DuplicatePlan", "find_duplicates"]
@@ -169,6 +169,7 @@ def find_duplicates(
         beta=beta, max_steps=max_steps, retrieval=retrieval, work_mib=work_mib, progress=progress,
     )
     x, all_ids = input_matrix(data, ids)
+    check_search_sizes(x.shape[0], where="find_duplicates", nlist=nlist, nprobe=nprobe, k=k)  # before faiss
     rule, score = check_score(representative, x.shape[0])
     bar = _progress_factory(opt.show_progress)
     rng = as_rng(seed, where="find_duplicates")

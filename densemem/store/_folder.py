@@ -77,6 +77,7 @@ import numpy as np
 from .._util import fsync_dir
 from ..core.table import PatternTable
 from ..errors import InputTypeError, InputValueError, StoreBusyError, StoreFormatError
+from ._readers import NPY_ERRORS
 
 __all__ = ["save_memory", "load_memory", "describe_store", "StoreInfo", "FORMAT_NAME", "FORMAT_VERSION"]
 
@@ -408,7 +409,7 @@ def _npy_dtype(fpath: Path, where: str) -> np.dtype:
             holds = os.fstat(fh.fileno()).st_size - fh.tell()
             if claimed > holds and not dtype.hasobject:  # refused before np.load allocates the claimed size
                 raise ValueError(f"its header claims {claimed} bytes of data but the file holds {max(holds, 0)}")
-    except (ValueError, OSError, EOFError) as exc:
+    except NPY_ERRORS as exc:
         raise StoreFormatError(f"{where}: {str(fpath)!r} is not a readable .npy file ({exc}).") from None
     return dtype
 
@@ -420,7 +421,7 @@ def _load_array(fpath: Path, mmap: bool, where: str) -> np.ndarray:
         )
     try:
         arr = np.load(fpath, mmap_mode="r" if mmap else None, allow_pickle=False)
-    except (ValueError, OSError, EOFError) as exc:
+    except NPY_ERRORS as exc:
         raise StoreFormatError(f"{where}: {str(fpath)!r} is not a readable .npy file ({exc}).") from None
     return arr
 

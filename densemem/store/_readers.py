@@ -19,7 +19,10 @@ from __future__ import annotations
 import contextlib
 import csv
 import os
+import struct
+import tokenize
 import zipfile
+import zlib
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -166,6 +169,14 @@ def _about(subject: str) -> Iterator[None]:
 
 
 _NPY_MAGIC = b"\x93NUMPY"
+# what numpy's .npy header parser and loader raise on damaged bytes (the header is a Python
+# literal: a damaged one can raise SyntaxError or a tokenizer error, an odd dtype TypeError)
+NPY_ERRORS: tuple[type[BaseException], ...] = (
+    ValueError, OSError, EOFError, SyntaxError, tokenize.TokenError, TypeError, KeyError, OverflowError,
+    struct.error, zlib.error,
+)
+# a damaged zip can also claim encryption (RuntimeError) or an unknown compression method
+_NPZ_ERRORS = NPY_ERRORS + (zipfile.BadZipFile, zipfile.LargeZipFile, NotImplementedError, RuntimeError)
 
 
 def _npy_header(fh: Any, available: int | None = None) -> tuple[tuple[int, ...], np.dtype]:
@@ -199,7 +210,7 @@ def _read_npy(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, Any]
         fh.seek(0)
         try:
             _, dtype = _npy_header(fh, os.fstat(fh.fileno()).st_size)
-        except ValueError as exc:
+        except NPY_ERRORS as exc:
             raise InputValueError(f"{_WHERE}: {str(p)!r} is not a valid .npy file ({exc}).") from None
     if dtype.hasobject:
         raise InputValueError(
@@ -208,7 +219,7 @@ def _read_npy(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, Any]
         )
     try:
         arr = np.load(p, allow_pickle=False)
-    except (ValueError, OSError, EOFError) as exc:
+    except NPY_ERRORS as exc:
         raise InputValueError(f"{_WHERE}: {str(p)!r} is not a valid .npy file ({exc}).") from None
     return arr, None, None, None
 
@@ -230,7 +241,7 @@ def _read_npz(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, Any]
                     raise _object_member(p, [name])
             vectors = z[column]
             ids = z[id_column] if id_column is not None else None
-    except (ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
+    except _NPZ_ERRORS as exc:
         if isinstance(exc, InputValueError):
             raise
         raise InputValueError(f"{_WHERE}: {str(p)!r} is not a valid .npz file ({exc}).") from None
@@ -262,7 +273,7 @@ def _member_header(p: Path, z: Any, name: str) -> tuple[tuple[int, ...], np.dtyp
     try:
         with z.zip.open(name + ".npy") as fh:
             return _npy_header(fh, z.zip.getinfo(name + ".npy").file_size)
-    except (ValueError, EOFError) as exc:
+    except _NPZ_ERRORS as exc:
         raise InputValueError(f"{_WHERE}: {str(p)!r} is not a valid .npz file (member {name!r}: {exc}).") from None
 
 
