@@ -28,6 +28,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from .errors import InputValueError
+
 __all__ = ["CORRUPTIONS", "corrupt"]
 
 CORRUPTIONS = ("gaussian", "mask", "flip", "mix")
@@ -75,10 +77,10 @@ def corrupt(
         return np.where(out >= 0, 1.0, -1.0) if binary else out
     if kind == "mix":
         if rivals is None:
-            raise ValueError("corrupt: kind 'mix' needs `rivals`")
+            raise InputValueError("corrupt: kind 'mix' needs `rivals`.")
         return (1.0 - level) * out + level * np.asarray(rivals, dtype=np.float64)
     if kind not in ("mask", "flip"):
-        raise ValueError(f"corrupt: unknown kind {kind!r}; use one of {', '.join(CORRUPTIONS)}")
+        raise InputValueError(f"corrupt: unknown kind {kind!r}; use one of {', '.join(CORRUPTIONS)}.")
     m = int(round(level * d))
     if m == 0:
         return out

@@ -319,6 +319,14 @@ def check_score_range(beta: float, query_norm: float, max_norm: float, *, where:
 
 
 def _check_interval(x: Any, *, name: str, where: str, low_open: bool, high_open: bool) -> float:
+    """A finite real number in the interval from 0 to 1, either end open or closed.
+
+    Examples
+    --------
+    >>> from densemem._validation import check_open_fraction, check_unit_interval
+    >>> check_open_fraction(1e-6, name="tol_mass", where="demo"), check_unit_interval(0, name="units", where="demo")
+    (1e-06, 0.0)
+    """
     text = f"{'(' if low_open else '['}0, 1{')' if high_open else ']'}"
     if isinstance(x, np.generic):
         x = x.item()
@@ -332,38 +340,17 @@ def _check_interval(x: Any, *, name: str, where: str, low_open: bool, high_open:
 
 
 def check_open_fraction(x: Any, *, name: str, where: str) -> float:
-    """Return ``x`` as a float in the open interval (0, 1) (a tolerance such as ``tol_mass``).
-
-    Examples
-    --------
-    >>> from densemem._validation import check_open_fraction
-    >>> check_open_fraction(1e-6, name="tol_mass", where="demo")
-    1e-06
-    """
+    """Return ``x`` as a float in the open interval (0, 1): a tolerance such as ``tol_mass``."""
     return _check_interval(x, name=name, where=where, low_open=True, high_open=True)
 
 
 def check_unit_interval(x: Any, *, name: str, where: str) -> float:
-    """Return ``x`` as a float in the closed interval [0, 1] (a probability, a damaged share).
-
-    Examples
-    --------
-    >>> from densemem._validation import check_unit_interval
-    >>> check_unit_interval(0, name="units", where="demo")
-    0.0
-    """
+    """Return ``x`` as a float in [0, 1]: a probability or a damaged share (0 and 1 allowed)."""
     return _check_interval(x, name=name, where=where, low_open=False, high_open=False)
 
 
 def check_positive_fraction(x: Any, *, name: str, where: str) -> float:
-    """Return ``x`` as a float in (0, 1] (a share that may be the whole).
-
-    Examples
-    --------
-    >>> from densemem._validation import check_positive_fraction
-    >>> check_positive_fraction(1, name="fraction", where="demo")
-    1.0
-    """
+    """Return ``x`` as a float in (0, 1]: a share that may be the whole but not nothing."""
     return _check_interval(x, name=name, where=where, low_open=True, high_open=False)
 
 
@@ -390,7 +377,7 @@ def max_row_norm(x: np.ndarray) -> float:
     --------
     >>> import numpy as np
     >>> from densemem._validation import max_row_norm
-    >>> max_row_norm(np.array([[3e38, 4e38]], dtype=np.float32)) > 3.4e38
+    >>> max_row_norm(np.array([[3e38, 3e38]], dtype=np.float32)) > 3.4e38  # its square overflows float32
     True
     """
     if x.shape[0] == 0 or x.shape[1] == 0:

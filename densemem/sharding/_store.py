@@ -17,9 +17,10 @@ import numpy as np
 from .._util import fsync_dir, write_atomic
 from .._validation import max_row_norm
 from ..core.table import PatternTable
-from ..errors import InputTypeError, InputValueError, StoreFormatError
+from ..errors import InputValueError, StoreFormatError
 from ..store._folder import (
     MANIFEST,
+    _as_path,
     _sha256,
     load_memory,
     manifest_text,
@@ -34,15 +35,6 @@ _SPLITS = ("round_robin", "contiguous")
 
 
 # ------------------------------------------------------------------ helpers
-def _as_path(path: Any, where: str) -> Path:
-    if not isinstance(path, (str, os.PathLike)):
-        raise InputTypeError(f"{where}: `path` must be a str or os.PathLike; got {type(path).__name__}.")
-    p = Path(os.fspath(path))
-    if p.name in ("", ".", ".."):
-        raise InputValueError(f"{where}: `path` must name a folder; got {os.fspath(path)!r}.")
-    return p.absolute()
-
-
 def _shard_name(i: int) -> str:
     return f"shard-{i:05d}"
 
