@@ -146,6 +146,21 @@ def test_fuzz_retrieve(queries, beta, steps, k, method, tol_mass) -> None:
 
 
 @FUZZ
+@given(queries=rows(5, 8), beta=st.one_of(st.none(), st.floats(1e-6, 1e4)), steps=st.integers(1, 6),
+       k=st.one_of(st.none(), st.integers(1, 40)), method=st.sampled_from(["auto", "exact", "certified", "index"]),
+       tol_mass=st.floats(1e-12, 0.5), normalize=st.booleans())
+def test_fuzz_retrieve_valid(queries, beta, steps, k, method, tol_mass, normalize) -> None:
+    # well-formed calls only: they must succeed with finite numbers (or refuse a zero row under
+    # normalize, or a beta beyond the float32 score range, with a clear error)
+    mem = DenseMemory.from_array(np.random.default_rng(0).standard_normal((40, 5)), beta=4.0, normalize=normalize)
+    if method == "index":
+        mem.build_index("hnsw", M=8)
+    outcome("retrieve", lambda: mem.retrieve(queries, beta, steps=steps, k=k, method=method, tol_mass=tol_mass))
+    outcome("energy", lambda: mem.energy(queries, beta))
+    outcome("nearest", lambda: mem.nearest(queries, k, metric="l2" if normalize else "ip", index=method == "index"))
+
+
+@FUZZ
 @given(states=valid(st.one_of(rows(5), rows(5, big=True)), matrices(4, 5)),
        beta=valid(st.one_of(st.none(), st.floats(5e-324, 1e6)), scalars))
 def test_fuzz_energy(states, beta) -> None:

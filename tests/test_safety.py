@@ -502,3 +502,13 @@ def test_save_lock_across_processes(tmp_path, rng) -> None:
         holder.communicate("\n", timeout=60)
     mem.save(path)
     assert len(DenseMemory.load(path)) == 10
+
+
+def test_spec_seeds_follow_the_seed_rule() -> None:
+    # once: run_benchmark(seed=2**31) reached faiss's C int (cp.seed) and overflowed
+    with pytest.raises(InputValueError, match=r"run_benchmark: bad option `seed`: input should be less than or equal to 2147483647"):
+        densemem.run_benchmark(seed=2**31)
+    from densemem.capacity import CapacitySpec
+
+    with pytest.raises(ValueError, match=r"less than or equal to 2147483647"):
+        CapacitySpec(models=["hebbian"], dims=[8], seed=2**31)

@@ -43,6 +43,7 @@ from ._report import (
     check_output_path,
 )
 from ._search import interval, search_capacity
+from .._validation import SEED_MAX
 from ..errors import InputTypeError, InputValueError
 
 __all__ = [
@@ -443,7 +444,7 @@ class CapacitySpec(BaseModel):
     n_trials: int = Field(default=5, ge=1)
     min_probes: int = Field(default=256, ge=1)
     max_probes: int = Field(default=256, ge=1)
-    seed: int = Field(default=0, ge=0)
+    seed: int = Field(default=0, ge=0, le=SEED_MAX)
     max_patterns: int = Field(default=4096, ge=1)
     steps: int | None = Field(default=None, ge=1)
     mode: Literal["async", "sync"] = "async"
