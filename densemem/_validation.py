@@ -466,13 +466,17 @@ def check_index_params(kind: Any, params: dict[str, Any], *, where: str) -> dict
     return out
 
 
+_SMALL_LISTS = 64  # list counts always accepted (callers clamp them to tiny data)
+
+
 def check_search_sizes(n_rows: int, *, where: str, **counts: Any) -> None:
     """Check faiss list and candidate counts (``nlist``, ``nprobe``, ``k``...) before faiss sees them.
 
     Each given count (None: the default is chosen later) must be an int in
     [1, 2**31 - 1] (faiss stores them as C ints); ``nlist`` and ``nprobe`` must also
-    be at most ``n_rows`` (no more lists than rows to put in them), so no count can
-    make faiss allocate beyond the data.
+    be at most ``max(n_rows, 64)`` (no more lists than rows to put in them; small
+    counts stay allowed for small data, which the callers clamp), so no count can
+    make faiss allocate far beyond the data.
 
     Examples
     --------
@@ -485,9 +489,10 @@ def check_search_sizes(n_rows: int, *, where: str, **counts: Any) -> None:
         v = check_positive_int(val, name=key, where=where)
         if v > _C_INT_MAX:
             raise InputValueError(f"{where}: `{key}` must be an integer in [1, {_C_INT_MAX}]; got {v}.")
-        if key in ("nlist", "nprobe") and v > n_rows:
+        if key in ("nlist", "nprobe") and v > max(n_rows, _SMALL_LISTS):
             raise InputValueError(
-                f"{where}: `{key}` must be at most the number of rows ({n_rows}); got {v}."
+                f"{where}: `{key}` must be at most the number of rows ({n_rows}, or {_SMALL_LISTS} for fewer "
+                f"rows); got {v}."
             )
 
 

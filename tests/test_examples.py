@@ -22,7 +22,8 @@ SCRIPTS = {"retrieve_and_blend.py": "faiss exact nearest", "tune_beta.py": "sepa
 def test_examples_run_at_toy_size(tmp_path):
     present = {s: m for s, m in SCRIPTS.items() if (EXAMPLES / s).is_file()}
     assert present == SCRIPTS, f"missing example scripts: {sorted(set(SCRIPTS) - set(present))}"
-    env = {**os.environ, "PYTHONWARNINGS": "ignore"}
+    # the examples import the densemem of this checkout, not whichever one is installed
+    env = {**os.environ, "PYTHONWARNINGS": "ignore", "PYTHONPATH": str(EXAMPLES.parent)}
     procs = {s: subprocess.Popen([sys.executable, str(EXAMPLES / s), "150", str(tmp_path / "plan")], cwd=tmp_path,
                                  stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
              for s in present}

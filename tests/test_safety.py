@@ -90,7 +90,8 @@ def test_find_duplicates_seed_rule(seed, exc, match, rng) -> None:
     "kw, match",
     [
         ({"nprobe": 2**40}, r"`nprobe` must be an integer in \[1, 2147483647\]; got 1099511627776"),
-        ({"nlist": 201}, r"`nlist` must be at most the number of rows \(200\); got 201"),
+        ({"nlist": 201}, r"`nlist` must be at most the number of rows \(200, or 64 for fewer rows\); got 201"),
+        ({"nprobe": 2**30}, r"`nprobe` must be at most the number of rows \(200, or 64 for fewer rows\); got 1073741824"),
         ({"k": 2**31}, r"`k` must be an integer in \[1, 2147483647\]; got 2147483648"),
     ],
 )
