@@ -10,6 +10,7 @@ rows are.
 
 from __future__ import annotations
 
+import contextlib
 from typing import Any, Literal
 
 import numpy as np
@@ -40,6 +41,10 @@ class Retriever:
 
     def _nearest_batch(self, q: np.ndarray, k: int, metric: str, index: bool, *, where: str) -> tuple[np.ndarray, np.ndarray]:
         raise NotImplementedError  # pragma: no cover - abstract
+
+    def _pinned(self) -> Any:
+        """A context in which every read of the rows sees one moment (DenseMemory: its table's snapshot)."""
+        return contextlib.nullcontext()
 
     def _candidate_recall(self, source: RowSource, q: np.ndarray, opts: RetrievalOptions) -> float:
         raise InputValueError(f"{self._name}.retrieve: candidate recall needs method='index'.")  # pragma: no cover
@@ -131,14 +136,15 @@ class Retriever:
         ([[1, 2]], [[0.0, 1.0, 0.0, 0.0]])
         """
         where = f"{self._name}.retrieve"
-        layout = self._layout()
-        q, was_1d = prepare_queries(queries, layout, where=where)
-        opts = retrieval_options(
-            layout, q, where=where, methods=self._methods, beta=beta, steps=steps, tol=tol, k=k, method=method,
-            return_energy=return_energy, tol_mass=tol_mass, k_max=k_max, n_candidates=n_candidates,
-            measure=measure, batch_size=batch_size,
-        )
-        return self._retrieve_checked(q, was_1d, opts, where=where)
+        with self._pinned():
+            layout = self._layout()
+            q, was_1d = prepare_queries(queries, layout, where=where)
+            opts = retrieval_options(
+                layout, q, where=where, methods=self._methods, beta=beta, steps=steps, tol=tol, k=k, method=method,
+                return_energy=return_energy, tol_mass=tol_mass, k_max=k_max, n_candidates=n_candidates,
+                measure=measure, batch_size=batch_size,
+            )
+            return self._retrieve_checked(q, was_1d, opts, where=where)
 
     def _retrieve_checked(self, q: np.ndarray, was_1d: bool, opts: RetrievalOptions, *, where: str) -> RetrievalResult:
         """Retrieval with options already checked (the CLI and the jobs call this)."""
@@ -182,6 +188,10 @@ class Retriever:
         True
         """
         where = f"{self._name}.energy"
+        with self._pinned():
+            return self._energy(states, beta, where=where)
+
+    def _energy(self, states: Any, beta: float | None, *, where: str) -> Any:
         layout = self._layout()
         if layout.count == 0:
             raise InputValueError(f"{where}: the memory is empty; add patterns first.")
@@ -232,6 +242,10 @@ class Retriever:
         ['b']
         """
         where = f"{self._name}.nearest"
+        with self._pinned():
+            return self._nearest(queries, k, metric, index, batch_size, where=where)
+
+    def _nearest(self, queries: Any, k: Any, metric: Any, index: Any, batch_size: Any, *, where: str) -> NearestResult:
         layout = self._layout()
         q, was_1d = prepare_queries(queries, layout, where=where)
         k = min(10, layout.count) if k is None else check_k(k, n=layout.count, where=where)

@@ -17,6 +17,8 @@ from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
+from .._validation import SEED_MAX
+
 __all__ = [
     "BINARY_MODELS",
     "DENSE_METHODS",
@@ -115,7 +117,7 @@ class BenchSpec(_Model):
     repeats: int = Field(5, ge=1)
     warmup: int = Field(1, ge=0)
     batch_size: int | None = Field(None, ge=1)
-    seed: int = Field(0, ge=0)
+    seed: int = Field(0, ge=0, le=SEED_MAX)
     sizes: list[PosInt] | None = None
     scaling: bool = False
     large: bool = False

@@ -317,10 +317,10 @@ class BinaryMemory:
         2
         """
         where = "BinaryMemory.damaged"
-        units = chk.check_fraction(units, "units", where)
-        weights = chk.check_fraction(weights, "weights", where)
+        units = chk.check_unit_interval(units, name="units", where=where)
+        weights = chk.check_unit_interval(weights, name="weights", where=where)
         unit_mode = chk.check_choice(unit_mode, "unit_mode", ("delete", "clamp"), where)
-        rng = chk.as_rng(seed, where)
+        rng = chk.as_rng(seed, where=where)
         w, th, hit = rules.damage(self._w, self._theta, unit_fraction=units,
                                   unit_mode=unit_mode, weight_fraction=weights, rng=rng)
         out = BinaryMemory.__new__(BinaryMemory)

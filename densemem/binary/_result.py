@@ -101,7 +101,7 @@ def retrieve_batch(owner: str, engine: Engine, free: np.ndarray, states: str, n_
     where = f"{owner}.retrieve"
     mode = chk.check_choice(mode, "mode", chk.MODES, where)
     steps = chk.check_int(steps, "steps", where, minimum=1)
-    rng = chk.as_rng(seed, where)
+    rng = chk.as_rng(seed, where=where)
     s0 = chk.check_width(chk.check_binary(queries, "queries", states, where), n_units, "queries",
                          where)
     out = run(engine, s0, mode=mode, steps=steps, rng=rng, free=free,

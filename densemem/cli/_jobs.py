@@ -232,7 +232,7 @@ def add_capacity(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None
                    help="pattern dimensions (units N) to measure, each >= 2 (default 25 50 100 200)")
     p.add_argument("--patterns", choices=["pm1", "unit", "gaussian"], default="pm1",
                    help="random patterns: pm1 (+-1 entries), unit (unit vectors) or gaussian (default pm1)")
-    p.add_argument("--corruption", help="query corruption, e.g. flip:0.1, mask:0.25, gauss:0.5")
+    p.add_argument("--corruption", help="query corruption, e.g. flip:0.1, mask:0.25, gaussian:0.5")
     p.add_argument("--n-trials", type=int, default=5,
                    help="independent pattern sets per count, pooled (default 5)")
     p.add_argument("--max-patterns", type=int, default=4096,

@@ -13,6 +13,8 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
 
+from .._validation import SEED_MAX
+
 __all__ = [
     "BuildSpec",
     "InfoSpec",
@@ -115,7 +117,7 @@ class DemoSpec(_Spec):
 
     out: Path = Path("densemem-demo")
     photos: int = Field(4000, ge=50, le=200_000)
-    seed: int = Field(0, ge=0)
+    seed: int = Field(0, ge=0, le=SEED_MAX)
     plots: bool = True
     overwrite: bool = False
 

@@ -25,17 +25,14 @@ Examples
 
 from __future__ import annotations
 
-import contextlib
-import os
-import secrets
 import time
-from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from .._util import replacing, write_atomic
 from .._validation import as_rng, check_positive_int
 from ..dense import DenseMemory
 from ..errors import InputTypeError, InputValueError
@@ -94,7 +91,7 @@ def make_archive(n_photos: int = 4000, *, seed: Any = 0, rescan_rate: float = 0.
     ['crop', 'original', 'rescan']
     """
     n = check_positive_int(n_photos, name="n_photos", where="make_archive", minimum=20)
-    rng = as_rng(seed)
+    rng = as_rng(seed, where="make_archive")
     centres = _unit(rng.standard_normal((len(THEMES), DIM)))
     theme = rng.integers(0, len(THEMES), n)
     own = _unit(rng.standard_normal((n, DIM)))
@@ -124,7 +121,7 @@ def faded_prints(archive: Archive, n: int = 200, *, fade: float = 0.9, seed: Any
     >>> q.shape, src.shape
     ((5, 64), (5,))
     """
-    rng = as_rng(seed)
+    rng = as_rng(seed, where="faded_prints")
     originals = np.flatnonzero(archive.kind == "original")
     src = rng.choice(originals, min(n, originals.size), replace=False)
     noise = _unit(rng.standard_normal((src.size, DIM))) * fade
@@ -232,7 +229,7 @@ def _tune(mem: DenseMemory, plan: Any, out: Path, plots: bool) -> tuple[dict[str
     _write_text(out / "tuning.txt", tuning.format_report(rep) + "\n")
     files["tuning"] = str(out / "tuning.txt")
     if plots and rep.sweep is not None and _have_matplotlib():
-        with _replacing(out / "beta-sweep.png") as tmp:
+        with replacing(out / "beta-sweep.png") as tmp:
             tuning.plot_sweep(rep.sweep, tmp, predicted_beta=rep.prediction.beta_target_separated,
                               chosen_beta=rep.choice.beta if rep.choice else None)
         files["beta_sweep_png"] = str(out / "beta-sweep.png")
@@ -241,31 +238,13 @@ def _tune(mem: DenseMemory, plan: Any, out: Path, plots: bool) -> tuple[dict[str
             "predicted_beta": float(rep.prediction.beta_target_separated)}, files
 
 
-@contextlib.contextmanager
-def _replacing(path: Path) -> Iterator[Path]:
-    """Yield a temp path beside `path` (same suffix); once written, fsync it and move it
-    into place with os.replace, so a reader sees the old file or the new one, never half."""
-    tmp = path.with_name(f".{path.stem}.tmp-{os.getpid()}-{secrets.token_hex(4)}{path.suffix}")
-    try:
-        yield tmp
-        fd = os.open(tmp, os.O_RDWR)
-        try:
-            os.fsync(fd)
-        finally:
-            os.close(fd)
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
-
-
 def _write_text(path: Path, text: str) -> None:
     """Write a report text file atomically (temp file in the same folder + os.replace)."""
-    with _replacing(path) as tmp, open(tmp, "x", encoding="utf-8") as fh:
-        fh.write(text)
+    write_atomic(path, text)
 
 
 def _save_figure(fig: Any, path: Path) -> None:
-    with _replacing(path) as tmp:
+    with replacing(path) as tmp:
         fig.savefig(tmp, format="png", dpi=110)
 
 
@@ -380,7 +359,7 @@ def run_demo(
     steps = progress(range(5), total=5, desc="demo", quiet=quiet)
     next(steps, None)
     arc = make_archive(n_photos, seed=seed)
-    q, src = faded_prints(arc, n_queries, seed=as_rng(seed).integers(1 << 31))
+    q, src = faded_prints(arc, n_queries, seed=as_rng(seed, where="run_demo").integers(1 << 31))
     sharp_beta, blended_beta = 40.0, 10.0
     mem = DenseMemory.from_array(arc.vectors, arc.ids, normalize=True, beta=sharp_beta)
     mem.save(out / "store", overwrite=overwrite)

@@ -10,12 +10,12 @@ is the same source reduced without weighted sums.
 from __future__ import annotations
 
 import dataclasses
-import math
 from typing import Any, Callable
 
 import numpy as np
 
 from .candidates import CertifiedOptions
+from .lse import lse_energy
 from .rows import AUTO_K_START, RowSource, finish
 from ..results import Deferred, RetrievalResult
 
@@ -121,16 +121,17 @@ def iterate(
 def energy(
     source: RowSource, states: np.ndarray, beta: float, *, cert: CertifiedOptions, count: int, max_norm: float
 ) -> np.ndarray:
-    """``-lse/beta + |xi|^2/2 + log(N)/beta + M^2/2`` from one pass without weighted sums.
+    """``-(lse - log N)/beta + |xi|^2/2 + M^2/2`` from one pass without weighted sums.
 
-    Certified searches of this pass start at >= 16 candidates.
+    Certified searches of this pass start at >= 16 candidates. Where ``beta``
+    times the score spread is small, :func:`densemem.core.lse.lse_energy`
+    recomputes the difference from the source's rows in float64.
     """
     sp = source.reduce(states, beta, k=0, need_acc=False, cert=dataclasses.replace(
         cert, k_start=max(cert.k_start, AUTO_K_START)))
     with np.errstate(divide="ignore"):
         lse = sp.part.m + np.log(sp.part.l)
-    sq = np.einsum("ij,ij->i", states.astype(np.float64), states.astype(np.float64))
-    return -lse / beta + 0.5 * sq + math.log(count) / beta + 0.5 * max_norm * max_norm
+    return lse_energy(lse, states, beta, n=count, max_norm=max_norm, row_blocks=source.row_blocks)
 
 
 def _store_info(acc: dict[str, Any], info: dict[str, Any], active: np.ndarray, n_q: int) -> None:

@@ -8,7 +8,6 @@ whichever source found it. The edge rule is ``cosine >= threshold - SLACK``.
 from __future__ import annotations
 
 import math
-import sys
 import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
@@ -357,10 +356,3 @@ def sample_recall(pairs: PairSet, sample: np.ndarray, exact: dict[int, set[int]]
     q = np.concatenate([lo[a], hi[b]])
     j = np.concatenate([hi[a], lo[b]])
     return _recall(_pair_dict(q, j), exact)
-
-
-def stderr_is_tty() -> bool:
-    try:
-        return sys.stderr.isatty()
-    except (AttributeError, ValueError):
-        return False

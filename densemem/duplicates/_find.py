@@ -14,7 +14,6 @@ ever removed; inputs are read only.
 from __future__ import annotations
 
 import dataclasses
-import sys
 import time
 from typing import Any, Literal
 
@@ -34,8 +33,9 @@ from ._checks import (
     normalized_copy,
 )
 from ._plan import DuplicateGroup, DuplicatePlan
-from .._validation import as_rng
-from ..errors import InputValueError, MissingExtraError
+from .._util import bar_factory
+from .._validation import as_rng, check_search_sizes
+from ..errors import InputValueError
 
 __all__ = ["DedupSpec", "DuplicateGroup", "DuplicatePlan", "plan_duplicates"]
 
@@ -199,7 +199,7 @@ def plan_duplicates(
         beta=beta, steps=steps, retrieve_method=retrieve_method, tile_mib=tile_mib, progress=progress,
     )
     bar = _progress_factory(opt.show_progress)
-    rng = as_rng(seed)
+    rng = as_rng(seed, where=WHERE)
     if stored is not None:
         from ._against import plan_against
 
@@ -212,6 +212,7 @@ def plan_duplicates(
         plan = plan_against(data, stored, ids, representative, opt, rng, bar, t0)
         return plan if return_pairs else _without_pairs(plan)
     x, all_ids = input_matrix(data, ids)
+    check_search_sizes(x.shape[0], where=WHERE, nlist=nlist, nprobe=nprobe, k=k)  # before faiss
     rule, score = check_score(representative, x.shape[0])
     chunk = C.chunk_rows_for(x.shape[1], opt.tile_mib)
     xn, valid, zero = normalized_copy(x, all_ids, chunk)
@@ -260,17 +261,7 @@ def _without_pairs(plan: DuplicatePlan) -> DuplicatePlan:
 
 def _progress_factory(show: bool | None) -> Any:
     """A ``(desc, total) -> bar`` callable for tqdm bars on stderr, or None."""
-    if show is False or (show is None and not C.stderr_is_tty()):
-        return None
-    try:
-        from tqdm import tqdm
-    except ImportError:
-        if show:
-            raise MissingExtraError(
-                f"{WHERE}: `progress=True` needs tqdm; pip install densemem[progress] (or tqdm)."
-            ) from None
-        return None
-    return lambda desc, total: tqdm(total=total, desc=desc, unit="row", file=sys.stderr, leave=False)
+    return bar_factory(show, unit="row", where=WHERE)
 
 
 class DedupSpec(BaseModel):

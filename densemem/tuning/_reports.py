@@ -8,29 +8,11 @@ from typing import Any
 
 import numpy as np
 
+from .._util import to_plain
 from ..errors import InputTypeError, InputValueError, MissingExtraError
 
 
 KINDS = ("single", "metastable", "global")  # codes 0, 1, 2 of SweepReport.kind
-
-
-def _plain(value: Any) -> Any:
-    """JSON-ready copy: arrays to lists, NaN and infinities to None."""
-    if isinstance(value, _Report):
-        return value.to_dict()
-    if isinstance(value, np.ndarray):
-        if value.dtype.kind == "f":
-            return [_plain(v) for v in value.tolist()] if value.ndim else _plain(float(value))
-        return value.tolist()
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, float):
-        return value if math.isfinite(value) else None
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    return value
 
 
 class _Report:
@@ -53,7 +35,7 @@ class _Report:
         >>> json.loads(json.dumps(t.separation(mem).to_dict()))["rival_ids"]
         [1, 0, 1]
         """
-        return {f.name: _plain(getattr(self, f.name)) for f in fields(self)}  # type: ignore[arg-type]
+        return {f.name: to_plain(getattr(self, f.name)) for f in fields(self)}  # type: ignore[arg-type]
 
 
 @dataclass(frozen=True, slots=True, repr=False)

@@ -18,11 +18,14 @@ from ..core.exact import exact_reduce
 from ..core.candidates import CertifiedOptions
 from ..core.rows import TableRows, finish
 from ..core.steps import Steps, run_steps
-from ._queries import CORRUPTIONS, corrupt
+from .._synthetic import corrupt
+
+CORRUPTIONS = ("gaussian", "mask", "mix")  # the kinds of densemem._synthetic a sweep offers
 from ._reports import BetaChoice, SweepReport
-from ._theory import _check_fraction, _check_memory
+from ._theory import _check_memory
 from .._validation import (
     as_rng,
+    check_positive_fraction,
     check_beta,
     check_k,
     check_nonneg_float,
@@ -90,11 +93,13 @@ def _make_queries(
             raise InputValueError(f"{where}: `sources` is only used with `queries`; got sources without queries.")
         level = _check_level(opts["corruption"], opts["level"], where)
         n_q = check_positive_int(opts["n_queries"], name="n_queries", where=where)
-        rng = as_rng(opts["seed"])
+        rng = as_rng(opts["seed"], where=where)
         n = len(memory)
         rows = rng.choice(n, size=n_q, replace=n_q > n)
         rivals = _rivals(memory.patterns, rows) if opts["corruption"] == "mix" else None
-        q = corrupt(memory.patterns, rows, corruption=opts["corruption"], level=level, rng=rng, rivals=rivals)
+        x = memory.patterns
+        q = corrupt(x[rows], opts["corruption"], level, rng,
+                    rivals=None if rivals is None else x[rivals]).astype(np.float32)
         src: np.ndarray | None = memory.ids[rows]
         seed = opts["seed"] if opts["seed"] is None or isinstance(opts["seed"], int) else repr(opts["seed"])
         info = {"queries": "generated", "corruption": opts["corruption"], "level": level, "seed": seed}
@@ -186,7 +191,7 @@ def _check_run(memory: DenseMemory, opts: dict[str, Any], where: str) -> dict[st
         "tol": check_nonneg_float(opts["tol"], name="tol", where=where),
         "k": min(10, n) if opts.get("k") is None else check_k(opts["k"], n=n, where=where),
         "method": opts["method"],
-        "sharp_weight": _check_fraction(opts["sharp_weight"], "sharp_weight", where),
+        "sharp_weight": check_positive_fraction(opts["sharp_weight"], name="sharp_weight", where=where),
         "single_pr": check_nonneg_float(opts.get("single_pr", 1.5), name="single_pr", where=where),
         "global_frac": check_nonneg_float(opts.get("global_frac", 0.1), name="global_frac", where=where),
     }
@@ -429,7 +434,7 @@ def choose_beta(
         raise InputValueError(f"{where}: `beta_min` must be below `beta_max`; got {lo!r} and {hi!r}.")
     rtol = check_nonneg_float(rtol, name="rtol", where=where, strict=True)
     if target == "sharp":
-        goal = _check_fraction(fraction, "fraction", where)
+        goal = check_positive_fraction(fraction, name="fraction", where=where)
     else:
         goal = check_nonneg_float(blend_size, name="blend_size", where=where)
         if not 1.0 <= goal <= len(memory):

@@ -14,7 +14,7 @@ from scipy.special import lambertw
 
 from ..core.index import make_index, train_ivf
 from ._reports import BetaPrediction, SeparationReport
-from .._validation import check_nonneg_float
+from .._validation import check_nonneg_float, check_positive_fraction
 from ..dense import DenseMemory
 from ..errors import InputTypeError, InputValueError
 
@@ -34,13 +34,6 @@ def _check_memory(memory: Any, where: str, *, minimum: int = 1) -> DenseMemory:
             f"{where}: needs at least {minimum} stored patterns; the memory holds {len(memory)}."
         )
     return memory
-
-
-def _check_fraction(x: Any, name: str, where: str) -> float:
-    v = check_nonneg_float(x, name=name, where=where)
-    if not 0 < v <= 1:
-        raise InputValueError(f"{where}: `{name}` must be a number in (0, 1]; got {x!r}.")
-    return v
 
 
 # ------------------------------------------------------------- separation
@@ -227,7 +220,7 @@ def predict_beta(
         raise InputValueError(f"{where}: every stored pattern is zero; no beta separates them.")
     error_tol = 1e-2 * big_m if error_tol is None else check_nonneg_float(
         error_tol, name="error_tol", where=where, strict=True)
-    target_fraction = _check_fraction(target_fraction, "target_fraction", where)
+    target_fraction = check_positive_fraction(target_fraction, name="target_fraction", where=where)
     sep = separation(memory, index=index, tol=tol) if separation_report is None else separation_report
     if not isinstance(sep, SeparationReport) or len(sep.delta) != n:
         raise InputValueError(

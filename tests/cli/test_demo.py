@@ -26,7 +26,7 @@ def test_report_files_go_through_os_replace(tmp_path, monkeypatch):
         moved.append((os.fspath(src), os.fspath(dst)))
         real(src, dst)
 
-    monkeypatch.setattr(demo.os, "replace", spy)
+    monkeypatch.setattr(os, "replace", spy)
     rep = demo.run_demo(tmp_path / "rep", **SMALL)
     out = tmp_path / "rep"
     for name in ("summary.md", "tuning.txt"):
@@ -64,7 +64,7 @@ def test_failed_write_keeps_the_old_file_whole(tmp_path, monkeypatch):
     def fail(fd):
         raise OSError("disk full (simulated)")
 
-    monkeypatch.setattr(demo.os, "fsync", fail)
+    monkeypatch.setattr(os, "fsync", fail)
     with pytest.raises(OSError, match="disk full"):
         demo._write_text(path, "new report that never lands\n")
     assert path.read_text(encoding="utf-8") == "old report\n"

@@ -460,12 +460,12 @@ def small_mem() -> DenseMemory:
 
 @pytest.mark.parametrize("bad", [0.0, -1e-6, float("nan"), float("inf")])
 def test_tol_mass_must_be_positive(small_mem: DenseMemory, bad: float) -> None:
-    with pytest.raises(InputValueError, match=r"DenseMemory.retrieve: `tol_mass` must be a finite number > 0; got"):
+    with pytest.raises(InputValueError, match=r"DenseMemory.retrieve: `tol_mass` must be a number in \(0, 1\); got"):
         small_mem.retrieve(np.eye(4)[:1], method="certified", tol_mass=bad)
 
 
 def test_tol_mass_type(small_mem: DenseMemory) -> None:
-    with pytest.raises(InputTypeError, match=r"DenseMemory.retrieve: `tol_mass` must be a finite number; got"):
+    with pytest.raises(InputTypeError, match=r"DenseMemory.retrieve: `tol_mass` must be a number in \(0, 1\); got str"):
         small_mem.retrieve(np.eye(4)[:1], method="certified", tol_mass="small")
 
 

@@ -224,7 +224,7 @@ def test_load_reads_next_when_crashed_between_renames(tmp_path, rng):
 def _rewrite_manifest(path: Path, **changes) -> None:
     man = json.loads((path / "manifest.json").read_text())
     man.update(changes)
-    (path / "manifest.json").write_text(json.dumps(man))
+    (path / "manifest.json").write_text(storage.manifest_text(man))  # re-sealed: only the edit is wrong
 
 
 def _replace_array(path: Path, name: str, arr: np.ndarray, *, pickle: bool = False) -> None:
@@ -232,7 +232,7 @@ def _replace_array(path: Path, name: str, arr: np.ndarray, *, pickle: bool = Fal
     np.save(path / name, arr, allow_pickle=pickle)
     man = json.loads((path / "manifest.json").read_text())
     man["files"][name] = {"sha256": storage._sha256(path / name), "bytes": (path / name).stat().st_size}
-    (path / "manifest.json").write_text(json.dumps(man))
+    (path / "manifest.json").write_text(storage.manifest_text(man))  # re-sealed: only the edit is wrong
 
 
 @pytest.fixture
@@ -260,7 +260,7 @@ def test_truncated_file(store):
 
 def test_bad_version(store):
     _rewrite_manifest(store, format_version=99)
-    with pytest.raises(StoreFormatError, match=r"manifest\.json.*format_version 99.*reads version 1"):
+    with pytest.raises(StoreFormatError, match=r"manifest\.json.*format_version 99.*reads version 2"):
         load_memory(store)
 
 
@@ -330,7 +330,7 @@ def test_manifest_entries_checked(store, changes, match):
 def test_manifest_without_checksum(store):
     man = json.loads((store / "manifest.json").read_text())
     del man["files"]["patterns.npy"]
-    (store / "manifest.json").write_text(json.dumps(man))
+    (store / "manifest.json").write_text(storage.manifest_text(man))  # re-sealed: only the edit is wrong
     with pytest.raises(StoreFormatError, match=r"no checksum for 'patterns\.npy'"):
         load_memory(store)
 
@@ -365,7 +365,7 @@ def test_not_an_npy_file(store):
 def _replace_array_checksum_only(path: Path, name: str) -> None:
     man = json.loads((path / "manifest.json").read_text())
     man["files"][name] = {"sha256": storage._sha256(path / name), "bytes": (path / name).stat().st_size}
-    (path / "manifest.json").write_text(json.dumps(man))
+    (path / "manifest.json").write_text(storage.manifest_text(man))  # re-sealed: only the edit is wrong
 
 
 def test_unreadable_index_file(store, monkeypatch):

@@ -19,7 +19,7 @@ import densemem
 import densemem.tuning as tu
 from densemem.core import partial as P
 from densemem.core.exact import exact_reduce
-from densemem.tuning._queries import corrupt
+from densemem._synthetic import corrupt
 from densemem.errors import InputTypeError, InputValueError, MissingExtraError, UnknownIdError
 
 
@@ -296,16 +296,16 @@ def test_sweep_steps_use_the_last_update_weights(rng: np.random.Generator) -> No
 
 def test_corruption_models(rng: np.random.Generator) -> None:
     # Derived: Gaussian noise norm ~ level ||x|| (chi distribution, d = 400); mask zeroes a
-    # `level` fraction; mix is the stated convex combination with the rival.
+    # `level` fraction (exactly round(0.25 * 400) = 100 per row); mix is the stated convex combination with the rival.
     x = unit_rows(rng, 30, 400) * np.float32(3.0)
     before = x.copy()
     rows = np.arange(30)
-    g = corrupt(x, rows, corruption="gaussian", level=0.2, rng=rng)
+    g = corrupt(x[rows], "gaussian", 0.2, rng)
     assert np.linalg.norm(g - x, axis=1).mean() == pytest.approx(0.6, rel=0.03)
-    mk = corrupt(x, rows, corruption="mask", level=0.25, rng=rng)
-    assert np.mean(mk == 0) == pytest.approx(0.25, abs=0.02) and ((mk == 0) | (mk == x)).all()
+    mk = corrupt(x[rows], "mask", 0.25, rng)
+    assert ((mk == 0).sum(axis=1) == 100).all() and ((mk == 0) | (mk == x)).all()
     rivals = np.roll(rows, 1)
-    mx = corrupt(x, rows, corruption="mix", level=0.3, rng=rng, rivals=rivals)
+    mx = corrupt(x[rows], "mix", 0.3, rng, rivals=x[rivals])
     np.testing.assert_allclose(mx, 0.7 * x + 0.3 * x[rivals], atol=1e-6)
     # The sweep's "mix" queries use the nearest rival found by the exact separation.
     mem = densemem.DenseMemory.from_array(x)
