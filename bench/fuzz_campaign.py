@@ -9,7 +9,7 @@ faiss, say) is counted as a crash instead of ending the campaign. Each call appe
 outcome to a report file (``target started`` before, ``target ok|clear`` after); a
 "started" without an end names the target that crashed. Targets: from_array, retrieve,
 energy, nearest, add/remove/positions, build_index, load of damaged stores, binary
-memories, find_duplicates, read_embeddings.
+memories, plan_duplicates, read_embeddings.
 
 Target (from the project's safety issue): 0 uncaught exceptions, 0 NaN results,
 0 interpreter crashes in 20,000 calls.

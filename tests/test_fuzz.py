@@ -29,7 +29,7 @@ from hypothesis import strategies as st  # noqa: E402
 from hypothesis.extra import numpy as hnp  # noqa: E402
 
 import densemem  # noqa: E402
-from densemem import BinaryMemory, DenseMemory, find_duplicates, read_embeddings  # noqa: E402
+from densemem import BinaryMemory, DenseMemory, plan_duplicates, read_embeddings  # noqa: E402
 from densemem.errors import DenseMemError, DenseMemWarning  # noqa: E402
 from densemem.results import NearestResult, RetrievalResult  # noqa: E402
 
@@ -237,8 +237,8 @@ def test_fuzz_binary(patterns, probes, seed) -> None:
 @given(data=valid(rows(4, 30), matrices(30, 4)), threshold=valid(st.floats(-0.99, 1.0), st.one_of(floats, junk)),
        candidates=valid(st.sampled_from(["auto", "exact", "ivf", "hnsw"]), st.just("nope")),
        seed=valid(st.integers(0, 2**31 - 1), st.one_of(ints, junk)), k=valid(st.integers(1, 16), ints))
-def test_fuzz_find_duplicates(data, threshold, candidates, seed, k) -> None:
-    outcome("find_duplicates", lambda: find_duplicates(data, threshold, candidates=candidates, seed=seed, k=k).n_groups)
+def test_fuzz_plan_duplicates(data, threshold, candidates, seed, k) -> None:
+    outcome("plan_duplicates", lambda: plan_duplicates(data, threshold, candidates=candidates, seed=seed, k=k).n_groups)
 
 
 def _file_bytes(kind: str) -> bytes:

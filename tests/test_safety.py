@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 
 import densemem
-from densemem import DenseMemory, InputTypeError, InputValueError, StoreFormatError, find_duplicates
+from densemem import DenseMemory, InputTypeError, InputValueError, StoreFormatError, plan_duplicates
 from densemem._validation import (
     check_finite_result,
     check_index_params,
@@ -74,16 +74,16 @@ def test_index_parameters_checked_at_the_boundary(kind, params, exc, match) -> N
 @pytest.mark.parametrize(
     "seed, exc, match",
     [
-        ("x", InputTypeError, r"find_duplicates: `seed` must be an int in \[0, 2147483647\]; got str 'x'"),
-        (1.5, InputTypeError, r"find_duplicates: `seed` must be an int in \[0, 2147483647\]; got float 1.5"),
-        (-1, InputValueError, r"find_duplicates: `seed` must be an int in \[0, 2147483647\]; got -1"),
-        (True, InputTypeError, r"find_duplicates: `seed` must be an int in \[0, 2147483647\]; got bool True"),
+        ("x", InputTypeError, r"plan_duplicates: `seed` must be an int in \[0, 2147483647\]; got str 'x'"),
+        (1.5, InputTypeError, r"plan_duplicates: `seed` must be an int in \[0, 2147483647\]; got float 1.5"),
+        (-1, InputValueError, r"plan_duplicates: `seed` must be an int in \[0, 2147483647\]; got -1"),
+        (True, InputTypeError, r"plan_duplicates: `seed` must be an int in \[0, 2147483647\]; got bool True"),
     ],
 )
-def test_find_duplicates_seed_rule(seed, exc, match, rng) -> None:
+def test_plan_duplicates_seed_rule(seed, exc, match, rng) -> None:
     x = rng.standard_normal((200, 16))
     with pytest.raises(exc, match=match):
-        find_duplicates(x, 0.9, candidates="ivf", seed=seed)
+        plan_duplicates(x, 0.9, candidates="ivf", seed=seed)
 
 
 @pytest.mark.parametrize(
@@ -95,12 +95,12 @@ def test_find_duplicates_seed_rule(seed, exc, match, rng) -> None:
         ({"k": 2**31}, r"`k` must be an integer in \[1, 2147483647\]; got 2147483648"),
     ],
 )
-def test_find_duplicates_sizes_checked_before_faiss(kw, match, rng) -> None:
+def test_plan_duplicates_sizes_checked_before_faiss(kw, match, rng) -> None:
     # nprobe = 2**40 once asked numpy for 1.17 PiB (MemoryError) instead of a clear error
-    with pytest.raises(InputValueError, match="find_duplicates: " + match):
-        find_duplicates(rng.standard_normal((200, 16)), 0.9, candidates="ivf", **kw)
+    with pytest.raises(InputValueError, match="plan_duplicates: " + match):
+        plan_duplicates(rng.standard_normal((200, 16)), 0.9, candidates="ivf", **kw)
     with pytest.raises(InputValueError, match=match):
-        check_search_sizes(200, where="find_duplicates", **kw)
+        check_search_sizes(200, where="plan_duplicates", **kw)
 
 
 def test_one_seed_rule() -> None:

@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import dataclasses
 from dataclasses import dataclass
-from typing import Any, Callable, Protocol, Sequence
+from typing import Any, Callable, Iterator, Protocol, Sequence
 
 import faiss
 import numpy as np
@@ -35,6 +35,7 @@ __all__ = ["IdPartial", "RowSource", "TableRows", "merge", "tree_merge", "finish
 AUTO_K_START = 16  # auto: first candidate count
 AUTO_SMALL_N = 2048  # auto: below this many rows, exact is cheaper than any search
 AUTO_GIVE_UP = 1e4  # auto: a first bound above tol_mass * this goes exact without growing
+ROW_BLOCK = 8192  # rows per block when a caller streams the rows themselves
 
 
 @dataclass(slots=True)
@@ -59,6 +60,10 @@ class RowSource(Protocol):
 
     def reduce(self, states: np.ndarray, beta: float, *, k: int, need_acc: bool, cert: CertifiedOptions) -> IdPartial:
         """The id partial of ``states`` over every row of the source."""
+        ...
+
+    def row_blocks(self) -> Iterator[np.ndarray]:
+        """The source's rows in blocks (read only where the energy needs them at tiny beta)."""
         ...
 
 
@@ -145,6 +150,10 @@ class TableRows:
 
     def __len__(self) -> int:
         return int(self.x.shape[0])
+
+    def row_blocks(self) -> Iterator[np.ndarray]:
+        """This table's rows in blocks of 8192, in file order."""
+        return (self.x[a:a + ROW_BLOCK] for a in range(0, self.x.shape[0], ROW_BLOCK))
 
     def candidate_recall(self, q: np.ndarray, k: int, n_sample: int) -> float:
         """Mean fraction of faiss exact top-kc found by the index, on a query sample."""

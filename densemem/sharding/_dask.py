@@ -272,6 +272,14 @@ class _DaskShards:
                  n_candidates: int = 32) -> None:
         self.session, self.shards, self.method, self.n_candidates = session, shards, method, n_candidates
 
+    def row_blocks(self) -> Any:
+        """The shards' rows, read here from the shared folders (only the tiny-beta energy needs them)."""
+        from ._store import load_shard
+
+        for folder, checksum, number, verify, where in self.shards:
+            yield from S.shard_rows(load_shard(folder, checksum, verify=verify, where=where, number=number),
+                                    "exact").row_blocks()
+
     def reduce(self, states: np.ndarray, beta: float, *, k: int, need_acc: bool, cert: CertifiedOptions) -> IdPartial:
         return self.session.run(_partial_task, self.shards, states,
                                 (beta, k, self.method, need_acc, cert, self.n_candidates), merge_partials)

@@ -62,7 +62,6 @@ from ._store import (
     SHARDS_FORMAT_NAME,
     SHARDS_FORMAT_VERSION,
     TOP_MANIFEST,
-    _as_path,
     _check_target,
     _fill,
     _is_sharded,
@@ -82,7 +81,7 @@ from ..core.tiles import DEFAULT_TILE_MIB
 from ..options import Layout, RetrievalOptions
 from .._validation import check_ids, check_patterns, check_positive_int, unknown_id_error
 from ..errors import InputTypeError, InputValueError, StoreFormatError
-from ..store._folder import MANIFEST, _sha256
+from ..store._folder import MANIFEST, _as_path, _sha256
 
 __all__ = [
     "SHARDS_FORMAT_NAME",

@@ -41,7 +41,7 @@ mean ``t``, both of norm <= M, so it is within ``O / (L + O) * 2M <= 2M eps``.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Iterator
 
 import faiss
 import numpy as np
@@ -74,6 +74,11 @@ class LocalShards:
         parts = [shard_rows(m, self.method, self.n_candidates).reduce(states, beta, k=k, need_acc=need_acc, cert=cert)
                  for m in self.memories]
         return tree_merge(parts, merge_partials)
+
+    def row_blocks(self) -> Iterator[np.ndarray]:
+        """Every shard's rows in blocks, shard after shard."""
+        for m in self.memories:
+            yield from shard_rows(m, "exact").row_blocks()
 
 
 def shard_candidates(mem: Any, q: np.ndarray, kc: int) -> np.ndarray:

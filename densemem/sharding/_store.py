@@ -22,7 +22,6 @@ from ..errors import InputValueError, StoreFormatError
 from ..store._folder import (
     MANIFEST,
     StoreContent,
-    _as_path,
     _sha256,
     manifest_text,
     read_json_manifest,
