@@ -18,7 +18,7 @@ import numpy as np
 from .core import steps as S
 from .core.rows import RowSource
 from .options import METHODS, Layout, Method, RetrievalOptions, prepare_queries, retrieval_options
-from ._validation import check_k, check_positive_int, check_queries
+from ._validation import check_k, check_nearest_range, check_positive_int, check_queries, max_row_norm
 from .errors import InputValueError
 from .results import Deferred, NearestResult, RetrievalResult, resolve
 
@@ -85,9 +85,12 @@ class Retriever:
             number of stored patterns is an error.
         method : {"auto", "exact", "certified", "index"}, default "auto"
             - "exact": every stored row, in tiles (two matrix products).
-            - "certified": softmax over faiss's exact top-kc rows with a bound
-              on the omitted mass; kc doubles (up to ``k_max``) until the bound
-              is at most ``tol_mass``, then the query falls back to "exact".
+            - "certified": softmax over the exact top-kc rows with a bound on
+              the omitted mass. kc grows along the doubling ladder (up to
+              ``k_max``) only to a count the first scores predict will meet
+              ``tol_mass`` and whose search costs less than the exact pass;
+              otherwise the query goes "exact" at once (with 128 or more
+              queries a sample prices the path first).
             - "index": softmax over the candidates of the index made by
               ``build_index`` (approximate, no bound; one memory only).
             - "auto": "exact" below 2048 stored rows; otherwise "certified"
@@ -253,6 +256,7 @@ class Retriever:
             raise InputValueError(f"{where}: `metric` must be 'ip' or 'l2'; got {metric!r}.")
         if index and metric != "ip":
             raise InputValueError(f"{where}: the candidate index ranks by inner product; use metric='ip'.")
+        check_nearest_range(max_row_norm(q), layout.max_norm, metric, where=where)
         size = max(1, q.shape[0]) if batch_size is None else check_positive_int(batch_size, name="batch_size", where=where)
         parts = [self._nearest_batch(q[i:i + size], k, metric, bool(index), where=where)
                  for i in range(0, q.shape[0], size)]

@@ -354,9 +354,6 @@ def check_positive_fraction(x: Any, *, name: str, where: str) -> float:
     return _check_interval(x, name=name, where=where, low_open=True, high_open=False)
 
 
-check_fraction = check_open_fraction  # old name of the (0, 1) rule, kept until its last callers move
-
-
 _NORM_CHUNK = 1 << 16  # rows per float64 block: bounded extra memory for large tables
 
 

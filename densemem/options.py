@@ -18,7 +18,7 @@ import numpy as np
 from .core.candidates import CertifiedOptions
 from ._validation import (
     check_beta,
-    check_fraction,
+    check_open_fraction,
     check_k,
     check_nonneg_float,
     check_positive_int,
@@ -145,7 +145,7 @@ def retrieval_options(
         k=kk,
         method=method,
         certified=CertifiedOptions(
-            tol_mass=check_fraction(tol_mass, name="tol_mass", where=where),
+            tol_mass=check_open_fraction(tol_mass, name="tol_mass", where=where),
             k_max=check_positive_int(k_max, name="k_max", where=where),
             tile_mib=layout.tile_mib,
         ),

@@ -470,13 +470,13 @@ def test_two_saves_one_wins_whole_the_other_gets_a_clear_error(tmp_path, rng, mo
     assert inside.wait(30)
     monkeypatch.setattr(storage, "_fill_folder", real_fill)
     with pytest.raises(StoreBusyError, match=r"DenseMemory\.save: another save to '.*store' is running .* nothing was written"):
-        second.save(path)
+        second.save(path, overwrite=True)
     release.set()
     t.join()
     got = DenseMemory.load(path)
     assert got.beta == 2.0 and np.array_equal(got.patterns, first.patterns)
     assert sorted(os.listdir(tmp_path)) == ["store"]  # no lock or temp file left beside it
-    second.save(path)  # the lock is free again
+    second.save(path, overwrite=True)  # the lock is free again
     assert DenseMemory.load(path).beta == 3.0
 
 

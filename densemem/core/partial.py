@@ -178,33 +178,33 @@ def block(
         top_z = np.empty((z.shape[0], 0), np.float32)
         top_i = np.empty((z.shape[0], 0), np.int64)
         m = z.max(axis=1).astype(np.float64)
+    s = q = l64 = None
+    if moments:  # entropy and participation ratio in float64 from the float32 scores (tuning only)
+        l64, s, q = _moment_sums(z, m)
     z -= m[:, None].astype(np.float32)
-    zs = z.copy() if moments else None
     if need_acc:
         np.exp(z, out=z)
         l = z.sum(axis=1).astype(np.float64)  # float32 pairwise sum: ~1e-7 relative
         acc = z @ rows
-        e = z
     else:
         l = _energy_sum(z)
         acc = None
-        e = np.exp(zs) if zs is not None else None
-    s = q = None
-    if zs is not None and e is not None:
-        s, q = _moment_sums(zs, e)
+    if l64 is not None:
+        l = l64  # the normaliser the moments were summed with, so H = ln l - s / l is float64-exact
     return Partial(m=m, l=l, acc=acc, top_z=top_z, top_i=top_i, s=s, q=q)
 
 
-def _moment_sums(zs: np.ndarray, e: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """sum e (z - m) and sum e^2 per row, from the shifted tile ``zs`` (overwritten) and e = exp(zs).
+def _moment_sums(z: np.ndarray, m: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """sum e, sum e (z - m) and sum e^2 per row in float64, with e = exp(z - m) from the float32 scores ``z``.
 
-    The weights are the float32 ``exp`` the retrieval itself uses; products
-    are float32 (6e-8 relative each) and the sums run pairwise in float64.
+    Everything after the float32 product is float64, so the entropy ``ln l - s / l``
+    keeps float64 accuracy (its difference of near-equal terms at small beta
+    would lose the float32 digits otherwise).
     """
-    zs *= e
-    s = zs.sum(axis=1, dtype=np.float64)
-    np.multiply(e, e, out=zs)
-    return s, zs.sum(axis=1, dtype=np.float64)
+    zs = z.astype(np.float64)
+    zs -= m[:, None]
+    e = np.exp(zs)
+    return e.sum(axis=1), np.einsum("ij,ij->i", e, zs), np.einsum("ij,ij->i", e, e)
 
 
 def gathered(

@@ -15,6 +15,7 @@ from typing import Any, Callable
 import numpy as np
 
 from .candidates import CertifiedOptions
+from .._validation import check_finite_result
 from .lse import lse_energy
 from .rows import AUTO_K_START, RowSource, finish
 from ..results import Deferred, RetrievalResult
@@ -37,7 +38,9 @@ class Steps:
 OnePass = Callable[[np.ndarray], tuple[np.ndarray, np.ndarray, np.ndarray, dict[str, Any]]]
 
 
-def run_steps(one_pass: OnePass, q: np.ndarray, *, steps: int, tol: float, max_norm: float, k: int) -> Steps:
+def run_steps(
+    one_pass: OnePass, q: np.ndarray, *, steps: int, tol: float, max_norm: float, k: int, where: str = "retrieve"
+) -> Steps:
     """Repeat ``one_pass`` on the queries still moving, at most ``steps`` times.
 
     ``one_pass(states)`` returns (new states, top ids, top weights, per-query
@@ -54,6 +57,7 @@ def run_steps(one_pass: OnePass, q: np.ndarray, *, steps: int, tol: float, max_n
     done = 0
     for _ in range(steps):
         new, ids, weights, info = one_pass(state[active])
+        check_finite_result(new, what="states", where=where)
         if ids_out is None or (ids.dtype.kind == "U" and ids.dtype.itemsize > ids_out.dtype.itemsize):
             grown = np.full((n_q, k), "" if ids.dtype.kind == "U" else -1, dtype=ids.dtype)
             if ids_out is not None:
