@@ -28,19 +28,13 @@ import faiss
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _common import RESULTS, machine_facts, noisy_queries, unit_rows
+from _common import RESULTS, machine_facts, median_time, noisy_queries, unit_rows
 
 import densemem
 
 
 def _median(fn, repeats: int) -> float:
-    fn()
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return float(np.median(times))
+    return median_time(fn, repeats=repeats, warmup=1)
 
 
 def _rss_anon_mib() -> float:
@@ -78,28 +72,33 @@ def half_vs_full(n: int, d: int, nq: int, repeats: int, rng: np.random.Generator
 
 
 def out_of_core(n: int, d: int, nq: int, folder: Path, rng: np.random.Generator) -> dict:
+    """A float16 patterns file written block by block, mapped read-only, one exact pass over it."""
+    from densemem.core.table import PatternTable
+
     block = 250_000
-    mem = densemem.DenseMemory(d, beta=8.0, dtype="float16")
+    path = folder / "patterns.npy"
     t0 = time.perf_counter()
-    for a in range(0, n, block):  # written in blocks: the whole table never sits in float32 in RAM
+    out = np.lib.format.open_memmap(path, mode="w+", dtype=np.float16, shape=(n, d))
+    for a in range(0, n, block):  # written in blocks: the table is never whole in RAM
         b = min(block, n - a)
-        mem.add(rng.standard_normal((b, d)).astype(np.float32) / np.float32(np.sqrt(d)))
-    mem.save(folder / "store")
+        out[a : a + b] = rng.standard_normal((b, d), dtype=np.float32) / np.float32(np.sqrt(d))
+    out.flush()
+    del out
     t_write = time.perf_counter() - t0
-    del mem
-    path = folder / "store" / "patterns.npy"
     size = path.stat().st_size
-    mapped = densemem.DenseMemory.load(folder / "store", mmap=True, verify=False)
-    q = (np.asarray(mapped.patterns[:nq], dtype=np.float32) + 0.05).astype(np.float32)
+    x = np.load(path, mmap_mode="r")
+    mapped = densemem.DenseMemory._from_table(
+        PatternTable.trusted(x, np.arange(n, dtype=np.int64), normalize=False), beta=8.0)
+    q = (np.asarray(x[:nq], dtype=np.float32) + 0.05).astype(np.float32)
+    buf = bytearray(64 << 20)
 
     def read() -> None:
         with open(path, "rb", buffering=0) as fh:
             while fh.readinto(buf):
                 pass
 
-    buf = bytearray(64 << 20)
     t_read = _median(read, 1)
-    tile = np.asarray(mapped.patterns[: min(n, 65536)], dtype=np.float32)
+    tile = np.asarray(x[: min(n, 65536)], dtype=np.float32)
     w = np.empty((nq, tile.shape[0]), np.float32)
     reps = n / tile.shape[0]
 
@@ -132,7 +131,9 @@ def main(argv: list[str] | None = None) -> dict:
     args = ap.parse_args(argv)
     rng = np.random.default_rng(args.seed)
     wide = in_ram(args.n, 384, args.queries, args.repeats, rng)
+    print("in RAM d=384:", json.dumps(wide, default=float), flush=True)
     half = half_vs_full(200_000, 128, args.queries, args.repeats, rng)
+    print("float16 vs float32:", json.dumps(half, default=float), flush=True)
     with tempfile.TemporaryDirectory(dir=args.dir, prefix="densemem-ooc-") as tmp:
         ooc = out_of_core(args.ooc_n, 768, args.ooc_queries, Path(tmp), rng)
     payload = {"bench": "wide_and_half", "in_ram_384": wide, "half_vs_full": half, "out_of_core_768": ooc,
