@@ -372,7 +372,7 @@ def test_tol_mass_must_be_a_fraction() -> None:
 
 
 def test_from_array_unknown_option() -> None:
-    with pytest.raises(InputTypeError, match=lit("DenseMemory.from_array: unknown option(s) ['foo']; use normalize, beta, tile_mib or n_threads.")):
+    with pytest.raises(InputTypeError, match=lit("DenseMemory.from_array: unknown option(s) ['foo']; use normalize, beta, tile_mib, n_threads or dtype.")):
         DenseMemory.from_array(np.eye(2), foo=1)
 
 

@@ -218,6 +218,12 @@ class _Session:
 
     def placement(self, n_shards: int) -> list[str | None]:
         workers = sorted(self.client.scheduler_info().get("workers", {}))
+        if not workers:  # a worker may be (re)starting: wait a little before calling the cluster empty
+            try:
+                self.client.wait_for_workers(1, timeout=min(10.0, self._left() or 10.0))
+            except Exception:  # noqa: BLE001 - dask raises its own TimeoutError types
+                pass
+            workers = sorted(self.client.scheduler_info().get("workers", {}))
         if not workers:
             raise InputValueError(f"{self.where}: the Dask cluster has no workers; start `dask worker` processes first.")
         return [workers[i % len(workers)] for i in range(n_shards)]
