@@ -27,6 +27,7 @@ import faiss
 import numpy as np
 
 from . import partial as P
+from . import sparse as SP
 from .candidates import CertifiedOptions, _put, bound_can_hold, certified_reduce, index_reduce
 from .exact import exact_reduce
 
@@ -129,6 +130,20 @@ class TableRows:
                 return self._labelled(part, info)
         part, info = certified_reduce(self.x, states, beta, k=k, need_acc=need_acc, opts=cert, exact=exact)
         return self._labelled(part, info)
+
+    # ------------------------------------------------- sparse maps (core/sparse.py)
+    def sparse_support(self, states: np.ndarray, beta: float, smap: SP.SparseMap, *, k_start: int, cap: int,
+                       need_rows: bool) -> SP.Support:
+        """The certified support of ``states`` over this table (faiss candidates, grown)."""
+        return SP.table_support(self.x, self.ids, states, beta, smap, k_start=k_start, cap=cap, need_rows=need_rows)
+
+    def sparse_sums(self, states: np.ndarray, beta: float, alpha: float, tau: np.ndarray, *, k: int, final: bool,
+                    need_acc: bool) -> SP.Sums:
+        """One tiled pass over this table at the given tau (the sparse maps' exact fallback)."""
+        if self.x.shape[0] == 0:
+            return SP.empty_sums(states.shape[0], self.x.shape[1], k, self.ids.dtype, final=final, need_acc=need_acc)
+        return SP.table_sums(self.x, self.ids, states, beta, alpha, tau, k=k, final=final, need_acc=need_acc,
+                             tile_mib=self.tile_mib, n_threads=self.n_threads)
 
     def _labelled(self, part: P.Partial, info: dict[str, Any] | None) -> IdPartial:
         ids = ids_of(self.ids, part.top_i)
