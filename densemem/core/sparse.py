@@ -210,7 +210,8 @@ def _pack(z: np.ndarray, cols: np.ndarray, alpha: float, tau: np.ndarray) -> tup
     order = np.argsort(-zz, axis=1, kind="stable")
     width = int(keep.sum(axis=1).max()) if z.shape[0] and z.shape[1] else 0
     order = order[:, :width]
-    return np.take_along_axis(zz, order, 1), np.take_along_axis(cols, order, 1)
+    zs = np.take_along_axis(zz, order, 1)
+    return zs, np.where(np.isfinite(zs), np.take_along_axis(cols, order, 1), -1)
 
 
 def table_support(
@@ -265,11 +266,16 @@ def merge_support(a: Support, b: Support, alpha: float) -> Support:
     cols = np.broadcast_to(np.arange(z.shape[1], dtype=np.int64), z.shape)
     tau = solve_tau(z, alpha)
     zs, cs = _pack(z, cols, alpha, tau)
-    ids = np.take_along_axis(np.concatenate([ia, ib], axis=1), cs, 1) if cs.shape[1] else np.empty(zs.shape, ia.dtype)
+    safe = np.maximum(cs, 0)
+    if cs.shape[1]:
+        ids = np.take_along_axis(np.concatenate([ia, ib], axis=1), safe, 1)
+        ids = np.where(cs >= 0, ids, np.asarray(_id_fill(ids.dtype), dtype=ids.dtype))
+    else:
+        ids = np.empty(zs.shape, ia.dtype)
     rows = None
     if a.rows is not None and b.rows is not None:
         both = np.concatenate([a.rows, b.rows], axis=1)
-        rows = np.take_along_axis(both, cs[:, :, None], 1) if cs.shape[1] else both[:, :0]
+        rows = np.take_along_axis(both, safe[:, :, None], 1) if cs.shape[1] else both[:, :0]
     return Support(zs, ids, rows, tau, a.certified & b.certified, a.k_used + b.k_used, a.n_rows + b.n_rows)
 
 
