@@ -34,22 +34,17 @@ TARGET = 1.15
 
 def main(argv: list[str] | None = None) -> dict:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    ap.add_argument("--n", type=int, default=200_000)
-    ap.add_argument("--dim", type=int, default=128)
-    ap.add_argument("--queries", type=int, default=1000)
-    ap.add_argument("--beta", type=float, default=8.0)
-    ap.add_argument("--repeats", type=int, default=5)
-    ap.add_argument("--seed", type=int, default=0)
+    for flag, kind, default in (("--n", int, 200_000), ("--dim", int, 128), ("--queries", int, 1000),
+                                ("--beta", float, 8.0), ("--repeats", int, 5), ("--seed", int, 0)):
+        ap.add_argument(flag, type=kind, default=default)
     args = ap.parse_args(argv)
 
     rng = np.random.default_rng(args.seed)
     x = C.unit_rows(rng, args.n, args.dim)
-    q = C.noisy_queries(rng, x, args.queries, noise=0.5)
-    k = 10
-    mem = densemem.DenseMemory.from_array(x, normalize=False)
-    flat = faiss.IndexFlatIP(args.dim)
+    q, k = C.noisy_queries(rng, x, args.queries, noise=0.5), 10
+    mem, flat = densemem.DenseMemory.from_array(x, normalize=False), faiss.IndexFlatIP(args.dim)
     flat.add(x)
-    _, truth = flat.search(q, 1)
+    truth = flat.search(q, 1)[1]
     base_fn = lambda: flat.search(q, k)  # noqa: E731
 
     rows = []

@@ -48,6 +48,9 @@ from typing import Any, Protocol
 import faiss
 import numpy as np
 
+from .rows import _common_ids as _common
+from .rows import id_fill as _id_fill
+from .rows import ids_of as _ids_of
 from .tiles import map_query_chunks, tile_rows_for
 
 __all__ = [
@@ -150,27 +153,6 @@ def max_entropy(n: int, alpha: float) -> float:
 def _omega_star(pz: np.ndarray, palpha: np.ndarray, alpha: float) -> np.ndarray:
     """Omega*(z) = p.z - (sum p^alpha - 1)/(alpha (alpha - 1)) for a normalised p."""
     return pz - (palpha - 1.0) / (alpha * (alpha - 1.0))
-
-
-def _id_fill(dtype: np.dtype) -> Any:
-    return -1 if dtype.kind in "iu" else ""
-
-
-def _ids_of(table_ids: np.ndarray, pos: np.ndarray) -> np.ndarray:
-    if table_ids.size == 0:
-        return np.full(pos.shape, _id_fill(table_ids.dtype), dtype=table_ids.dtype)
-    out = table_ids[np.maximum(pos, 0)]
-    return np.where(pos >= 0, out, np.asarray(_id_fill(table_ids.dtype), dtype=table_ids.dtype))
-
-
-def _common(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    if a.dtype == b.dtype:
-        return a, b
-    if a.dtype.kind == "U" and b.dtype.kind == "U":
-        width = max(a.dtype.itemsize, b.dtype.itemsize) // 4
-        return a.astype(f"<U{width}"), b.astype(f"<U{width}")
-    dt = np.result_type(a.dtype, b.dtype)
-    return a.astype(dt), b.astype(dt)
 
 
 # ------------------------------------------------------- the sparse partial

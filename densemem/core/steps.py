@@ -132,22 +132,9 @@ def _sparse_args(method: str, k: int, cert: CertifiedOptions, count: int) -> dic
     return dict(exact=method == "exact", k_start=min(count, max(k, SP.K_START)), cap=max(cert.k_max, k))
 
 
-def sparse_iterate(
-    source: Any,
-    q: np.ndarray,
-    *,
-    beta: float,
-    steps: int,
-    tol: float,
-    k: int,
-    method: str,
-    cert: CertifiedOptions,
-    return_energy: bool,
-    count: int,
-    max_norm: float,
-    lazy_energy: bool,
-    smap: SP.SparseMap,
-) -> dict[str, Any]:
+def sparse_iterate(source: Any, q: np.ndarray, *, beta: float, steps: int, tol: float, k: int, method: str,
+                   cert: CertifiedOptions, return_energy: bool, count: int, max_norm: float, lazy_energy: bool,
+                   smap: SP.SparseMap) -> dict[str, Any]:
     """The step loop with a sparse map: every pass exact (certified supports, tiled where they exceed the cap)."""
     args = _sparse_args(method, k, cert, count)
     answered_by_candidates = False
