@@ -89,7 +89,8 @@ class RetrievalResult(_ResultMixin):
         The retrieval path used: "exact", "certified" or "index".
     mass_bound : ndarray of shape (n_queries,) or None
         Certified path: upper bound on the softmax mass outside the candidates
-        in the last update (0 where the query fell back to exact).
+        in the last update (0 where the query fell back to exact). Sparse
+        maps: 0 everywhere (the candidates provably hold the whole support).
     state_bound : ndarray of shape (n_queries,) or None
         Certified path: upper bound on the distance to the exact state,
         ``2 * M * mass_bound``.
