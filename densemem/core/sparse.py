@@ -60,7 +60,7 @@ __all__ = [
 
 WEIGHTINGS: tuple[str, ...] = ("softmax", "sparsemax", "entmax15", "entmax")
 NAMED_ALPHA = {"sparsemax": 2.0, "entmax15": 1.5}
-K_START = 16  # first candidate count of the faiss search
+K_START = 8  # first candidate count of the faiss search (at least k)
 NEWTON_ITERS = 200
 _TOL = 1e-13
 
