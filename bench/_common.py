@@ -81,7 +81,7 @@ def unit_rows(rng: np.random.Generator, n: int, d: int) -> np.ndarray:
 
 
 def noisy_queries(rng: np.random.Generator, x: np.ndarray, n: int, noise: float) -> np.ndarray:
-    """Stored rows plus Gaussian noise of relative size ``noise``, normalised."""
+    """Stored rows plus Gaussian noise of relative size ``noise``, normalized."""
     src = rng.choice(x.shape[0], n, replace=False)
     q = x[src] + np.float32(noise / np.sqrt(x.shape[1])) * rng.standard_normal((n, x.shape[1]), dtype=np.float32)
     q /= np.linalg.norm(q, axis=1, keepdims=True)

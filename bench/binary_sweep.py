@@ -10,7 +10,7 @@ same machine load (the ratio of medians and the median of per-pair ratios are bo
   sweep     one sweep of the update kernel given the current fields (what a sweep costs
             inside a longer retrieval: sync = decide + one GEMM for the new fields; async =
             the blocked sequential sweep), plus the energy bookkeeping of both.
-  retrieve  BinaryMemory.retrieve(..., max_sweeps=1) end to end (validation, first fields,
+  retrieve  BinaryMemory.retrieve(..., steps=1) end to end (validation, first fields,
             one sweep, energies).
 Quality beside time: fraction of probe bits equal to the nearest stored pattern after the
 sweep. The target (issue 4) is async/sync <= 2.0 for the realistic (noisy) sweep; that ratio
@@ -91,9 +91,9 @@ def _case(mem: BinaryMemory, patterns, kind: str, n_probes: int, repeats: int, s
     }
     sweep_sync, sweep_async, sweep_ratio = _paired_times(sync_sweep, async_sweep, repeats)
     retr_sync, retr_async, retr_ratio = _paired_times(
-        lambda: mem.retrieve(probes, mode="sync", max_sweeps=1),
-        lambda: mem.retrieve(probes, mode="async", max_sweeps=1, seed=seed), repeats)
-    # to convergence (max_sweeps=100) only near stored patterns: from random probes the
+        lambda: mem.retrieve(probes, mode="sync", steps=1),
+        lambda: mem.retrieve(probes, mode="async", steps=1, seed=seed), repeats)
+    # to convergence (steps=100) only near stored patterns: from random probes the
     # dynamics wander through spurious states for tens of sweeps (real, but slow to time)
     full_sync = full_async = None
     conv = {m: None for m in ("sync", "async")}
@@ -101,7 +101,7 @@ def _case(mem: BinaryMemory, patterns, kind: str, n_probes: int, repeats: int, s
         full_sync, full_async, _ = _paired_times(
             lambda: mem.retrieve(probes, mode="sync"),
             lambda: mem.retrieve(probes, mode="async", seed=seed), max(1, repeats // 2))
-        conv = {m: mem.retrieve(probes, mode=m, seed=seed).sweeps for m in ("sync", "async")}
+        conv = {m: mem.retrieve(probes, mode=m, seed=seed).steps for m in ("sync", "async")}
     row = {
         "case": kind,
         "sweep_sync_s": sweep_sync,
@@ -122,9 +122,9 @@ def _case(mem: BinaryMemory, patterns, kind: str, n_probes: int, repeats: int, s
         "fraction_units_flipped_async": n_changed["async"],
         "bits_matching_nearest_before": _quality(probes, patterns),
         "bits_matching_nearest_after_sync": _quality(
-            mem.retrieve(probes, mode="sync", max_sweeps=1).states, patterns),
+            mem.retrieve(probes, mode="sync", steps=1).states, patterns),
         "bits_matching_nearest_after_async": _quality(
-            mem.retrieve(probes, mode="async", max_sweeps=1, seed=seed).states, patterns),
+            mem.retrieve(probes, mode="async", steps=1, seed=seed).states, patterns),
     }
     return row
 

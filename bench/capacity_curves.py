@@ -84,7 +84,7 @@ def main(argv=None):
         capacity_curve(["pseudo_inverse"], [n], mode="sync", steps=1, max_patterns=n, **common)
         for n in big]), a.repeats)
     expo, timings["exp"] = _timed(lambda: capacity_curve(
-        ["exp"], small, corruption=("gauss", 0.5), mode="sync", steps=1, **common), a.repeats)
+        ["exp"], small, corruption=("gaussian", 0.5), mode="sync", steps=1, **common), a.repeats)
     soft, timings["softmax"] = _timed(lambda: capacity_curve(
         [("softmax", 50.0)], small, corruption=("mask", 0.25), success="top1",
         max_patterns=65536, **common), a.repeats)

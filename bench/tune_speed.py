@@ -5,8 +5,8 @@
 
 Rows (median of --repeats after one warm-up, both cores):
   separation   tuning.separation (faiss top-2 + float64 Delta)  vs  faiss.knn(X, X, 2)
-  weights      exact tiled entropy / participation ratio, one beta  vs  IndexFlatIP.search(k=10)
-  sweep/beta   tuning.sweep_beta per beta (retrieve + weights + nearest)  vs  IndexFlatIP.search(k=10)
+  weights      entropy / participation ratio from the partial's moments, one beta  vs  IndexFlatIP.search(k=10)
+  sweep/beta   tuning.sweep_beta per beta (one pass with moments + energy + nearest)  vs  IndexFlatIP.search(k=10)
 Quality beside each time: the entropy's largest error against float64 numpy on 64
 queries (scipy-grade reference), and the separation's agreement with faiss.
 Peak extra memory is the tracemalloc peak during the call. Ratios are printed last.
@@ -29,7 +29,8 @@ import _common as C  # noqa: E402
 
 import densemem  # noqa: E402
 import densemem.tuning as tu  # noqa: E402
-from densemem.core.weight_stats import weight_stats  # noqa: E402
+from densemem.core import partial as P  # noqa: E402
+from densemem.core.exact import exact_reduce  # noqa: E402
 
 
 def main(argv: list[str] | None = None) -> dict:
@@ -62,7 +63,9 @@ def main(argv: list[str] | None = None) -> dict:
                  "peak_mib": C.peak_python_mib(lambda: tu.separation(mem))})
 
     def weights() -> object:
-        return weight_stats(q, mem.patterns, beta, tile_mib=mem.tile_mib, n_threads=mem.n_threads)
+        part = exact_reduce(q, mem.patterns, beta, k=0, tile_mib=mem.tile_mib, n_threads=mem.n_threads,
+                            need_acc=False, moments=True)
+        return P.finish(part)
 
     t_w = C.median_time(weights, args.repeats)
     t_f = C.median_time(lambda: flat.search(q, 10), args.repeats)

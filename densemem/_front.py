@@ -10,6 +10,7 @@ rows are.
 
 from __future__ import annotations
 
+import contextlib
 from typing import Any, Literal
 
 import numpy as np
@@ -18,7 +19,7 @@ from .core import steps as S
 from .core.sparse import sparse_map
 from .core.rows import RowSource
 from .options import METHODS, Layout, Method, Weighting, RetrievalOptions, prepare_queries, retrieval_options
-from ._validation import check_k, check_positive_int, check_queries
+from ._validation import check_k, check_nearest_range, check_positive_int, check_queries, max_row_norm
 from .errors import InputValueError
 from .results import Deferred, NearestResult, RetrievalResult, resolve
 
@@ -41,6 +42,10 @@ class Retriever:
 
     def _nearest_batch(self, q: np.ndarray, k: int, metric: str, index: bool, *, where: str) -> tuple[np.ndarray, np.ndarray]:
         raise NotImplementedError  # pragma: no cover - abstract
+
+    def _pinned(self) -> Any:
+        """A context in which every read of the rows sees one moment (DenseMemory: its table's snapshot)."""
+        return contextlib.nullcontext()
 
     def _candidate_recall(self, source: RowSource, q: np.ndarray, opts: RetrievalOptions) -> float:
         raise InputValueError(f"{self._name}.retrieve: candidate recall needs method='index'.")  # pragma: no cover
@@ -83,9 +88,12 @@ class Retriever:
             number of stored patterns is an error.
         method : {"auto", "exact", "certified", "index"}, default "auto"
             - "exact": every stored row, in tiles (two matrix products).
-            - "certified": softmax over faiss's exact top-kc rows with a bound
-              on the omitted mass; kc doubles (up to ``k_max``) until the bound
-              is at most ``tol_mass``, then the query falls back to "exact".
+            - "certified": softmax over the exact top-kc rows with a bound on
+              the omitted mass. kc grows along the doubling ladder (up to
+              ``k_max``) only to a count the first scores predict will meet
+              ``tol_mass`` and whose search costs less than the exact pass;
+              otherwise the query goes "exact" at once (with 128 or more
+              queries a sample prices the path first).
             - "index": softmax over the candidates of the index made by
               ``build_index`` (approximate, no bound; one memory only).
             - "auto": "exact" below 2048 stored rows; otherwise "certified"
@@ -151,14 +159,15 @@ class Retriever:
         ([[1, 2]], [[0.0, 1.0, 0.0, 0.0]])
         """
         where = f"{self._name}.retrieve"
-        layout = self._layout()
-        q, was_1d = prepare_queries(queries, layout, where=where)
-        opts = retrieval_options(
-            layout, q, where=where, methods=self._methods, beta=beta, steps=steps, tol=tol, k=k, method=method,
-            return_energy=return_energy, tol_mass=tol_mass, k_max=k_max, n_candidates=n_candidates,
-            measure=measure, batch_size=batch_size, weighting=weighting, alpha=alpha,
-        )
-        return self._retrieve_checked(q, was_1d, opts, where=where)
+        with self._pinned():
+            layout = self._layout()
+            q, was_1d = prepare_queries(queries, layout, where=where)
+            opts = retrieval_options(
+                layout, q, where=where, methods=self._methods, beta=beta, steps=steps, tol=tol, k=k, method=method,
+                return_energy=return_energy, tol_mass=tol_mass, k_max=k_max, n_candidates=n_candidates,
+                measure=measure, batch_size=batch_size, weighting=weighting, alpha=alpha,
+            )
+            return self._retrieve_checked(q, was_1d, opts, where=where)
 
     def _retrieve_checked(self, q: np.ndarray, was_1d: bool, opts: RetrievalOptions, *, where: str) -> RetrievalResult:
         """Retrieval with options already checked (the CLI and the jobs call this)."""
@@ -209,6 +218,11 @@ class Retriever:
         True
         """
         where = f"{self._name}.energy"
+        with self._pinned():
+            return self._energy(states, beta, where=where, weighting=weighting, alpha=alpha)
+
+    def _energy(self, states: Any, beta: float | None, *, where: str, weighting: Any = "softmax",
+                alpha: Any = None) -> Any:
         layout = self._layout()
         if layout.count == 0:
             raise InputValueError(f"{where}: the memory is empty; add patterns first.")
@@ -259,6 +273,10 @@ class Retriever:
         ['b']
         """
         where = f"{self._name}.nearest"
+        with self._pinned():
+            return self._nearest(queries, k, metric, index, batch_size, where=where)
+
+    def _nearest(self, queries: Any, k: Any, metric: Any, index: Any, batch_size: Any, *, where: str) -> NearestResult:
         layout = self._layout()
         q, was_1d = prepare_queries(queries, layout, where=where)
         k = min(10, layout.count) if k is None else check_k(k, n=layout.count, where=where)
@@ -266,6 +284,7 @@ class Retriever:
             raise InputValueError(f"{where}: `metric` must be 'ip' or 'l2'; got {metric!r}.")
         if index and metric != "ip":
             raise InputValueError(f"{where}: the candidate index ranks by inner product; use metric='ip'.")
+        check_nearest_range(max_row_norm(q), layout.max_norm, metric, where=where)
         size = max(1, q.shape[0]) if batch_size is None else check_positive_int(batch_size, name="batch_size", where=where)
         parts = [self._nearest_batch(q[i:i + size], k, metric, bool(index), where=where)
                  for i in range(0, q.shape[0], size)]

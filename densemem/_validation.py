@@ -17,7 +17,9 @@ from .errors import InputTypeError, InputValueError, UnknownIdError
 __all__ = [
     "unit_rows",
     "check_score_range",
-    "check_fraction",
+    "check_open_fraction",
+    "check_unit_interval",
+    "check_positive_fraction",
     "max_row_norm",
     "as_float_matrix",
     "check_patterns",
@@ -27,7 +29,15 @@ __all__ = [
     "check_positive_int",
     "check_nonneg_float",
     "check_ids",
+    "check_id_list",
+    "check_seed",
     "as_rng",
+    "check_index_params",
+    "check_search_sizes",
+    "check_nearest_range",
+    "check_finite_result",
+    "SEED_MAX",
+    "SCORE_LIMIT",
 ]
 
 
@@ -165,32 +175,90 @@ def check_k(k: Any, *, n: int, where: str, name: str = "k") -> int:
     return k
 
 
-def check_ids(ids: Any, *, n: int, where: str, name: str = "ids") -> np.ndarray:
-    """Return ids as a 1-D int64 or fixed-width unicode array of length ``n``, no repeats."""
-    if isinstance(ids, (str, bytes, int, np.integer)):
+_INT64_MAX = int(np.iinfo(np.int64).max)
+
+
+def _id_kind(v: Any) -> str:
+    """'int', 'str' or the name of a type ids may not have (bool and float are not ints here)."""
+    if isinstance(v, (bool, np.bool_)):
+        return "bool"
+    if isinstance(v, (int, np.integer)):
+        return "int"
+    if isinstance(v, (str, np.str_)):
+        return "str"
+    return type(v).__name__
+
+
+def check_id_list(ids: Any, *, where: str, name: str = "ids") -> np.ndarray:
+    """Return ids as a 1-D int64 or unicode array: one id or a flat iterable of ids.
+
+    The rule for ids everywhere (adding, removing, looking up): ints stay ints
+    (Python or numpy integers, within int64), strings stay strings; bools,
+    floats, None, nested lists and a mix of ints and strings are refused.
+
+    Examples
+    --------
+    >>> from densemem._validation import check_id_list
+    >>> check_id_list((i for i in [3, 1]), where="demo").tolist()
+    [3, 1]
+    """
+    if ids is None:
+        raise InputTypeError(f"{where}: `{name}` must be an id or a list of ids (int or str); got None.")
+    if isinstance(ids, (str, np.str_, int, np.integer, bool, np.bool_)):
         ids = [ids]
-    if not isinstance(ids, np.ndarray):
-        ids = list(ids)
-        kinds = {"str" if isinstance(v, str) else "int" if isinstance(v, (int, np.integer)) and not isinstance(v, bool) else type(v).__name__ for v in ids}
-        if len(kinds) > 1:
-            raise InputTypeError(
-                f"{where}: `{name}` must be all integers or all strings; got a mix of {', '.join(sorted(kinds))}."
+    elif isinstance(ids, np.ndarray):
+        if ids.ndim != 1:
+            raise InputValueError(f"{where}: `{name}` must be a flat list of ids (1-D); got shape {ids.shape}.")
+        if ids.dtype.kind in "iu" or ids.dtype.kind == "U":
+            return _checked_id_array(ids, where=where, name=name)
+        ids = ids.tolist()
+    elif isinstance(ids, (bytes, bytearray, dict, set, frozenset)) or not hasattr(ids, "__iter__"):
+        raise InputTypeError(
+            f"{where}: `{name}` must be an id or a list of ids (int or str); got {_describe(ids)}."
+        )
+    values = list(ids)
+    kinds = [_id_kind(v) for v in values]
+    for pos, (v, kind) in enumerate(zip(values, kinds)):
+        if kind in ("list", "tuple", "ndarray"):
+            raise InputValueError(
+                f"{where}: `{name}` must be a flat list of ids; entry {pos} is a {kind} ({_describe(v)})."
             )
-    arr = np.asarray(ids)
-    if arr.ndim != 1:
-        raise InputValueError(f"{where}: `{name}` must be 1-D; got shape {arr.shape}.")
+        if kind not in ("int", "str"):
+            raise InputTypeError(
+                f"{where}: every entry of `{name}` must be an int or a str; entry {pos} is {_describe(v)}."
+            )
+    if len(set(kinds)) > 1:
+        raise InputTypeError(
+            f"{where}: `{name}` must be all integers or all strings; got a mix of ints and strings."
+        )
+    if not values:
+        return np.empty(0, dtype=np.int64)
+    if kinds[0] == "str":
+        return np.array([str(v) for v in values], dtype=str)
+    ints = [int(v) for v in values]
+    too_big = [v for v in ints if not -_INT64_MAX - 1 <= v <= _INT64_MAX]
+    if too_big:
+        raise InputValueError(
+            f"{where}: `{name}` must fit in int64 (|id| < 2**63); got {too_big[0]}."
+        )
+    return np.array(ints, dtype=np.int64)
+
+
+def _checked_id_array(arr: np.ndarray, *, where: str, name: str) -> np.ndarray:
+    if arr.dtype.kind == "u" and arr.size and int(arr.max()) > _INT64_MAX:
+        raise InputValueError(
+            f"{where}: `{name}` must fit in int64 (ids < 2**63); got {int(arr.max())} (dtype {arr.dtype})."
+        )
+    if arr.dtype.kind in "iu":
+        return arr.astype(np.int64)
+    return arr
+
+
+def check_ids(ids: Any, *, n: int, where: str, name: str = "ids") -> np.ndarray:
+    """Return ids for ``n`` new patterns (the rule of :func:`check_id_list`), no repeats."""
+    arr = check_id_list(ids, where=where, name=name)
     if arr.size == 0 and n == 0:
         return np.empty(0, dtype=np.int64)
-    if arr.dtype.kind in "iu":
-        arr = arr.astype(np.int64)
-    elif arr.dtype.kind == "U":
-        pass
-    elif arr.dtype.kind == "O" and all(isinstance(v, str) for v in arr):
-        arr = arr.astype(str)
-    else:
-        raise InputTypeError(
-            f"{where}: `{name}` must be integers or strings (not mixed); got dtype {arr.dtype}."
-        )
     if arr.shape[0] != n:
         raise InputValueError(f"{where}: `{name}` has {arr.shape[0]} entries for {n} patterns.")
     uniq, counts = np.unique(arr, return_counts=True)
@@ -201,45 +269,117 @@ def check_ids(ids: Any, *, n: int, where: str, name: str = "ids") -> np.ndarray:
 
 
 def unit_rows(x: np.ndarray, *, where: str, what: str) -> np.ndarray:
-    """L2-normalise float32 rows (norms in float64, so huge entries do not overflow).
+    """L2-normalize float32 rows (norms in float64, so huge entries do not overflow).
 
     ``what`` names the rows in the error, e.g. "query" or "`patterns`".
     """
-    norms = np.sqrt(np.einsum("ij,ij->i", x.astype(np.float64), x.astype(np.float64)))
+    norms = row_norms(x)
     zero = np.flatnonzero(norms == 0)
     if zero.size:
         raise InputValueError(
-            f"{where}: {what} row {int(zero[0])} has zero norm and cannot be normalised (normalize=True); "
+            f"{where}: {what} row {int(zero[0])} has zero norm and cannot be normalized (normalize=True); "
             "drop it first."
         )
     return (x / norms[:, None]).astype(np.float32)
 
 
-_SCORE_LIMIT = 1e37  # float32 scores overflow near 3.4e38; keep a margin for sums
+SCORE_LIMIT = 1e37  # float32 scores overflow near 3.4e38; keep a margin for sums
 
 
 def check_score_range(beta: float, query_norm: float, max_norm: float, *, where: str) -> None:
-    """Refuse a beta whose scores beta * |q| * M would overflow float32."""
-    top = beta * query_norm * max_norm
-    if not np.isfinite(top) or top > _SCORE_LIMIT:
-        limit = _SCORE_LIMIT / max(query_norm * max_norm, np.finfo(np.float64).tiny)
+    """Refuse a beta or norms whose scores would leave the float32 range.
+
+    Three limits, each of which the float32 kernels (and faiss) need whatever the
+    other factors are: ``beta`` itself, the raw scores ``|q| * M`` (faiss ranks
+    them without beta) and the scaled scores ``beta * |q| * M``.
+
+    Examples
+    --------
+    >>> from densemem._validation import check_score_range
+    >>> check_score_range(1.0, 1.0, 1.0, where="demo")  # fine: nothing raised
+    """
+    if not beta <= SCORE_LIMIT:
+        raise InputValueError(
+            f"{where}: `beta` = {beta:g} is beyond the float32 score range; use beta <= {SCORE_LIMIT:.3g}."
+        )
+    raw = query_norm * max_norm
+    if not np.isfinite(raw) or raw > SCORE_LIMIT:
+        raise InputValueError(
+            f"{where}: the largest query norm ({query_norm:.3g}) times the largest stored norm "
+            f"({max_norm:.3g}) exceeds the float32 score range ({SCORE_LIMIT:.3g}); rescale the queries "
+            "or the patterns."
+        )
+    top = beta * raw
+    if not np.isfinite(top) or top > SCORE_LIMIT:
+        limit = SCORE_LIMIT / max(raw, np.finfo(np.float64).tiny)
         raise InputValueError(
             f"{where}: `beta` = {beta:g} times the largest query norm ({query_norm:.3g}) and stored norm "
             f"({max_norm:.3g}) exceeds the float32 score range; use beta <= {limit:.3g}."
         )
 
 
-def check_fraction(x: Any, *, name: str, where: str) -> float:
-    """Return ``x`` as a float in the open interval (0, 1)."""
-    val = check_nonneg_float(x, name=name, where=where, strict=True)
-    if val >= 1:
-        raise InputValueError(f"{where}: `{name}` must be a fraction in (0, 1); got {x!r}.")
-    return val
+def _check_interval(x: Any, *, name: str, where: str, low_open: bool, high_open: bool) -> float:
+    """A finite real number in the interval from 0 to 1, either end open or closed.
+
+    Examples
+    --------
+    >>> from densemem._validation import check_open_fraction, check_unit_interval
+    >>> check_open_fraction(1e-6, name="tol_mass", where="demo"), check_unit_interval(0, name="units", where="demo")
+    (1e-06, 0.0)
+    """
+    text = f"{'(' if low_open else '['}0, 1{')' if high_open else ']'}"
+    if isinstance(x, np.generic):
+        x = x.item()
+    if not _is_real_number(x):
+        raise InputTypeError(f"{where}: `{name}` must be a number in {text}; got {_describe(x)}.")
+    v = float(x)
+    bad = not np.isfinite(v) or v < 0 or v > 1 or (low_open and v == 0) or (high_open and v == 1)
+    if bad:
+        raise InputValueError(f"{where}: `{name}` must be a number in {text}; got {x!r}.")
+    return v
+
+
+def check_open_fraction(x: Any, *, name: str, where: str) -> float:
+    """Return ``x`` as a float in the open interval (0, 1): a tolerance such as ``tol_mass``."""
+    return _check_interval(x, name=name, where=where, low_open=True, high_open=True)
+
+
+def check_unit_interval(x: Any, *, name: str, where: str) -> float:
+    """Return ``x`` as a float in [0, 1]: a probability or a damaged share (0 and 1 allowed)."""
+    return _check_interval(x, name=name, where=where, low_open=False, high_open=False)
+
+
+def check_positive_fraction(x: Any, *, name: str, where: str) -> float:
+    """Return ``x`` as a float in (0, 1]: a share that may be the whole but not nothing."""
+    return _check_interval(x, name=name, where=where, low_open=True, high_open=False)
+
+
+_NORM_CHUNK = 1 << 16  # rows per float64 block: bounded extra memory for large tables
+
+
+def row_norms(x: np.ndarray) -> np.ndarray:
+    """L2 norms of the rows of ``x`` in float64 (float32 rows of 1e38 or 1e-30 neither
+    overflow nor underflow there), in blocks so the float64 copy stays small."""
+    out = np.empty(x.shape[0], dtype=np.float64)
+    for a in range(0, x.shape[0], _NORM_CHUNK):
+        block = np.asarray(x[a : a + _NORM_CHUNK], dtype=np.float64)
+        out[a : a + block.shape[0]] = np.sqrt(np.einsum("ij,ij->i", block, block))
+    return out
 
 
 def max_row_norm(x: np.ndarray) -> float:
-    """Largest L2 norm of the rows of ``x`` (computed in float64)."""
-    return float(np.sqrt(np.max(np.einsum("ij,ij->i", x.astype(np.float64), x.astype(np.float64)))))
+    """Largest L2 norm of the rows of ``x`` (float64; 0.0 for no rows).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from densemem._validation import max_row_norm
+    >>> max_row_norm(np.array([[3e38, 3e38]], dtype=np.float32)) > 3.4e38  # its square overflows float32
+    True
+    """
+    if x.shape[0] == 0 or x.shape[1] == 0:
+        return 0.0
+    return float(np.max(row_norms(x)))
 
 
 def unknown_id_error(where: str, missing: Any) -> UnknownIdError:
@@ -247,8 +387,145 @@ def unknown_id_error(where: str, missing: Any) -> UnknownIdError:
     return UnknownIdError(f"{where}: unknown id {missing!r}; the memory holds no pattern with it.")
 
 
-def as_rng(seed: Any) -> np.random.Generator:
-    """Normalise ``seed`` (None, int or Generator) with ``np.random.default_rng``."""
+SEED_MAX = 2**31 - 1  # faiss takes a C int; one rule for every seed
+
+
+def check_seed(seed: Any, *, where: str, name: str = "seed") -> int:
+    """Return ``seed`` as an int in [0, 2**31 - 1] (the one seed rule; faiss takes a C int).
+
+    Examples
+    --------
+    >>> from densemem._validation import check_seed
+    >>> check_seed(7, where="demo")
+    7
+    """
+    if isinstance(seed, np.integer):
+        seed = int(seed)
+    if not isinstance(seed, int) or isinstance(seed, bool):
+        raise InputTypeError(
+            f"{where}: `{name}` must be an int in [0, {SEED_MAX}]; got {_describe(seed)}."
+        )
+    if not 0 <= seed <= SEED_MAX:
+        raise InputValueError(f"{where}: `{name}` must be an int in [0, {SEED_MAX}]; got {seed}.")
+    return seed
+
+
+def as_rng(seed: Any, *, where: str, name: str = "seed") -> np.random.Generator:
+    """A numpy Generator from ``seed``: None (fresh entropy), an int (:func:`check_seed`) or a Generator.
+
+    Examples
+    --------
+    >>> from densemem._validation import as_rng
+    >>> float(as_rng(0, where="demo").random()) == float(as_rng(0, where="demo").random())
+    True
+    """
     if isinstance(seed, np.random.Generator):
         return seed
-    return np.random.default_rng(seed)
+    if seed is None:
+        return np.random.default_rng()
+    return np.random.default_rng(check_seed(seed, where=where, name=name))
+
+
+# faiss parameters (HNSW M >= 2: M = 1 crashes the interpreter in faiss's graph build; every
+# other count must fit the C int faiss stores it in, and M is kept to a graph that fits memory)
+_HNSW_M_MAX = 512
+_C_INT_MAX = 2**31 - 1
+
+
+def check_index_params(kind: Any, params: dict[str, Any], *, where: str) -> dict[str, Any]:
+    """Check faiss index parameters before any reaches faiss; return them as ints.
+
+    HNSW: ``M`` in [2, 512], ``ef_construction`` and ``ef_search`` in [1, 2**31 - 1];
+    IVF: ``nlist`` and ``nprobe`` in [1, 2**31 - 1]; ``seed`` by :func:`check_seed`.
+
+    Examples
+    --------
+    >>> from densemem._validation import check_index_params
+    >>> check_index_params("hnsw", {"M": 8}, where="demo")
+    {'M': 8}
+    """
+    if kind not in ("hnsw", "ivf"):
+        raise InputValueError(f"{where}: `kind` must be 'hnsw' or 'ivf'; got {kind!r}.")
+    allowed = {"hnsw": ("M", "ef_construction", "ef_search", "seed"), "ivf": ("nlist", "nprobe", "seed")}[kind]
+    unknown = sorted(set(params) - set(allowed))
+    if unknown:
+        raise InputValueError(f"{where}: unknown {kind} option(s) {unknown}; use {sorted(allowed)}.")
+    out: dict[str, Any] = {}
+    for key, val in params.items():
+        if key == "seed":
+            out[key] = check_seed(val, where=where)
+            continue
+        low, high = (2, _HNSW_M_MAX) if key == "M" else (1, _C_INT_MAX)
+        v = check_positive_int(val, name=key, where=where, minimum=low)
+        if v > high:
+            raise InputValueError(f"{where}: `{key}` must be an integer in [{low}, {high}]; got {v}.")
+        out[key] = v
+    return out
+
+
+_SMALL_LISTS = 64  # list counts always accepted (callers clamp them to tiny data)
+
+
+def check_search_sizes(n_rows: int, *, where: str, **counts: Any) -> None:
+    """Check faiss list and candidate counts (``nlist``, ``nprobe``, ``k``...) before faiss sees them.
+
+    Each given count (None: the default is chosen later) must be an int in
+    [1, 2**31 - 1] (faiss stores them as C ints); ``nlist`` and ``nprobe`` must also
+    be at most ``max(n_rows, 64)`` (no more lists than rows to put in them; small
+    counts stay allowed for small data, which the callers clamp), so no count can
+    make faiss allocate far beyond the data.
+
+    Examples
+    --------
+    >>> from densemem._validation import check_search_sizes
+    >>> check_search_sizes(100, where="demo", nlist=10, nprobe=None)  # fine: nothing raised
+    """
+    for key, val in counts.items():
+        if val is None:
+            continue
+        v = check_positive_int(val, name=key, where=where)
+        if v > _C_INT_MAX:
+            raise InputValueError(f"{where}: `{key}` must be an integer in [1, {_C_INT_MAX}]; got {v}.")
+        if key in ("nlist", "nprobe") and v > max(n_rows, _SMALL_LISTS):
+            raise InputValueError(
+                f"{where}: `{key}` must be at most the number of rows ({n_rows}, or {_SMALL_LISTS} for fewer "
+                f"rows); got {v}."
+            )
+
+
+def check_nearest_range(query_norm: float, max_norm: float, metric: str, *, where: str) -> None:
+    """Refuse queries whose faiss scores would leave float32 (inf inner products, saturated L2).
+
+    Inner products are at most ``|q| M``; squared L2 distances at most ``(|q| + M)^2``.
+
+    Examples
+    --------
+    >>> from densemem._validation import check_nearest_range
+    >>> check_nearest_range(1.0, 1.0, "l2", where="demo")  # fine: nothing raised
+    """
+    top = query_norm * max_norm if metric == "ip" else (query_norm + max_norm) ** 2
+    if not np.isfinite(top) or top > SCORE_LIMIT:
+        what = "|q| * M" if metric == "ip" else "(|q| + M)^2"
+        raise InputValueError(
+            f"{where}: the largest query norm ({query_norm:.3g}) and stored norm ({max_norm:.3g}) give "
+            f"{metric} scores {what} = {top:.3g} beyond the float32 range ({SCORE_LIMIT:.3g}); rescale the "
+            "queries or the patterns."
+        )
+
+
+def check_finite_result(arr: np.ndarray, *, what: str, where: str) -> None:
+    """Raise when a computed result holds NaN or infinity (never hand one back as a state).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from densemem._validation import check_finite_result
+    >>> check_finite_result(np.ones(3), what="states", where="demo")  # fine: nothing raised
+    """
+    finite = np.isfinite(arr)
+    if not finite.all():
+        bad = np.argwhere(~finite)[0]
+        raise InputValueError(
+            f"{where}: the {what} left the float range (NaN or infinity at index {tuple(int(i) for i in bad)}); "
+            "the inputs are too large or beta too high for float32 scores -- rescale them or lower beta."
+        )

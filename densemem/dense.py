@@ -14,7 +14,7 @@ from .core.rows import RowSource, TableRows
 from .core.table import PatternTable
 from .core.tiles import DEFAULT_TILE_MIB, n_threads_default
 from .options import Layout, RetrievalOptions
-from ._validation import check_beta, check_nonneg_float, check_positive_int
+from ._validation import check_beta, check_index_params, check_nonneg_float, check_positive_int, max_row_norm
 from .errors import DenseMemWarning, IndexStaleError, InputTypeError, InputValueError
 from .store._folder import StoreContent, read_store, write_store
 
@@ -29,7 +29,7 @@ class DenseMemory(Retriever):
     dim : int
         Number of features of every stored pattern.
     normalize : bool, default False
-        L2-normalise stored patterns and queries (cosine geometry).
+        L2-normalize stored patterns and queries (cosine geometry).
     beta : float, default 1.0
         Default inverse temperature for :meth:`retrieve` and :meth:`energy`.
     tile_mib : float, default 16.0
@@ -51,6 +51,22 @@ class DenseMemory(Retriever):
     ----------
     .. [1] H. Ramsauer et al., "Hopfield Networks is All You Need", ICLR 2021,
        arXiv:2008.02217.
+
+    Thread safety
+    -------------
+    Rows and ids are held as one snapshot that changes never write into:
+    :meth:`add` and :meth:`remove` build new arrays and swap them in at once,
+    one change at a time (a lock). Reads (:meth:`retrieve`, :meth:`energy`,
+    :meth:`nearest`, :attr:`patterns`, :attr:`ids`) may run from many threads
+    while another thread adds or removes; each call works on the rows and ids
+    of the moment it started, so its ids belong to its rows. The candidate
+    index of ``method="index"`` / ``nearest(index=True)`` is shared, not part
+    of the snapshot: do not change the memory while those run.
+
+    Two processes saving to the same store folder: one save wins whole, the
+    other raises :class:`~densemem.errors.StoreBusyError` and writes nothing
+    (an advisory ``fcntl`` lock beside the folder, POSIX only). Loads never
+    take the lock and always see a complete store.
 
     Examples
     --------
@@ -76,8 +92,7 @@ class DenseMemory(Retriever):
         self.n_threads = (
             n_threads_default() if n_threads is None else check_positive_int(n_threads, name="n_threads", where=where)
         )
-        self._max_norm: float | None = None
-        self._max_norm_version = -1
+        self._max_norm_cache: tuple[int, float] | None = None  # (table version, M)
         self._index: Any = None  # a candidate index (see build_index); seam for the store format
 
     # ------------------------------------------------------------------ build
@@ -132,7 +147,7 @@ class DenseMemory(Retriever):
 
     @property
     def normalize(self) -> bool:
-        """Whether patterns and queries are L2-normalised."""
+        """Whether patterns and queries are L2-normalized."""
         return self._table.normalize
 
     @property
@@ -161,11 +176,12 @@ class DenseMemory(Retriever):
     @property
     def max_norm(self) -> float:
         """Largest stored pattern norm ``M`` (0.0 for an empty memory)."""
-        if self._max_norm_version != self._table.version or self._max_norm is None:
-            x = self._table.x
-            self._max_norm = float(np.sqrt(np.max(np.einsum("ij,ij->i", x, x)))) if len(x) else 0.0
-            self._max_norm_version = self._table.version
-        return self._max_norm
+        snap = self._table.snapshot()
+        cached = self._max_norm_cache
+        if cached is None or cached[0] != snap.version:
+            cached = (snap.version, max_row_norm(snap.x))  # float64: no overflow at 1e38, no underflow at 1e-30
+            self._max_norm_cache = cached
+        return cached[1]
 
     def __len__(self) -> int:
         return len(self._table)
@@ -207,16 +223,19 @@ class DenseMemory(Retriever):
         return self._add(patterns, ids, where="DenseMemory.add")
 
     def _add(self, patterns: Any, ids: Any, *, where: str) -> np.ndarray:
-        x, new_ids = self._table.prepare(patterns, ids, where=where)
-        self._table.append(x, new_ids)
-        if self._index is not None:
-            self._index.add(x, self._table.version)
+        with self._table._lock:  # check and append as one change (two adders never take one id)
+            x, new_ids = self._table.prepare(patterns, ids, where=where)
+            self._table.append(x, new_ids)
+            if self._index is not None:
+                self._index.add(x, self._table.version)
         return new_ids.copy()
 
     def remove(self, ids: Any) -> int:
         """Remove the patterns with these ids; return how many were removed.
 
         Every id is checked first: an unknown id raises and removes nothing.
+        ``ids`` is one id or a flat iterable of ids of the memory's kind (int
+        or str); bools, floats, None and nested lists are refused.
 
         Examples
         --------
@@ -225,9 +244,10 @@ class DenseMemory(Retriever):
         >>> mem.remove([1]), mem.ids.tolist()
         (1, [0, 2])
         """
-        removed = self._table.delete(ids, where="DenseMemory.remove")
-        if self._index is not None:
-            self._index.stale = True  # positions shifted: rebuilt on next use
+        with self._table._lock:
+            removed = self._table.delete(ids, where="DenseMemory.remove")
+            if self._index is not None:
+                self._index.stale = True  # positions shifted: rebuilt on next use
         return removed
 
     def positions(self, ids: Any) -> np.ndarray:
@@ -242,8 +262,11 @@ class DenseMemory(Retriever):
         return self._table.positions(ids, where="DenseMemory.positions")
 
     # ------------------------------------------------------------------ disk
-    def save(self, path: Any, *, overwrite: bool = True) -> None:
+    def save(self, path: Any, *, overwrite: bool = False) -> None:
         """Write the memory to a store folder (atomic; see :mod:`densemem.store`).
+
+        An existing store at ``path`` is refused unless ``overwrite=True`` (the
+        rule of every writer in densemem).
 
         Examples
         --------
@@ -307,8 +330,12 @@ class DenseMemory(Retriever):
         if opts.method == "index":
             self._fresh_index(where=where)  # fails (or rebuilds) before any pass
             index = lambda: self._fresh_index(where=where)  # noqa: E731
-        return TableRows(self._table.x, self._table.ids, self.max_norm, opts.method, self.tile_mib,
+        snap = self._table.snapshot()  # rows and ids of one moment (see Thread safety)
+        return TableRows(snap.x, snap.ids, self.max_norm, opts.method, self.tile_mib,
                          self.n_threads, opts.n_candidates, index)
+
+    def _pinned(self) -> Any:
+        return self._table.pinned()
 
     def _candidate_recall(self, source: RowSource, q: np.ndarray, opts: RetrievalOptions) -> float:
         assert isinstance(source, TableRows)
@@ -356,6 +383,7 @@ class DenseMemory(Retriever):
         where = "DenseMemory.build_index"
         if len(self) == 0:
             raise InputValueError(f"{where}: the memory is empty; add patterns first.")
+        params = check_index_params(kind, params, where=where)  # before anything reaches faiss
         settings = default_settings(kind, len(self), **params)
         self._index = CandidateIndex.build(self._table.x, settings, self._table.version)
         return settings.to_dict()

@@ -13,6 +13,7 @@ __all__ = [
     "InputTypeError",
     "UnknownIdError",
     "StoreFormatError",
+    "StoreBusyError",
     "IndexStaleError",
     "MissingExtraError",
     "DenseMemWarning",
@@ -40,6 +41,10 @@ class UnknownIdError(DenseMemError, KeyError):
 
 class StoreFormatError(DenseMemError, ValueError):
     """A store folder on disk is missing, damaged or of an unknown format."""
+
+
+class StoreBusyError(DenseMemError, RuntimeError):
+    """Another save to the same store folder holds its lock; nothing was written."""
 
 
 class IndexStaleError(DenseMemError, RuntimeError):

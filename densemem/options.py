@@ -19,7 +19,7 @@ from .core.candidates import CertifiedOptions
 from .core.sparse import NAMED_ALPHA, WEIGHTINGS
 from ._validation import (
     check_beta,
-    check_fraction,
+    check_open_fraction,
     check_k,
     check_nonneg_float,
     check_positive_int,
@@ -183,7 +183,7 @@ def retrieval_options(
         k=kk,
         method=method,
         certified=CertifiedOptions(
-            tol_mass=check_fraction(tol_mass, name="tol_mass", where=where),
+            tol_mass=check_open_fraction(tol_mass, name="tol_mass", where=where),
             k_max=check_positive_int(k_max, name="k_max", where=where),
             tile_mib=layout.tile_mib,
         ),

@@ -7,6 +7,8 @@ from typing import Any, Callable
 
 import numpy as np
 
+from ._util import to_plain
+
 __all__ = ["RetrievalResult", "NearestResult"]
 
 
@@ -14,14 +16,6 @@ def _short(value: Any) -> str:
     if isinstance(value, np.ndarray):
         return f"array(shape={value.shape}, dtype={value.dtype})"
     return repr(value)
-
-
-def _plain(value: Any) -> Any:
-    if isinstance(value, np.ndarray):
-        return value.tolist()
-    if isinstance(value, np.generic):
-        return value.item()
-    return value
 
 
 class Deferred:
@@ -58,7 +52,7 @@ class _ResultMixin:
 
     def to_dict(self) -> dict[str, Any]:
         """Plain-Python (JSON-ready) copy of every field."""
-        return {_public(f.name): _plain(getattr(self, _public(f.name))) for f in fields(self)}  # type: ignore[arg-type]
+        return {_public(f.name): to_plain(getattr(self, _public(f.name))) for f in fields(self)}  # type: ignore[arg-type]
 
 
 @dataclass(frozen=True, slots=True, repr=False)

@@ -21,5 +21,5 @@ def digits() -> np.ndarray:
 
 @pytest.fixture(scope="session")
 def digits_unit(digits: np.ndarray) -> np.ndarray:
-    """Digits rows L2-normalised (for inner-product / cosine comparisons)."""
+    """Digits rows L2-normalized (for inner-product / cosine comparisons)."""
     return digits / np.linalg.norm(digits, axis=1, keepdims=True)

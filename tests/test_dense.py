@@ -136,7 +136,7 @@ def _check_large_beta_top1(x: np.ndarray, q: np.ndarray, method: str) -> None:
 
 @pytest.mark.parametrize("method", METHODS)
 def test_large_beta_picks_faiss_top1_on_digits(digits_unit: np.ndarray, method: str) -> None:
-    # Open data: scikit-learn's bundled digits, L2-normalised (UCI optdigits); reference:
+    # Open data: scikit-learn's bundled digits, L2-normalized (UCI optdigits); reference:
     # faiss IndexFlatIP; theorem: the large-beta limit and the one-step bound (derived from
     # Ramsauer et al. 2021)
     # (derived; the separation it uses is defined from memory).
@@ -514,9 +514,9 @@ def test_inputs_are_never_modified_and_not_aliased() -> None:
     np.testing.assert_array_equal(mem2.patterns, keep)
 
 
-def test_normalize_l2_normalises_patterns_and_queries() -> None:
-    # Reference: numpy L2 normalisation (common practice: cosine = inner product of unit
-    # vectors), and faiss IndexFlatIP on the normalised data.
+def test_normalize_l2_normalizes_patterns_and_queries() -> None:
+    # Reference: numpy L2 normalization (common practice: cosine = inner product of unit
+    # vectors), and faiss IndexFlatIP on the normalized data.
     rng = np.random.default_rng(14)
     x, q = _rand(rng, 20, 6, scale=7.0), _rand(rng, 3, 6, scale=0.1)
     mem = DenseMemory.from_array(x, normalize=True, beta=3.0)

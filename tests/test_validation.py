@@ -110,8 +110,8 @@ def test_non_real_dtypes(arr: np.ndarray) -> None:
         DenseMemory(2).add(arr)
 
 
-def test_zero_row_cannot_be_normalised() -> None:
-    with pytest.raises(InputValueError, match=lit("DenseMemory.add: `patterns` row 1 has zero norm and cannot be normalised")):
+def test_zero_row_cannot_be_normalized() -> None:
+    with pytest.raises(InputValueError, match=lit("DenseMemory.add: `patterns` row 1 has zero norm and cannot be normalized")):
         DenseMemory(2, normalize=True).add([[1.0, 0.0], [0.0, 0.0]])
 
 
@@ -162,9 +162,9 @@ def test_string_query(mem: DenseMemory) -> None:
         mem.retrieve("abcd", method="exact")
 
 
-def test_zero_query_cannot_be_normalised() -> None:
+def test_zero_query_cannot_be_normalized() -> None:
     m = DenseMemory.from_array(np.eye(2), normalize=True)
-    with pytest.raises(InputValueError, match=lit("DenseMemory.retrieve: query row 1 has zero norm and cannot be normalised (normalize=True); drop it first.")):
+    with pytest.raises(InputValueError, match=lit("DenseMemory.retrieve: query row 1 has zero norm and cannot be normalized (normalize=True); drop it first.")):
         m.retrieve([[1.0, 0.0], [0.0, 0.0]], method="exact")
 
 
@@ -289,18 +289,18 @@ def test_ids_wrong_count() -> None:
 
 
 def test_ids_two_dimensional() -> None:
-    with pytest.raises(InputValueError, match=lit("DenseMemory.add: `ids` must be 1-D; got shape (1, 2).")):
+    with pytest.raises(InputValueError, match=lit("DenseMemory.add: `ids` must be a flat list of ids (1-D); got shape (1, 2).")):
         DenseMemory(2).add(np.eye(2), ids=np.array([[1, 2]]))
 
 
 def test_ids_of_float_dtype() -> None:
-    with pytest.raises(InputTypeError, match=lit("DenseMemory.add: `ids` must be integers or strings (not mixed); got dtype float64.")):
+    with pytest.raises(InputTypeError, match=lit("DenseMemory.add: every entry of `ids` must be an int or a str; entry 0 is float")):
         DenseMemory(2).add(np.eye(2), ids=[1.5, 2.5])
 
 
 def test_ids_mixing_int_and_str_in_one_call() -> None:
     # [1, "a"] is mixed input; it must not silently become the str ids "1" and "a".
-    with pytest.raises(InputTypeError, match=lit("DenseMemory.add: `ids` must be all integers or all strings; got a mix of int, str.")):
+    with pytest.raises(InputTypeError, match=lit("DenseMemory.add: `ids` must be all integers or all strings; got a mix of ints and strings.")):
         DenseMemory(2).add(np.eye(2), ids=[1, "a"])
 
 
@@ -347,13 +347,17 @@ def test_beta_too_large_for_float32_scores() -> None:
     # scores beta * |q| * M pass 1e37 is refused instead of returning NaN.
     m = DenseMemory.from_array(np.eye(3))
     for call in (lambda: m.retrieve([1.0, 0.0, 0.0], beta=1e300), lambda: m.energy([1.0, 0.0, 0.0], beta=1e300)):
-        with pytest.raises(InputValueError, match=r"`beta` = 1e\+300 times the largest query norm \(1\) and stored norm \(1\) exceeds the float32 score range; use beta <= 1e\+37\."):
+        with pytest.raises(InputValueError, match=r"`beta` = 1e\+300 is beyond the float32 score range; use beta <= 1e\+37\."):
+            call()
+    m10 = DenseMemory.from_array(10 * np.eye(3))
+    for call in (lambda: m10.retrieve([1.0, 0.0, 0.0], beta=2e36), lambda: m10.energy([1.0, 0.0, 0.0], beta=2e36)):
+        with pytest.raises(InputValueError, match=r"`beta` = 2e\+36 times the largest query norm \(1\) and stored norm \(10\) exceeds the float32 score range; use beta <= 1e\+36\."):
             call()
 
 
 def test_normalize_huge_rows_are_not_zeroed() -> None:
     # Norms of rows with entries near 1e20 overflow in float32 (max 3.4e38, common practice);
-    # they are computed in float64, so normalising keeps the direction (reference: numpy float64).
+    # they are computed in float64, so normalizing keeps the direction (reference: numpy float64).
     x = np.array([[3e20, 4e20], [1.0, 0.0]])
     m = DenseMemory.from_array(x, normalize=True)
     np.testing.assert_allclose(m.patterns[0], [0.6, 0.8], rtol=1e-6)
@@ -363,7 +367,7 @@ def test_normalize_huge_rows_are_not_zeroed() -> None:
 
 def test_tol_mass_must_be_a_fraction() -> None:
     m = DenseMemory.from_array(np.eye(3))
-    with pytest.raises(InputValueError, match=lit("DenseMemory.retrieve: `tol_mass` must be a fraction in (0, 1); got 2.")):
+    with pytest.raises(InputValueError, match=lit("DenseMemory.retrieve: `tol_mass` must be a number in (0, 1); got 2.")):
         m.retrieve([1.0, 0.0, 0.0], tol_mass=2)
 
 

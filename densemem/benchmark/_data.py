@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from ._spec import GENERATED, BenchSpec
+from .._synthetic import corrupt
 from ..errors import InputValueError, MissingExtraError
 
 __all__ = ["BenchData", "load_data", "sign_codes"]
@@ -105,29 +106,21 @@ def _rows(spec: BenchSpec, n: int | None, rng: np.random.Generator) -> tuple[str
     return name, x
 
 
-def _normalise(x: np.ndarray, what: str) -> np.ndarray:
+def _normalize(x: np.ndarray, what: str) -> np.ndarray:
     norms = np.linalg.norm(x, axis=1)
     zero = np.flatnonzero(norms == 0)
     if zero.size:
         raise InputValueError(
-            f"{_WHERE}: {what} row {int(zero[0])} has zero norm and cannot be normalised; "
+            f"{_WHERE}: {what} row {int(zero[0])} has zero norm and cannot be normalized; "
             "drop it or set normalize=False."
         )
     return x / norms[:, None].astype(x.dtype)
 
 
 def _corrupt(spec: BenchSpec, x: np.ndarray, rng: np.random.Generator) -> np.ndarray:
-    n, d = x.shape
-    rows = rng.choice(n, spec.n_queries, replace=spec.n_queries > n)
-    src = x[rows].astype(np.float64)
-    if spec.corruption == "gaussian":
-        scale = spec.level * np.linalg.norm(src, axis=1, keepdims=True) / np.sqrt(d)
-        return (src + scale * rng.standard_normal(src.shape)).astype(np.float32)
-    keep = rng.random(src.shape) >= spec.level
-    out = np.where(keep, src, 0.0)
-    emptied = ~(out != 0).any(axis=1)
-    out[emptied] = src[emptied]  # a mask that would zero a whole row is not applied to it
-    return out.astype(np.float32)
+    """Corrupted copies of random stored rows (kinds as in :mod:`densemem._synthetic`)."""
+    rows = rng.choice(x.shape[0], spec.n_queries, replace=spec.n_queries > x.shape[0])
+    return corrupt(x[rows], spec.corruption, spec.level, rng).astype(np.float32)
 
 
 def load_data(spec: BenchSpec, n: int | None, seed: int) -> BenchData:
@@ -143,7 +136,7 @@ def load_data(spec: BenchSpec, n: int | None, seed: int) -> BenchData:
     else:
         q = _corrupt(spec, x, rng)
     if spec.normalize:
-        x, q = _normalise(x, "dataset"), _normalise(q, "query")
+        x, q = _normalize(x, "dataset"), _normalize(q, "query")
     return BenchData(name, np.ascontiguousarray(x, np.float32), np.ascontiguousarray(q, np.float32))
 
 

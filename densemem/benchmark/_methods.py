@@ -15,13 +15,12 @@ import time
 from collections.abc import Callable
 from typing import Any
 
-import faiss
 import numpy as np
 
 from ._data import BenchData, packed, sign_codes
 from ._measure import median, memory_peaks, paired_times, recall_at_k, time_calls
 from ._spec import BenchRecord, BenchSpec
-from ..core.index import IndexSettings, default_settings
+from ..core.index import CandidateIndex, IndexSettings, binary_flat, default_settings, make_index
 from ..errors import InputValueError
 
 __all__ = ["count_rows", "run_rows"]
@@ -90,7 +89,7 @@ class _Run:
 
     def add(self, *, library: str, method: str, label: str, params: dict[str, Any], call: Callable[[], Any],
             build: tuple[float, float], quality: Callable[[Any], dict[str, Any]], beta: float | None = None,
-            baseline: str | None = None, register: str | None = None) -> None:
+            baseline: str | None = None, register: str | None = None, held: float | None = None) -> None:
         self.tick(f"N={self.n} {method} {label}")
         extra: dict[str, Any] = {}
         if baseline is not None and baseline in self.baselines:
@@ -106,7 +105,7 @@ class _Run:
             dataset=self.name, n=self.n, dim=self.dim, n_queries=self.nq, batch_size=self.batch,
             library=library, method=method, label=label, params=params, beta=beta,
             time_s=t, times_s=times, queries_per_s=self.nq / t, build_s=build[0], build_peak_rss_mib=build[1],
-            peak_python_mib=py, peak_rss_mib=rss, repeats=self.spec.repeats, warmup=self.spec.warmup,
+            peak_python_mib=py, peak_rss_mib=rss, held_mib=held, repeats=self.spec.repeats, warmup=self.spec.warmup,
             **quality(out), **extra,
         )
         self.records.append(rec)
@@ -153,23 +152,33 @@ class _Run:
 
 
 # ------------------------------------------------------------------ rows
+def _held_mib(index: Any, binary: bool = False) -> float:
+    """MiB an index holds: the size of its faiss serialization (measured, not estimated)."""
+    import faiss
+
+    raw = faiss.serialize_index_binary(index) if binary else faiss.serialize_index(index)
+    return float(raw.nbytes) / 2.0**20
+
+
 def _flat(run: _Run) -> None:
     flat, b, brss = _build(lambda: _flat_index(run.x))
     run.truth = flat.search(run.q, run.kmax)[1]
     run.add(library="faiss", method="faiss-flat", label="IndexFlatIP", params={"k": run.kmax},
             call=run.batched(lambda qb: (flat.search(qb, run.kmax)[1],)), build=(b, brss),
-            quality=lambda out: {"recall": run.recalls(out[0])}, register="faiss-flat")
+            quality=lambda out: {"recall": run.recalls(out[0])}, register="faiss-flat", held=_held_mib(flat))
 
 
 def _flat_index(x: np.ndarray) -> Any:
-    idx = faiss.IndexFlatIP(x.shape[1])
+    idx = make_index("flat", x.shape[1])
     idx.add(x)
     return idx
 
 
 def _dense(run: _Run, method: str, extra_build: tuple[float, float] = (0.0, 0.0),
-           label: str = "", params: dict[str, Any] | None = None, baseline: str = "faiss-flat") -> None:
-    _, mb, mrss = run.memory()
+           label: str = "", params: dict[str, Any] | None = None, baseline: str = "faiss-flat",
+           index_mib: float = 0.0) -> None:
+    mem, mb, mrss = run.memory()
+    held = float(np.asarray(mem.patterns).nbytes) / 2.0**20 + index_mib
     sample = slice(0, min(_FLOAT64_SAMPLE, run.nq))
     for beta in run.spec.betas:
         if method == "exact":
@@ -180,7 +189,7 @@ def _dense(run: _Run, method: str, extra_build: tuple[float, float] = (0.0, 0.0)
         call = run.batched(run.retrieve_fn(beta, "index" if method.startswith("index") else method))
         run.add(library="densemem", method=method, label=(label + f" beta={beta:g}").strip(),
                 params={**(params or {}), "beta": beta}, beta=beta, call=call,
-                build=(mb + extra_build[0], max(mrss, extra_build[1])), baseline=baseline,
+                build=(mb + extra_build[0], max(mrss, extra_build[1])), baseline=baseline, held=held,
                 quality=lambda out, ref=ref, beta=beta, ref_name=ref_name, rows=rows: run.state_quality(
                     out, beta, ref, ref_name, rows, keep=method == "exact"))
 
@@ -189,10 +198,8 @@ def _hnsw(run: _Run, planned: list[str]) -> None:
     s = run.spec
 
     def build() -> Any:
-        idx = faiss.IndexHNSWFlat(run.dim, s.hnsw_m, faiss.METRIC_INNER_PRODUCT)
-        idx.hnsw.efConstruction = s.ef_construction
-        idx.add(run.x)
-        return idx
+        graph = IndexSettings(kind="hnsw", M=s.hnsw_m, ef_construction=s.ef_construction)
+        return CandidateIndex.build(run.x, graph, version=0).faiss_index
 
     hnsw, b, brss = _build(build)
     for ef in s.ef_search:
@@ -202,11 +209,11 @@ def _hnsw(run: _Run, planned: list[str]) -> None:
         if "faiss-hnsw" in planned:
             run.add(library="faiss", method="faiss-hnsw", label=f"HNSW ef={ef}", params={**params, "k": run.kmax},
                     call=run.batched(lambda qb: (hnsw.search(qb, run.kmax)[1],)), build=(b, brss),
-                    quality=lambda out: {"recall": run.recalls(out[0])}, register=key)
+                    quality=lambda out: {"recall": run.recalls(out[0])}, register=key, held=_held_mib(hnsw))
         if "index-hnsw" in planned:
             settings = IndexSettings(kind="hnsw", M=s.hnsw_m, ef_construction=s.ef_construction, ef_search=ef)
             run.memory()[0]._restore_index({"settings": settings.to_dict(), "n_rows": run.n}, hnsw)
-            _dense(run, "index-hnsw", (b, brss), f"ef={ef}", params, baseline=key)
+            _dense(run, "index-hnsw", (b, brss), f"ef={ef}", params, baseline=key, index_mib=_held_mib(hnsw))
 
 
 def _ivf(run: _Run, planned: list[str]) -> None:
@@ -216,17 +223,8 @@ def _ivf(run: _Run, planned: list[str]) -> None:
         raise InputValueError(f"run_benchmark: `nlist` ({nlist}) must be at most the {run.n} stored rows.")
 
     def build() -> Any:
-        quantizer = faiss.IndexFlatIP(run.dim)
-        idx = faiss.IndexIVFFlat(quantizer, run.dim, nlist, faiss.METRIC_INNER_PRODUCT)
-        idx.cp.seed = s.seed
-        n_train = min(run.n, 64 * nlist)
-        rng = np.random.default_rng(s.seed)
-        sample = run.x if n_train == run.n else run.x[np.sort(rng.choice(run.n, n_train, replace=False))]
-        idx.train(np.ascontiguousarray(sample))
-        idx.add(run.x)
-        idx.own_fields = True
-        quantizer.this.disown()
-        return idx
+        lists = IndexSettings(kind="ivf", nlist=nlist, nprobe=1, seed=s.seed)
+        return CandidateIndex.build(run.x, lists, version=0).faiss_index
 
     ivf, b, brss = _build(build)
     for nprobe in sorted({min(p, nlist) for p in s.nprobe}):
@@ -236,11 +234,11 @@ def _ivf(run: _Run, planned: list[str]) -> None:
         if "faiss-ivf" in planned:
             run.add(library="faiss", method="faiss-ivf", label=f"IVF nprobe={nprobe}", params={**params, "k": run.kmax},
                     call=run.batched(lambda qb: (ivf.search(qb, run.kmax)[1],)), build=(b, brss),
-                    quality=lambda out: {"recall": run.recalls(out[0])}, register=key)
+                    quality=lambda out: {"recall": run.recalls(out[0])}, register=key, held=_held_mib(ivf))
         if "index-ivf" in planned:
             settings = IndexSettings(kind="ivf", nlist=nlist, nprobe=nprobe, seed=s.seed)
             run.memory()[0]._restore_index({"settings": settings.to_dict(), "n_rows": run.n}, ivf)
-            _dense(run, "index-ivf", (b, brss), f"nprobe={nprobe}", params, baseline=key)
+            _dense(run, "index-ivf", (b, brss), f"nprobe={nprobe}", params, baseline=key, index_mib=_held_mib(ivf))
 
 
 def _binary_memory(model: str, codes: np.ndarray) -> Any:
@@ -258,7 +256,7 @@ def _binary(run: _Run) -> None:
     bits = 8 * ((run.dim + 7) // 8)
 
     def build() -> Any:
-        idx = faiss.IndexBinaryFlat(bits)
+        idx = binary_flat(bits)
         idx.add(packed(codes))
         return idx
 
@@ -266,7 +264,8 @@ def _binary(run: _Run) -> None:
     qbits = packed(qcodes)
     run.add(library="faiss", method="faiss-binary-flat", label="IndexBinaryFlat", params={"k": run.kmax},
             call=run.batched(lambda qb: (bflat.search(qb, run.kmax)[1],), qbits), build=(b, brss),
-            quality=lambda out: {"recall": run.recalls(out[0])}, register="faiss-binary-flat")
+            quality=lambda out: {"recall": run.recalls(out[0])}, register="faiss-binary-flat",
+            held=_held_mib(bflat, binary=True))
 
     def nearest_code(states: np.ndarray) -> np.ndarray:
         return bflat.search(packed(states), 1)[1]  # the stored item a returned state stands for
@@ -277,11 +276,11 @@ def _binary(run: _Run) -> None:
         chunk = max(1, int(_BINARY_CHUNK_MIB * 2**20 / (8 * 6 * run.n))) if dense else qcodes.shape[0]
 
         def fn(qb: np.ndarray, mem: Any = mem, chunk: int = chunk) -> tuple[np.ndarray, ...]:
-            parts = [mem.retrieve(qb[a:a + chunk], mode="sync", max_sweeps=s.binary_sweeps).states
+            parts = [mem.retrieve(qb[a:a + chunk], mode="sync", steps=s.binary_sweeps).states
                      for a in range(0, qb.shape[0], chunk)]
             return (np.concatenate(parts),)
 
-        params: dict[str, Any] = {"mode": "sync", "max_sweeps": s.binary_sweeps}
+        params: dict[str, Any] = {"mode": "sync", "steps": s.binary_sweeps}
         if dense:
             params["degree"] = 3 if model == "polynomial" else "-"
         run.add(library="densemem", method=f"binary-{model}", label=f"sign codes {model}", params=params,

@@ -15,25 +15,44 @@ from typing import Any
 from ._spec import BenchRecord
 from ..errors import MissingExtraError
 
-__all__ = ["format_table", "plot_recall_speed", "plot_scaling"]
+__all__ = ["LEGEND", "format_table", "plot_recall_speed", "plot_scaling", "table_rows"]
 
 
 def _f(v: Any, spec: str) -> str:
     return "-" if v is None else format(v, spec)
 
 
-def format_table(records: Sequence[BenchRecord], ks: Sequence[int], title: str = "") -> str:
-    """Fixed-width text table of ``records``, one block per N."""
+#: The legend of the table columns (printed under the table and in the HTML report).
+LEGEND = (
+    ("time ms", "median wall time of one call over all queries"),
+    ("x base", "time ms / base ms: base ms is the baseline's median, timed alternately with this row"),
+    ("held MiB", "memory the searched structure holds (faiss: its serialised index; densemem: float32 "
+                 "patterns plus any index)"),
+    ("py MiB, RSS MiB", "what one search call adds (Python heap / resident set); faiss allocates in C++ and "
+                        "reuses pages, so its rows are near 0"),
+)
+
+
+def table_rows(records: Sequence[BenchRecord], ks: Sequence[int]) -> tuple[list[str], list[list[str]]]:
+    """Column names and formatted cells of the benchmark table (text and HTML share them)."""
     heads = ["method", "setting"] + [f"recall@{k}" for k in ks] + [
-        "state err", "fell back", "time ms", "queries/s", "x base", "baseline", "build s", "py MiB", "RSS MiB"]
+        "state err", "fell back", "time ms", "queries/s", "baseline", "base ms", "x base", "build s",
+        "held MiB", "py MiB", "RSS MiB"]
     rows = []
     for r in records:
+        base_ms = None if r.baseline_time_s is None else r.baseline_time_s * 1e3
         rows.append([r.method, r.label] + [_f(r.recall.get(k), ".4f") for k in ks] + [
-            _f(r.state_error_max, ".2e"), _f(r.fell_back, ".2f"), f"{r.time_s * 1e3:.1f}", f"{r.queries_per_s:,.0f}",
-            _f(r.time_ratio, ".2f"), r.baseline or "-", f"{r.build_s:.2f}", f"{r.peak_python_mib:.1f}",
-            f"{r.peak_rss_mib:.1f}"])
+            _f(r.state_error_max, ".2e"), _f(r.fell_back, ".2f"), f"{r.time_s * 1e3:.3g}", f"{r.queries_per_s:,.0f}",
+            r.baseline or "-", _f(base_ms, ".3g"), _f(r.time_ratio, ".2f"), f"{r.build_s:.2f}",
+            _f(r.held_mib, ".2f"), f"{r.peak_python_mib:.1f}", f"{r.peak_rss_mib:.1f}"])
+    return heads, rows
+
+
+def format_table(records: Sequence[BenchRecord], ks: Sequence[int], title: str = "") -> str:
+    """Fixed-width text table of ``records``, one block per N."""
+    heads, rows = table_rows(records, ks)
     widths = [max(len(h), *(len(row[j]) for row in rows)) if rows else len(h) for j, h in enumerate(heads)]
-    left = {0, 1, len(heads) - 4}
+    left = {0, 1, heads.index("baseline")}
 
     def line(cells: Sequence[str]) -> str:
         return "  ".join(c.ljust(w) if j in left else c.rjust(w) for j, (c, w) in enumerate(zip(cells, widths))).rstrip()
@@ -48,6 +67,7 @@ def format_table(records: Sequence[BenchRecord], ks: Sequence[int], title: str =
                     line(heads), line(["-" * w for w in widths])]
             last_n = r.n
         out.append(line(row))
+    out += [""] + [f"{name}: {text}" for name, text in LEGEND]
     return "\n".join(out)
 
 
@@ -102,11 +122,18 @@ def plot_scaling(records: Sequence[BenchRecord], path: Path) -> Path:
     for r in records:
         curves.setdefault(f"{r.method} {r.label}", []).append(r)
     fig, ax = plt.subplots(figsize=(10, 6))
-    for j, (name, group) in enumerate(curves.items()):
+    # one colour per method, and per setting of that method its own marker and dash pattern,
+    # so that many curves stay distinguishable (colour alone would repeat look-alike shades)
+    methods = list(dict.fromkeys(g[0].method for g in curves.values()))
+    markers, dashes = "osD^vP*X", ["-", "--", "-.", ":"]
+    seen: dict[str, int] = {}
+    for name, group in curves.items():
         group = sorted(group, key=lambda r: r.n)
-        style = "--" if group[0].library == "faiss" else "-"
-        ax.plot([r.n for r in group], [r.time_s for r in group], style, marker="o", ms=4,
-                color=plt.cm.tab20(j % 20), label=name)
+        method = group[0].method
+        j = seen[method] = seen.get(method, -1) + 1
+        ax.plot([r.n for r in group], [r.time_s for r in group], linestyle=dashes[j % len(dashes)],
+                marker=markers[j % len(markers)], ms=5, color=plt.cm.tab10(methods.index(method) % 10),
+                label=name)
     ax.set_xscale("log")
     ax.set_yscale("log")
     ax.set_xlabel("stored rows N (log scale)")

@@ -29,7 +29,6 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
-import sys
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
@@ -37,6 +36,7 @@ from typing import Any
 
 from pydantic import ValidationError
 
+from .._util import progress_bar
 from ._data import load_data
 from ._measure import load_average, machine_facts
 from ._methods import count_rows, run_rows
@@ -117,7 +117,7 @@ class BenchReport:
         load = " ".join(f"{v:.2f}" for v in m.load_average_start)
         title = (f"densemem bench: {m.cpu_count} CPUs ({m.usable_cpus} usable), BLAS threads: {threads}, "
                  f"faiss threads {m.faiss_omp_threads}, load {load}; median of {self.spec.repeats} after "
-                 f"{self.spec.warmup} warm-up; x base = time / faiss baseline time (same run)")
+                 f"{self.spec.warmup} warm-up")
         ks = sorted({k for r in self.records for k in r.recall})
         return format_table(self.records, ks, title)
 
@@ -244,22 +244,14 @@ def _make_spec(spec: Any, options: dict[str, Any]) -> BenchSpec:
 
 
 def _ticker(total: int, progress: bool | None) -> tuple[Callable[[str], None], Callable[[], None]]:
-    show = sys.stderr.isatty() if progress is None else bool(progress)
-    bar = None
-    if show:
-        try:
-            from tqdm import tqdm
-
-            bar = tqdm(total=total, desc="bench", file=sys.stderr, leave=False)
-        except ImportError:
-            bar = None
+    bar = progress_bar(total=total, desc="bench", show=None if progress is None else bool(progress),
+                       where="run_benchmark")
 
     def tick(what: str) -> None:
-        if bar is not None:
-            bar.set_postfix_str(what[:40])
-            bar.update(1)
+        bar.set_postfix_str(what[:40])
+        bar.update(1)
 
-    return tick, (bar.close if bar is not None else (lambda: None))
+    return tick, bar.close
 
 
 def run_benchmark(spec: BenchSpec | dict[str, Any] | None = None, *, progress: bool | None = None,

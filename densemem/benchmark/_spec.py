@@ -17,6 +17,8 @@ from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
+from .._validation import SEED_MAX
+
 __all__ = [
     "BINARY_MODELS",
     "DENSE_METHODS",
@@ -115,7 +117,7 @@ class BenchSpec(_Model):
     repeats: int = Field(5, ge=1)
     warmup: int = Field(1, ge=0)
     batch_size: int | None = Field(None, ge=1)
-    seed: int = Field(0, ge=0)
+    seed: int = Field(0, ge=0, le=SEED_MAX)
     sizes: list[PosInt] | None = None
     scaling: bool = False
     large: bool = False
@@ -187,7 +189,12 @@ class BenchRecord(_Model):
     ``warmup`` calls); ``time_ratio = time_s / baseline_time_s``, the baseline
     being the faiss method named in ``baseline``, timed in the same run
     alternately with this row (so its median can differ a little from that
-    faiss row's own ``time_s``).
+    faiss row's own ``time_s``). Memory: ``peak_python_mib`` and
+    ``peak_rss_mib`` are what one search call adds (faiss allocates in C++,
+    which tracemalloc does not see, and reuses freed pages, so its search rows
+    are near 0); ``held_mib`` is what the searched structure holds: the
+    serialised faiss index (``faiss.serialize_index``) for faiss rows, the
+    float32 pattern table plus any index for densemem rows.
     """
 
     dataset: str
@@ -212,6 +219,7 @@ class BenchRecord(_Model):
     build_peak_rss_mib: NonNeg
     peak_python_mib: NonNeg
     peak_rss_mib: NonNeg
+    held_mib: NonNeg | None = None
     baseline: str | None = None
     baseline_time_s: Positive | None = None
     time_ratio: Positive | None = None

@@ -11,6 +11,7 @@ import numbers
 
 import numpy as np
 
+from .._validation import as_rng, check_unit_interval  # noqa: F401  (the shared rules, used as chk.*)
 from ..errors import InputTypeError, InputValueError
 
 STATES = ("pm1", "01")
@@ -112,18 +113,6 @@ def check_int(value: object, name: str, where: str, *, minimum: int) -> int:
     return int(value)
 
 
-def check_fraction(value: object, name: str, where: str) -> float:
-    """Return `value` as float if it is a real number in [0, 1]."""
-    if (
-        isinstance(value, bool)
-        or not isinstance(value, numbers.Real)
-        or not np.isfinite(value)
-        or not 0.0 <= value <= 1.0
-    ):
-        raise InputValueError(f"{where}: `{name}` must be a number in [0, 1]; got {value!r}.")
-    return float(value)
-
-
 def check_vector(value: object, n_units: int, name: str, where: str) -> np.ndarray:
     """Return a finite float64 vector of length `n_units` (a scalar is broadcast)."""
     arr = _numeric_array(value, name, where).astype(np.float64)
@@ -158,16 +147,3 @@ def check_weights(weights: object, where: str) -> np.ndarray:
             f"W = W.T); got max |W - W.T| = {asym:.3g}."
         )
     return (arr + arr.T) / 2.0
-
-
-def as_rng(seed: object, where: str) -> np.random.Generator:
-    """Normalise `seed` (None, int >= 0 or Generator) with ``np.random.default_rng``."""
-    if isinstance(seed, np.random.Generator):
-        return seed
-    if seed is None or (isinstance(seed, numbers.Integral) and not isinstance(seed, bool)):
-        if seed is not None and seed < 0:
-            raise InputValueError(f"{where}: `seed` must be >= 0; got {seed!r}.")
-        return np.random.default_rng(seed)
-    raise InputTypeError(
-        f"{where}: `seed` must be None, an int or a numpy Generator; got {type(seed).__name__}."
-    )

@@ -132,7 +132,7 @@ def run(
     s0: np.ndarray,
     *,
     mode: str,
-    max_sweeps: int,
+    steps: int,
     rng: np.random.Generator,
     free: np.ndarray,
     keep_trajectory: bool,
@@ -140,7 +140,7 @@ def run(
     """Run `mode` dynamics from the +-1 states `s0` (not modified); return plain arrays.
 
     `free` is a boolean mask of the units that may change (damaged units are held).
-    Returned keys: states, energy (n_sweeps + 1, n_probes), sweeps_per_probe, converged,
+    Returned keys: states, energy (n_sweeps + 1, n_probes), steps_per_query, converged,
     two_cycle, trajectory (or None).
     """
     n_probes, n_units = s0.shape
@@ -155,7 +155,7 @@ def run(
     converged = np.zeros(n_probes, dtype=bool)
     cycle = np.zeros(n_probes, dtype=bool)
     prev = None
-    for sweep in range(1, max_sweeps + 1):
+    for sweep in range(1, steps + 1):
         if active.size == 0:
             break
         if mode == "async":
@@ -186,7 +186,7 @@ def run(
     return {
         "states": final.astype(np.int8),
         "energy": np.stack(energies),
-        "sweeps_per_probe": sweeps,
+        "steps_per_query": sweeps,
         "converged": converged,
         "two_cycle": cycle,
         "trajectory": None if traj is None else np.stack(traj),

@@ -254,20 +254,21 @@ class BinaryMemory:
     def _offset(self) -> float:
         return rules.energy_offset_01(self._w, self._theta) if self._states == "01" else 0.0
 
-    def retrieve(self, probes: Any, *, mode: str = "async", max_sweeps: int = 100,
+    def retrieve(self, queries: Any, *, mode: str = "async", steps: int = 100,
                  seed: Any = None, return_trajectory: bool = False) -> BinaryRetrieval:
-        """Run the update dynamics from each probe until a fixed point or `max_sweeps`.
+        """Run the update dynamics from each query until a fixed point or `steps` sweeps.
 
         Parameters
         ----------
-        probes : array_like of shape (n_probes, n_units) or (n_units,)
+        queries : array_like of shape (n_queries, n_units) or (n_units,)
             Starting states in the memory's form. Not modified.
         mode : {"async", "sync"}, default "async"
             ``"async"``: one unit at a time in a random order drawn per sweep from `seed`,
-            the same order for every probe of the batch; every unit sees the latest states.
+            the same order for every query of the batch; every unit sees the latest states.
             ``"sync"``: all units at once from the previous state; stops at a fixed point or a
             2-cycle.
-        max_sweeps : int >= 1, default 100
+        steps : int >= 1, default 100
+            Most steps; one step is one sweep over every unit.
         seed : int, numpy Generator or None
         return_trajectory : bool, default False
             Also return the states after every sweep.
@@ -279,7 +280,7 @@ class BinaryMemory:
         Raises
         ------
         InputValueError
-            Bad mode, max_sweeps, probe values or probe width.
+            Bad mode, steps, query values or query width.
 
         Examples
         --------
@@ -289,7 +290,7 @@ class BinaryMemory:
         ([[1, 1, 1, -1, -1, -1]], [True])
         """
         return retrieve_batch("BinaryMemory", self._engine, ~self._frozen, self._states,
-                         self.n_units, probes, mode, max_sweeps, seed, return_trajectory,
+                         self.n_units, queries, mode, steps, seed, return_trajectory,
                          self._offset())
 
     def damaged(self, *, units: float = 0.0, unit_mode: str = "delete", weights: float = 0.0,
@@ -316,10 +317,10 @@ class BinaryMemory:
         2
         """
         where = "BinaryMemory.damaged"
-        units = chk.check_fraction(units, "units", where)
-        weights = chk.check_fraction(weights, "weights", where)
+        units = chk.check_unit_interval(units, name="units", where=where)
+        weights = chk.check_unit_interval(weights, name="weights", where=where)
         unit_mode = chk.check_choice(unit_mode, "unit_mode", ("delete", "clamp"), where)
-        rng = chk.as_rng(seed, where)
+        rng = chk.as_rng(seed, where=where)
         w, th, hit = rules.damage(self._w, self._theta, unit_fraction=units,
                                   unit_mode=unit_mode, weight_fraction=weights, rng=rng)
         out = BinaryMemory.__new__(BinaryMemory)
@@ -452,11 +453,11 @@ class DenseBinaryMemory:
                             self.n_units, "states", where).astype(np.float64)
         return self._engine.energy(s, self._engine.start(s))
 
-    def retrieve(self, probes: Any, *, mode: str = "async", max_sweeps: int = 100,
+    def retrieve(self, queries: Any, *, mode: str = "async", steps: int = 100,
                  seed: Any = None, return_trajectory: bool = False) -> BinaryRetrieval:
         """Run single-unit lower-energy updates from each probe; see BinaryMemory.retrieve.
 
-        ``mode="sync"`` with ``max_sweeps=1`` evaluates every unit once from the probe (the
+        ``mode="sync"`` with ``steps=1`` evaluates every unit once from the probe (the
         one-step update used in capacity estimates).
 
         Examples
@@ -467,7 +468,7 @@ class DenseBinaryMemory:
         """
         free = np.ones(self.n_units, dtype=bool)
         return retrieve_batch("DenseBinaryMemory", self._engine, free, self._states, self.n_units,
-                         probes, mode, max_sweeps, seed, return_trajectory)
+                         queries, mode, steps, seed, return_trajectory)
 
     def __repr__(self) -> str:
         deg = "" if self._interaction == "exponential" else f", degree={self._degree}"

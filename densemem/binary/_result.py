@@ -16,50 +16,50 @@ from ._dynamics import Engine, run
 
 @dataclass(frozen=True, slots=True)
 class BinaryRetrieval:
-    """Outcome of retrieving a batch of probes from a binary memory.
+    """Outcome of retrieving a batch of queries from a binary memory.
 
     Attributes
     ----------
-    states : ndarray of int8, shape (n_probes, n_units)
+    states : ndarray of int8, shape (n_queries, n_units)
         Final states, in the memory's form (-1/+1 or 0/1).
-    energy : ndarray of float64, shape (sweeps + 1, n_probes)
-        Row 0 is the energy of the probes, row t the energy after sweep t. A probe that has
+    energy : ndarray of float64, shape (steps + 1, n_queries)
+        Row 0 is the energy of the queries, row t the energy after step t. A query that has
         stopped keeps its state, so its energy repeats in later rows.
-    sweeps : int
-        Sweeps run on the batch (the slowest probe).
-    sweeps_per_probe : ndarray of int64, shape (n_probes,)
-        Sweeps each probe took, counting the sweep that confirmed its fixed point or cycle.
-    converged : ndarray of bool, shape (n_probes,)
-        The probe reached a fixed point (a full sweep changed no unit).
-    two_cycle : ndarray of bool, shape (n_probes,)
-        Synchronous mode only: the probe ended alternating between two states.
+    steps : int
+        Steps run on the batch (the slowest query); one step is one sweep over every unit.
+    steps_per_query : ndarray of int64, shape (n_queries,)
+        Steps each query took, counting the step that confirmed its fixed point or cycle.
+    converged : ndarray of bool, shape (n_queries,)
+        The query reached a fixed point (a full sweep changed no unit).
+    two_cycle : ndarray of bool, shape (n_queries,)
+        Synchronous mode only: the query ended alternating between two states.
     mode : str
         ``"async"`` or ``"sync"``.
-    trajectory : ndarray of int8, shape (sweeps + 1, n_probes, n_units), or None
-        States after every sweep, when asked for with ``return_trajectory=True``.
+    trajectory : ndarray of int8, shape (steps + 1, n_queries, n_units), or None
+        States after every step, when asked for with ``return_trajectory=True``.
 
     Examples
     --------
     >>> from densemem.binary import BinaryMemory
     >>> BinaryMemory([[1, -1, 1, -1]]).retrieve([[1, -1, 1, 1]], seed=0)
-    BinaryRetrieval(mode='async', n_probes=1, n_units=4, sweeps=2, converged=1/1)
+    BinaryRetrieval(mode='async', n_queries=1, n_units=4, steps=2, converged=1/1)
     """
 
     states: np.ndarray
     energy: np.ndarray
-    sweeps: int
-    sweeps_per_probe: np.ndarray
+    steps: int
+    steps_per_query: np.ndarray
     converged: np.ndarray
     two_cycle: np.ndarray
     mode: str
     trajectory: np.ndarray | None = None
 
     def __repr__(self) -> str:
-        n_probes, n_units = self.states.shape
+        n_queries, n_units = self.states.shape
         extra = f", two_cycle={int(self.two_cycle.sum())}" if self.mode == "sync" else ""
         return (
-            f"BinaryRetrieval(mode={self.mode!r}, n_probes={n_probes}, n_units={n_units}, "
-            f"sweeps={self.sweeps}, converged={int(self.converged.sum())}/{n_probes}{extra})"
+            f"BinaryRetrieval(mode={self.mode!r}, n_queries={n_queries}, n_units={n_units}, "
+            f"steps={self.steps}, converged={int(self.converged.sum())}/{n_queries}{extra})"
         )
 
     def to_dict(self) -> dict[str, Any]:
@@ -74,10 +74,10 @@ class BinaryRetrieval:
         """
         out: dict[str, Any] = {
             "mode": self.mode,
-            "sweeps": self.sweeps,
+            "steps": self.steps,
             "states": self.states.tolist(),
             "energy": self.energy.tolist(),
-            "sweeps_per_probe": self.sweeps_per_probe.tolist(),
+            "steps_per_query": self.steps_per_query.tolist(),
             "converged": self.converged.tolist(),
             "two_cycle": self.two_cycle.tolist(),
         }
@@ -92,7 +92,7 @@ def user_form(s: np.ndarray, states: str) -> np.ndarray:
 
 
 def retrieve_batch(owner: str, engine: Engine, free: np.ndarray, states: str, n_units: int,
-                   probes: Any, mode: Any, max_sweeps: Any, seed: Any,
+                   queries: Any, mode: Any, steps: Any, seed: Any,
                    return_trajectory: bool, offset: float = 0.0) -> BinaryRetrieval:
     """Validate the retrieve arguments of `owner`, run the dynamics, wrap the result.
 
@@ -100,18 +100,18 @@ def retrieve_batch(owner: str, engine: Engine, free: np.ndarray, states: str, n_
     """
     where = f"{owner}.retrieve"
     mode = chk.check_choice(mode, "mode", chk.MODES, where)
-    max_sweeps = chk.check_int(max_sweeps, "max_sweeps", where, minimum=1)
-    rng = chk.as_rng(seed, where)
-    s0 = chk.check_width(chk.check_binary(probes, "probes", states, where), n_units, "probes",
+    steps = chk.check_int(steps, "steps", where, minimum=1)
+    rng = chk.as_rng(seed, where=where)
+    s0 = chk.check_width(chk.check_binary(queries, "queries", states, where), n_units, "queries",
                          where)
-    out = run(engine, s0, mode=mode, max_sweeps=max_sweeps, rng=rng, free=free,
+    out = run(engine, s0, mode=mode, steps=steps, rng=rng, free=free,
               keep_trajectory=bool(return_trajectory))
     traj = out["trajectory"]
     return BinaryRetrieval(
         states=user_form(out["states"], states),
         energy=out["energy"] + offset,
-        sweeps=int(out["sweeps_per_probe"].max()),
-        sweeps_per_probe=out["sweeps_per_probe"],
+        steps=int(out["steps_per_query"].max()),
+        steps_per_query=out["steps_per_query"],
         converged=out["converged"],
         two_cycle=out["two_cycle"],
         mode=mode,

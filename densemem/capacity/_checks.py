@@ -7,7 +7,6 @@ and echoes what came.
 from __future__ import annotations
 
 import numbers
-import sys
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -16,8 +15,9 @@ import numpy as np
 
 from . import _models as cm
 from ._search import CI_METHODS, DECISIONS
-from .._validation import check_nonneg_float, check_positive_int
-from ..errors import InputTypeError, InputValueError, MissingExtraError
+from .._validation import SEED_MAX, check_nonneg_float, check_positive_int, check_seed
+from .._util import progress_bar as make_bar, stderr_is_tty
+from ..errors import InputTypeError, InputValueError
 
 
 def choice(value: Any, name: str, options: Sequence[str], where: str) -> str:
@@ -28,7 +28,7 @@ def choice(value: Any, name: str, options: Sequence[str], where: str) -> str:
 
 
 def check_corruption(value: Any, where: str, name: str = "corruption") -> tuple[str, float] | None:
-    """None, ("flip"|"mask", fraction in [0, 1]), ("gauss", sigma >= 0), or "kind:level"."""
+    """None, ("flip"|"mask", fraction in [0, 1]), ("gaussian", sigma >= 0), or "kind:level"."""
     if value is None or value == "none":
         return None
     if isinstance(value, str):
@@ -40,11 +40,11 @@ def check_corruption(value: Any, where: str, name: str = "corruption") -> tuple[
     if not (isinstance(value, (tuple, list)) and len(value) == 2 and value[0] in cm.CORRUPTIONS):
         raise InputValueError(
             f"{where}: `{name}` must be None, ('flip', fraction), ('mask', fraction) or "
-            f"('gauss', sigma) (or a string like 'flip:0.1'); got {value!r}."
+            f"('gaussian', sigma) (or a string like 'flip:0.1'); got {value!r}."
         )
     kind, level = value
     level = check_nonneg_float(level, name=f"{name} level", where=where)
-    if kind != "gauss" and level > 1:
+    if kind != "gaussian" and level > 1:
         raise InputValueError(f"{where}: the {kind} fraction must be in [0, 1]; got {level!r}.")
     return kind, level
 
@@ -64,44 +64,34 @@ def one_d(value: Any, name: str, where: str, what: str) -> list[Any]:
     return items
 
 
+def _items(value: Any, name: str, where: str, kind: type, plural: str, one: str) -> list[Any]:
+    items = one_d(value, name, where, plural)
+    for i, x in enumerate(items):
+        if isinstance(x, bool) or not isinstance(x, kind):
+            raise InputTypeError(f"{where}: every entry of `{name}` must be {one}; got {x!r} at position {i}.")
+    return items
+
+
 def int_items(value: Any, name: str, where: str) -> list[int]:
     """`value` as a non-empty list of Python ints (any 1-D sequence or integer array)."""
-    items = one_d(value, name, where, "integers")
-    for i, x in enumerate(items):
-        if isinstance(x, bool) or not isinstance(x, numbers.Integral):
-            raise InputTypeError(f"{where}: every entry of `{name}` must be an integer; got {x!r} at "
-                                 f"position {i}.")
-    return [int(x) for x in items]
+    return [int(x) for x in _items(value, name, where, numbers.Integral, "integers", "an integer")]
 
 
 def real_items(value: Any, name: str, where: str) -> list[float]:
     """`value` as a non-empty list of Python floats (any 1-D sequence or numeric array)."""
-    items = one_d(value, name, where, "numbers")
-    for i, x in enumerate(items):
-        if isinstance(x, bool) or not isinstance(x, numbers.Real):
-            raise InputTypeError(f"{where}: every entry of `{name}` must be a number; got {x!r} at "
-                                 f"position {i}.")
-    return [float(x) for x in items]
+    return [float(x) for x in _items(value, name, where, numbers.Real, "numbers", "a number")]
 
 
 def check_progress(progress: Any, where: str) -> bool:
     if progress is None:
-        progress = sys.stderr.isatty()
+        progress = stderr_is_tty()
     if not isinstance(progress, bool):
         raise InputTypeError(f"{where}: `progress` must be True, False or None; got {progress!r}.")
     return progress
 
 
 def progress_bar(progress: Any, total: int | None, desc: str, where: str) -> Any:
-    if not check_progress(progress, where):
-        return None
-    try:
-        from tqdm.auto import tqdm
-    except ImportError:
-        raise MissingExtraError(
-            f"{where}: progress bars need tqdm; install it with: pip install densemem[progress]"
-        ) from None
-    return tqdm(total=total, desc=desc, file=sys.stderr, leave=False)
+    return make_bar(total=total, desc=desc, show=check_progress(progress, where), where=where)
 
 
 def setup(where: str, model: Any, dim: Any, patterns: Any, corruption: Any, damage: Any,
@@ -119,8 +109,8 @@ def setup(where: str, model: Any, dim: Any, patterns: Any, corruption: Any, dama
     default_steps = 50 if m.binary else 1
     steps = default_steps if steps is None else check_positive_int(steps, name="steps", where=where)
     if seed is None:
-        seed = int(np.random.SeedSequence().entropy % (2**63))
-    seed = check_positive_int(seed, name="seed", where=where, minimum=0)
+        seed = int(np.random.SeedSequence().entropy % (SEED_MAX + 1))
+    seed = check_seed(seed, where=where)
     choice(ci, "ci", CI_METHODS, where)
     confidence = check_nonneg_float(confidence, name="confidence", where=where, strict=True)
     if confidence >= 1:

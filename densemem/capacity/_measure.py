@@ -29,7 +29,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from pathlib import Path
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
@@ -43,6 +43,7 @@ from ._report import (
     check_output_path,
 )
 from ._search import interval, search_capacity
+from .._validation import SEED_MAX
 from ..errors import InputTypeError, InputValueError
 
 
@@ -87,7 +88,7 @@ def estimate_capacity(
     patterns : {"pm1", "unit", "gaussian"} or array_like of shape (n_rows, dim)
         Random -1/+1, random unit vectors, N(0, 1) entries, or rows of your own array drawn
         without replacement (binary models: "pm1" or a -1/+1 or 0/1 array). Never modified.
-    corruption : None, ("flip", fraction), ("mask", fraction) or ("gauss", sigma)
+    corruption : None, ("flip", fraction), ("mask", fraction) or ("gaussian", sigma)
         Probe corruption; see :func:`densemem.capacity._models.corrupt`. Strings such as
         "flip:0.1" are accepted.
     success : {"fixed_point", "overlap", "top1"}, default "fixed_point"
@@ -329,17 +330,17 @@ def robustness_curve(
         Patterns stored in every trial (at most the rows of a `patterns` array).
     levels : 1-D sequence or array of numbers, default (0, 0.05, 0.1, 0.15, 0.2, 0.3, 0.4)
         The corruption or damage levels, e.g. ``np.linspace(0, 0.4, 9)``. Fractions in
-        [0, 1], except the sigma of ``kind="gauss"`` (>= 0).
-    kind : {"flip", "gauss", "mask", "damage_units", "zero_weights", "zero_coords"}
-        flip / gauss / mask: probe corruption at each level (as in estimate_capacity).
+        [0, 1], except the sigma of ``kind="gaussian"`` (>= 0).
+    kind : {"flip", "gaussian", "mask", "damage_units", "zero_weights", "zero_coords"}
+        flip / gaussian / mask: probe corruption at each level (as in estimate_capacity).
         damage_units: that fraction of units is deleted (their weights zeroed; they keep the
         probe's value), zero_weights: that fraction of weight pairs is zeroed (both
         BinaryMemory rules only, via BinaryMemory.damaged). zero_coords: that fraction of
         coordinates of every stored pattern is zeroed (softmax model only); success is judged
         against the undamaged pattern.
-    corruption : None, ("flip", fraction), ("mask", fraction) or ("gauss", sigma)
+    corruption : None, ("flip", fraction), ("mask", fraction) or ("gaussian", sigma)
         Probe corruption applied at every level of a damage sweep (must be None for kind in
-        flip / gauss / mask, where the level is the corruption).
+        flip / gaussian / mask, where the level is the corruption).
     patterns : {"pm1", "unit", "gaussian"} or array_like of shape (n_rows, dim)
         As for :func:`estimate_capacity`; never modified.
     success : {"fixed_point", "overlap", "top1"}, default "fixed_point"
@@ -431,17 +432,17 @@ class CapacitySpec(BaseModel):
 
     models: list[str] = Field(default_factory=lambda: ["hebbian", "storkey", "pseudo_inverse"],
                               min_length=1)
-    dims: list[int] = Field(default_factory=lambda: [25, 50, 100, 200], min_length=1)
+    dims: list[Annotated[int, Field(ge=2)]] = Field(default_factory=lambda: [25, 50, 100, 200], min_length=1)
     patterns: Literal["pm1", "unit", "gaussian"] = "pm1"
     patterns_file: str | None = None  # an array file the caller loads and passes as patterns
-    corruption: str | None = None  # "flip:0.1", "mask:0.25", "gauss:0.5"
+    corruption: str | None = None  # "flip:0.1", "mask:0.25", "gaussian:0.5"
     success: Literal["fixed_point", "overlap", "top1"] = "fixed_point"
     eps: float | None = Field(default=None, ge=0)
     delta: float = Field(default=0.05, gt=0, lt=1)
     n_trials: int = Field(default=5, ge=1)
     min_probes: int = Field(default=256, ge=1)
     max_probes: int = Field(default=256, ge=1)
-    seed: int = Field(default=0, ge=0)
+    seed: int = Field(default=0, ge=0, le=SEED_MAX)
     max_patterns: int = Field(default=4096, ge=1)
     steps: int | None = Field(default=None, ge=1)
     mode: Literal["async", "sync"] = "async"

@@ -20,13 +20,14 @@ from typing import Any
 
 import numpy as np
 
+from .._synthetic import corrupt as synthetic_corrupt
 from ..binary._memory import BinaryMemory, DenseBinaryMemory
 from ..dense import DenseMemory
 from ..errors import InputTypeError, InputValueError
 
 PAIRWISE = ("hebbian", "storkey", "pseudo_inverse")
 PATTERN_KINDS = ("pm1", "unit", "gaussian")
-CORRUPTIONS = ("flip", "gauss", "mask")
+CORRUPTIONS = ("flip", "gaussian", "mask")  # kinds of densemem._synthetic
 SUCCESS = ("fixed_point", "overlap", "top1")
 SCOPES = ("pattern", "all")  # judge each probed pattern, or each stored set as a whole
 DAMAGES = ("damage_units", "zero_weights", "zero_coords")
@@ -181,32 +182,15 @@ def corrupt(targets: np.ndarray, corruption: tuple[str, float] | None, binary: b
             rng_pos: np.random.Generator, rng_val: np.random.Generator) -> np.ndarray:
     """Corrupted copies of `targets` (B, d); `targets` is not modified.
 
-    flip: exactly round(level * d) coordinates per probe change sign (a bit flip for +-1).
-    mask: exactly round(level * d) coordinates are erased: set to 0 (continuous) or to a
-    fresh random +-1 value (binary; a binary state has no 0). gauss: add level times the
-    pattern's RMS coordinate times N(0, 1) noise; binary models then take the sign (0 -> +1).
+    The kinds "flip", "mask" and "gaussian" of :mod:`densemem._synthetic` (one meaning
+    across densemem): `rng_pos` chooses the coordinates (or draws the noise), `rng_val` the
+    new values of masked binary coordinates.
     """
-    out = targets.copy()
     if corruption is None:
-        return out
+        return targets.copy()
     kind, level = corruption
-    b, d = targets.shape
-    if kind == "gauss":
-        rms = np.linalg.norm(targets, axis=1, keepdims=True) / np.sqrt(d)
-        out += level * rms * rng_pos.standard_normal((b, d))
-        return np.where(out >= 0, 1.0, -1.0) if binary else out
-    m = int(round(level * d))
-    if m == 0:
-        return out
-    pick = np.argsort(rng_pos.random((b, d)), axis=1)[:, :m]
-    rows = np.arange(b)[:, None]
-    if kind == "flip":
-        out[rows, pick] = -out[rows, pick]
-    elif binary:
-        out[rows, pick] = np.where(rng_val.random((b, d)) < 0.5, 1.0, -1.0)[rows, pick]
-    else:
-        out[rows, pick] = 0.0
-    return out
+    return synthetic_corrupt(targets, kind, level, rng_pos, binary=binary, value_rng=rng_val).astype(
+        targets.dtype, copy=False)
 
 
 def _binary_memory(model: Model, stored: np.ndarray, setup: Setup, trial: int) -> Any:
@@ -282,7 +266,7 @@ def run_trial(model: Model, setup: Setup, k: int, trial: int) -> np.ndarray:
         ok = _continuous(model, stored, probes, targets, setup)
     else:
         mem = _binary_memory(model, stored, setup, trial)
-        res = mem.retrieve(probes.astype(np.int8), mode=setup.mode, max_sweeps=setup.steps,
+        res = mem.retrieve(probes.astype(np.int8), mode=setup.mode, steps=setup.steps,
                            seed=_stream(setup, trial, 2))
         ok = _judge_binary(res.states.astype(np.float64), targets, stored, setup)
     return np.array([ok.all()]) if setup.scope == "all" else ok

@@ -48,16 +48,19 @@ def plot_curve(curve: Any, path: Any, *, title: str | None = None) -> Path:
         dims = np.array([r.dim for r in reps], float)
         caps = np.array([max(r.capacity, 0.5) for r in reps], float)
         per = "every pattern of a set" if scope == "all" else "per probed pattern"
-        tag = f"{label} measured ({reps[0].success}, {per}, corruption {corruption})"
-        ax.plot(dims, caps, "o-", color=color, label=tag)
         capped = np.array([r.capped for r in reps])
-        if capped.any():
-            ax.plot(dims[capped], caps[capped], "^", color=color, ms=10, mfc="none")
+        tag = f"{label} measured ({reps[0].success}, {per}, corruption {corruption})"
+        if (~capped).any():  # only searches that found a failing count are measured capacities
+            ax.plot(dims[~capped], caps[~capped], "o-", color=color, label=tag)
+        if capped.any():  # the search cap passed: a lower bound, drawn apart and never joined to the line
+            ax.plot(dims[capped], caps[capped], "^", color=color, ms=9, mfc="none", linestyle="none",
+                    label=f"{label}: search cap reached (capacity is at least this)")
         _draw_theory(ax, label, corruption, dims, color)
     ax.set_yscale("log")
     ax.set_xlabel("dimension / units N")
     ax.set_ylabel("capacity (patterns)")
-    ax.set_title(title or "Capacity: measured (markers) and published asymptotic (dashed)")
+    ax.set_title(title or "Capacity: measured (dots), search cap reached (open triangles), "
+                          "published asymptotic (dashed)")
     ax.grid(True, which="both", alpha=0.3)
     ax.legend(fontsize=6.5, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
     path = Path(path)
@@ -78,4 +81,4 @@ def _draw_theory(ax: Any, label: str, corruption: str, dims: np.ndarray, color: 
     styles = ("--", ":", "-.")
     for k, c in enumerate(curves_for(model.kind, model.param, _flip_level(corruption))):
         ax.plot(grid, np.exp(c.log_capacity(grid)), styles[k % 3], color=color, alpha=0.7,
-                lw=1.2, label=c.label)
+                lw=1.2, label=c.label.replace(" (from memory)", ""))

@@ -9,29 +9,17 @@ import csv
 import io
 import json
 import os
-import secrets
 from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-
+from .._util import to_plain, write_atomic
 from ..errors import InputTypeError, InputValueError
 
 TABLE_COLUMNS = (
-    "model", "dim", "capacity", "rate", "ci_low", "ci_high", "first_fail", "fail_rate",
+    "model", "dim", "capacity", "success_rate", "ci_low", "ci_high", "first_fail", "success_at_first_fail",
     "capped", "patterns", "corruption", "success", "scope", "delta", "n_trials", "seed",
 )
-
-
-def _plain(value: Any) -> Any:
-    if isinstance(value, np.ndarray):
-        return value.tolist()
-    if isinstance(value, np.generic):
-        return value.item()
-    if isinstance(value, tuple):
-        return [_plain(v) for v in value]
-    return value
 
 
 def check_output_path(path: Any, *, overwrite: Any, name: str, where: str) -> Path:
@@ -50,58 +38,12 @@ def check_output_path(path: Any, *, overwrite: Any, name: str, where: str) -> Pa
     return p
 
 
-def write_atomic(path: Path, text: str, *, overwrite: bool, where: str) -> Path:
-    """Write `text` to a temp file beside `path`, fsync it, then move it into place.
-
-    Without `overwrite` the move is a hard link, which fails if `path` appeared meanwhile
-    (falls back to a checked rename where the file system has no hard links).
-    """
-    tmp = path.parent / f".{path.name}.tmp-{os.getpid()}-{secrets.token_hex(4)}"
-    try:
-        with open(tmp, "x", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        if overwrite:
-            os.replace(tmp, path)
-        else:
-            _move_new(tmp, path, where)
-    finally:
-        tmp.unlink(missing_ok=True)
-    _fsync_dir(path.parent)
-    return path
-
-
-def _move_new(tmp: Path, path: Path, where: str) -> None:
-    try:
-        os.link(tmp, path)
-    except FileExistsError:
-        raise InputValueError(f"{where}: {str(path)!r} exists; pass overwrite=True to replace it.") from None
-    except OSError:  # no hard links here (some network / FAT file systems)
-        if path.exists():
-            raise InputValueError(f"{where}: {str(path)!r} exists; pass overwrite=True to replace it.") from None
-        os.replace(tmp, path)
-
-
-def _fsync_dir(folder: Path) -> None:
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-    except OSError:  # e.g. Windows cannot open folders
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
-
-
 class _Plain:
     __slots__ = ()
 
     def to_dict(self) -> dict[str, Any]:
         """Plain-Python (JSON-ready) copy of every field."""
-        return {f.name: _plain(getattr(self, f.name)) for f in fields(self)}  # type: ignore[arg-type]
+        return {f.name: to_plain(getattr(self, f.name)) for f in fields(self)}  # type: ignore[arg-type]
 
 
 @dataclass(frozen=True, slots=True)
@@ -161,13 +103,18 @@ class CapacityReport(_Plain):
         return self.rates[j], self.ci_low[j], self.ci_high[j]
 
     def row(self) -> dict[str, Any]:
-        """One table row: the capacity, its rate and interval, the first failing count."""
+        """One table row: the capacity, its success rate and interval, the first failing count.
+
+        ``success_rate`` is the success rate measured at ``capacity`` patterns;
+        ``success_at_first_fail`` the (failing) success rate at ``first_fail``.
+        When ``capped`` the search stopped at its cap: ``capacity`` is a lower bound.
+        """
         at, fail = self._at(self.capacity), self._at(self.first_fail)
         return {
             "model": self.model, "dim": self.dim, "capacity": self.capacity,
-            "rate": at[0] if at else None, "ci_low": at[1] if at else None,
+            "success_rate": at[0] if at else None, "ci_low": at[1] if at else None,
             "ci_high": at[2] if at else None, "first_fail": self.first_fail,
-            "fail_rate": fail[0] if fail else None, "capped": self.capped,
+            "success_at_first_fail": fail[0] if fail else None, "capped": self.capped,
             "patterns": self.patterns, "corruption": self.corruption, "success": self.success,
             "scope": self.scope, "delta": self.delta, "n_trials": self.n_trials, "seed": self.seed,
         }

@@ -14,16 +14,17 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import re
 import sys
 import traceback
-from pathlib import Path
+import warnings
 from typing import Any, Iterator, Sequence
 
 import numpy as np
 
 from . import _output as out
-from ._specs import BuildSpec, DemoSpec, InfoSpec, NearestSpec, RetrieveSpec, SpecError, make_spec
-from ..errors import DenseMemError
+from ._specs import BuildSpec, DemoSpec, InfoSpec, NearestSpec, RebalanceSpec, RetrieveSpec, SpecError, make_spec
+from ..errors import DenseMemError, InputValueError
 
 __all__ = ["main", "build_parser"]
 
@@ -91,7 +92,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("store", help="store folder to write (its parent must exist)")
     p.add_argument("--column", help="array (.npz) or column (.parquet) holding the vectors")
     p.add_argument("--id-column", help="array / column / csv header (or 0-based number) holding ids")
-    p.add_argument("--normalize", action="store_true", help="L2-normalise patterns and queries (cosine geometry)")
+    p.add_argument("--normalize", action="store_true", help="L2-normalize patterns and queries (cosine geometry)")
     p.add_argument("--beta", type=float, default=1.0, help="default inverse temperature (default 1.0)")
     p.add_argument("--index", choices=["hnsw", "ivf"], help="also build and store a candidate index")
     p.add_argument("--overwrite", action="store_true", help="replace an existing store at STORE")
@@ -104,6 +105,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("store", help="store folder")
     p.add_argument("--no-verify", dest="verify", action="store_false", help="skip the sha256 checks")
     p.set_defaults(run=_run_info)
+
+    p = _sub(subs, "rebalance", "split and merge the shards of a sharded store to a target count or size",
+             "densemem rebalance archive-shards --shards 8")
+    p.add_argument("store", help="sharded store folder written by `densemem build --shards`")
+    size = p.add_mutually_exclusive_group(required=True)
+    size.add_argument("--shards", type=int, help="the number of shards to end with")
+    size.add_argument("--rows", type=int, help="about this many rows per shard")
+    p.set_defaults(run=_run_rebalance)
 
     p = _sub(subs, "retrieve", "retrieve stored patterns by the softmax update",
              "densemem retrieve archive-store queries.npy --beta 20 --steps 3 -k 5 --json")
@@ -132,6 +141,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--photos", type=int, default=4000, help="invented photos in the archive (default 4000)")
     p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     p.add_argument("--no-plots", dest="plots", action="store_false", help="skip the PNG plots")
+    p.add_argument("--overwrite", action="store_true", help="write into OUT even when it holds files")
     p.set_defaults(run=_run_demo)
 
     from ._jobs import register
@@ -147,13 +157,18 @@ Result = tuple[Any, str]
 def _run_build(a: argparse.Namespace) -> Result:
     from ..dense import DenseMemory
     from ..store._readers import read_embeddings
+    from ._hints import collapse_hint
 
     s = make_spec(BuildSpec, vars(a), positional=("input", "store"))
     emb = read_embeddings(s.input, column=s.column, id_column=s.id_column)
+    if s.shards is not None and s.shards > emb.vectors.shape[0]:
+        raise SpecError(f"--shards must be at most the number of rows ({emb.vectors.shape[0]} in "
+                        f"{str(s.input)!r}) so that no shard is empty; got {s.shards}.")
+    if s.shards is not None and s.index:
+        raise SpecError("--index cannot be combined with --shards (shards use exact or certified retrieval).")
     mem = DenseMemory.from_array(emb.vectors, emb.ids, normalize=s.normalize, beta=s.beta)
+    hint = collapse_hint(mem, "build again with --normalize --overwrite (cosine geometry)")
     if s.shards is not None:
-        if s.index:
-            raise SpecError("--index cannot be combined with --shards (shards use exact or certified retrieval).")
         from ..sharding._memory import shard_memory
 
         shard_memory(mem, s.store, s.shards, by=s.shard_by, overwrite=s.overwrite)
@@ -162,15 +177,16 @@ def _run_build(a: argparse.Namespace) -> Result:
         text = out.table(["store", "patterns", "dim", "normalize", "beta", "shards"],
                          [[str(s.store), len(mem), mem.dim, mem.normalize, mem.beta, s.shards]],
                          title=f"built from {emb.source} ({emb.kind})")
-        return data, text
-    index = mem.build_index(s.index) if s.index else None
-    mem.save(s.store, overwrite=s.overwrite)
-    data = {"store": str(s.store), "source": emb.to_dict(), "count": len(mem), "dim": mem.dim,
-            "normalize": mem.normalize, "beta": mem.beta, "index": index}
-    text = out.table(["store", "patterns", "dim", "normalize", "beta", "index"],
-                     [[str(s.store), len(mem), mem.dim, mem.normalize, mem.beta, s.index]],
-                     title=f"built from {emb.source} ({emb.kind})")
-    return data, text
+    else:
+        index = mem.build_index(s.index) if s.index else None
+        mem.save(s.store, overwrite=s.overwrite)
+        data = {"store": str(s.store), "source": emb.to_dict(), "count": len(mem), "dim": mem.dim,
+                "normalize": mem.normalize, "beta": mem.beta, "index": index}
+        text = out.table(["store", "patterns", "dim", "normalize", "beta", "index"],
+                         [[str(s.store), len(mem), mem.dim, mem.normalize, mem.beta, s.index]],
+                         title=f"built from {emb.source} ({emb.kind})")
+    data["warnings"] = [] if hint is None else [hint]
+    return data, text if hint is None else f"{text}\n\n{hint}"
 
 
 def _run_info(a: argparse.Namespace) -> Result:
@@ -194,10 +210,26 @@ def _run_info(a: argparse.Namespace) -> Result:
     return info.to_dict(), head + "\n\n" + out.table(["file", "bytes", "sha256 (first 16)"], rows)
 
 
-def _is_sharded(store: Any) -> bool:
-    from ..sharding._store import TOP_MANIFEST
+def _run_rebalance(a: argparse.Namespace) -> Result:
+    from ..sharding import open_sharded
 
-    return (Path(store) / TOP_MANIFEST).is_file()
+    s = make_spec(RebalanceSpec, vars(a), positional=("store",))
+    if not _is_sharded(s.store):
+        raise SpecError(f"STORE: {str(s.store)!r} is not a sharded store (build one with --shards).")
+    sm = open_sharded(s.store)
+    before = sm.counts
+    sm.rebalance(n_shards=s.shards, rows_per_shard=s.rows)
+    data = {"store": str(s.store), "counts_before": list(before), "counts_after": list(sm.counts)}
+    text = out.table(["store", "shards before", "shards after", "rows per shard"],
+                     [[str(s.store), len(before), sm.n_shards, f"{min(sm.counts)}-{max(sm.counts)}"]],
+                     title="rebalance")
+    return data, text
+
+
+def _is_sharded(store: Any) -> bool:
+    from ..sharding import is_sharded_store
+
+    return is_sharded_store(store)
 
 
 @contextlib.contextmanager
@@ -208,6 +240,9 @@ def _opened(s: Any) -> Iterator[tuple[Any, np.ndarray, list[Any]]]:
 
     mem = open_store(s.store, mmap=s.mmap)
     emb = read_embeddings(s.queries, column=s.column, id_column=s.id_column)
+    if emb.vectors.shape[0] == 0:
+        raise InputValueError(f"QUERIES: {str(s.queries)!r} holds no query vectors (0 rows); "
+                              "give a file with at least one row.")
     names = emb.ids.tolist() if emb.ids is not None else list(range(emb.vectors.shape[0]))
     if not s.scheduler:
         yield mem, emb.vectors, names
@@ -270,7 +305,7 @@ def _run_demo(a: argparse.Namespace) -> Result:
     from .demo import run_demo
 
     s = make_spec(DemoSpec, vars(a))
-    report = run_demo(s.out, n_photos=s.photos, seed=s.seed, plots=s.plots, quiet=a.quiet)
+    report = run_demo(s.out, n_photos=s.photos, seed=s.seed, plots=s.plots, quiet=a.quiet, overwrite=s.overwrite)
     return report.to_dict(), report.summary_text()
 
 
@@ -284,7 +319,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         return int(exc.code or 0)
     prog = f"{PROG} {args.command}"
     try:
-        data, text = args.run(args)
+        with warnings.catch_warnings():
+            warnings.showwarning = _show_warning(prog)
+            data, text = args.run(args)
     except SpecError as exc:
         sys.stderr.write(f"{prog}: error: {exc}\n")
         if args.debug:
@@ -293,7 +330,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     except (DenseMemError, OSError, ValueError) as exc:
         if args.debug:
             traceback.print_exc()
-        sys.stderr.write(f"{prog}: error: {_one_line(exc)}\n")
+        usage = _as_usage(parser, args, argv, exc)
+        if usage is not None:  # the library refused a value the user gave as an option
+            sys.stderr.write(f"{prog}: error: {usage}\n")
+            return 2
+        sys.stderr.write(f"{prog}: error: {as_flags(_one_line(exc))}\n")
         return 1
     except KeyboardInterrupt:
         sys.stderr.write(f"{prog}: interrupted\n")
@@ -305,6 +346,68 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 1
     sys.stdout.write((out.to_json(data) if args.json else text) + "\n")
     return 0
+
+
+_ARG_ERROR = re.compile(r"^[\w.]+: `(\w+)` (.*)$", re.S)
+
+
+def _as_usage(parser: argparse.ArgumentParser, args: argparse.Namespace, argv: Sequence[str] | None,
+              exc: BaseException) -> str | None:
+    """``--flag <reason>`` when ``exc`` is the library refusing an argument the user gave as an option, else None.
+
+    The library names its argument (``DenseMemory.retrieve: `k` must be ...``); when that name is an
+    option of this command and the option is on the command line, the error is a usage error. A refusal
+    to replace existing files stays a failure (exit 1), the same for every writer.
+    """
+    from ..errors import InputTypeError, InputValueError
+
+    if not isinstance(exc, (InputValueError, InputTypeError)):
+        return None
+    m = _ARG_ERROR.match(_one_line(exc))
+    if m is None or "overwrite" in m.group(2):  # refusing to replace files is a failure (1), as in build
+        return None
+    name, reason = m.groups()
+    given = list(sys.argv[1:] if argv is None else argv)
+    sub = next((a.choices[args.command] for a in parser._actions
+                if isinstance(a, argparse._SubParsersAction) and args.command in a.choices), None)
+    for action in [] if sub is None else sub._actions:
+        if action.dest == name and action.option_strings:
+            used = [o for o in action.option_strings if any(g == o or g.startswith(o + "=") for g in given)]
+            if used:
+                sep = " " if reason.startswith(("must", "applies", "is ", "needs", "cannot")) else ": "
+                return f"{max(action.option_strings, key=len)}{sep}{reason}"
+    return None
+
+
+def _show_warning(prog: str) -> Any:
+    """``warnings.showwarning`` for the command: one line, no source path or line number."""
+
+    def show(message: Any, category: Any, filename: Any, lineno: Any, file: Any = None, line: Any = None) -> None:
+        sys.stderr.write(f"{prog}: warning: {message}\n")
+
+    return show
+
+
+#: Library wording -> the command's flags, for errors raised below the command line.
+_AS_FLAGS = (
+    (re.compile(r" and overwrite=False; pass overwrite=True to replace it"), "; pass --overwrite to replace it"),
+    (re.compile(r"pass overwrite=True"), "pass --overwrite"),
+    (re.compile(r"call build_index\('hnsw'\) or build_index\('ivf'\) first"),
+     "rebuild the store with `densemem build ... --index hnsw` (or ivf)"),
+)
+
+
+def as_flags(message: str) -> str:
+    """An error message of the library reworded with the command's flags instead of keyword arguments.
+
+    Examples
+    --------
+    >>> as_flags("x exists; pass overwrite=True to replace it.")
+    'x exists; pass --overwrite to replace it.'
+    """
+    for pattern, flag in _AS_FLAGS:
+        message = pattern.sub(flag, message)
+    return message
 
 
 def _one_line(exc: BaseException) -> str:

@@ -3,10 +3,11 @@
 from __future__ import annotations
 
 import json
-import sys
-from typing import Any, Iterable, Iterator, Sequence
+from typing import Any, Iterable, Sequence
 
 import numpy as np
+
+from .._util import progress, to_plain
 
 __all__ = ["table", "to_json", "progress", "fmt"]
 
@@ -44,35 +45,6 @@ def table(headers: Sequence[str], rows: Iterable[Sequence[Any]], title: str | No
     return "\n".join(lines)
 
 
-def _plain(value: Any) -> Any:
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return _plain(value.tolist())
-    if isinstance(value, np.generic):
-        return value.item()
-    if isinstance(value, float) and not np.isfinite(value):
-        return str(value)
-    if hasattr(value, "__fspath__"):
-        return str(value)
-    return value
-
-
 def to_json(data: Any) -> str:
     """JSON text of plain data, numpy values and paths included."""
-    return json.dumps(_plain(data), indent=2, sort_keys=False)
-
-
-def progress(items: Iterable[Any], *, total: int | None, desc: str, quiet: bool) -> Iterator[Any]:
-    """Wrap ``items`` in a tqdm bar on stderr, only when stderr is a terminal and not quiet."""
-    if quiet or not sys.stderr.isatty():
-        yield from items
-        return
-    try:
-        from tqdm import tqdm
-    except ImportError:
-        yield from items
-        return
-    yield from tqdm(items, total=total, desc=desc, file=sys.stderr, leave=False)
+    return json.dumps(to_plain(data), indent=2, sort_keys=False)

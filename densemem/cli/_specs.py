@@ -6,10 +6,14 @@ value is reported as ``densemem retrieve: --beta must be greater than 0; got -1.
 
 from __future__ import annotations
 
+import math
+import re
 from pathlib import Path
 from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+
+from .._validation import SEED_MAX
 
 __all__ = [
     "BuildSpec",
@@ -50,6 +54,14 @@ class InfoSpec(_Spec):
     verify: bool = True
 
 
+class RebalanceSpec(_Spec):
+    """``densemem rebalance``: split and merge the shards of a sharded store."""
+
+    store: Path
+    shards: int | None = Field(None, ge=1)
+    rows: int | None = Field(None, ge=1)
+
+
 class _QuerySpec(_Spec):
     store: Path
     queries: Path
@@ -80,6 +92,19 @@ class RetrieveSpec(_QuerySpec):
     states_out: Path | None = None
     weighting: str = "softmax"  # softmax, sparsemax, entmax15, or alpha-entmax given by its alpha in (1, 2]
 
+    @field_validator("states_out")
+    @classmethod
+    def _new_npy(cls, v: Path | None) -> Path | None:
+        if v is None:
+            return v
+        if v.suffix != ".npy":
+            raise ValueError(f"must name a .npy file; got {str(v)!r}")
+        if v.exists():
+            raise ValueError(f"must name a new .npy file; {str(v)!r} exists")
+        if not v.parent.is_dir():
+            raise ValueError(f"must be in an existing folder; the folder of {str(v)!r} does not exist")
+        return v
+
 
 class NearestSpec(_QuerySpec):
     """``densemem nearest``: exact (or index) nearest neighbours by faiss."""
@@ -93,8 +118,9 @@ class DemoSpec(_Spec):
 
     out: Path = Path("densemem-demo")
     photos: int = Field(4000, ge=50, le=200_000)
-    seed: int = Field(0, ge=0)
+    seed: int = Field(0, ge=0, le=SEED_MAX)
     plots: bool = True
+    overwrite: bool = False
 
 
 class SpecError(ValueError):
@@ -113,7 +139,25 @@ def make_spec(model: type[BaseModel], values: dict[str, Any], *, positional: tup
     except ValidationError as exc:
         err = exc.errors()[0]
         name = str(err["loc"][0]) if err["loc"] else "?"
-        msg = err["msg"]
-        msg = msg[0].lower() + msg[1:] if msg else msg
-        msg = msg.replace("input should be", "must be").replace("value error, ", "")
-        raise SpecError(f"{_flag(name, set(positional))} {msg}; got {err.get('input')!r}.") from None
+        reason = _reason(err)
+        sep = " " if reason.startswith(_VERBS) else ": "
+        raise SpecError(f"{_flag(name, set(positional))}{sep}{reason}") from None
+
+
+_VERBS = ("must", "applies", "is ", "needs", "should", "cannot")
+
+
+def _reason(err: Any) -> str:
+    """What was wrong with one value, ending in "; got <value>." exactly once."""
+    given = err.get("input")
+    if isinstance(given, float) and not math.isfinite(given):
+        return f"must be a finite number; got {given!r}."
+    msg = str(err["msg"])
+    msg = msg.replace("Value error, ", "").replace("Input should be", "must be")
+    # a job spec's own check names itself and its field ("CapacitySpec: `model` must ..."): keep the reason
+    msg = re.sub(r"^\w+Spec: (`\w+` )?", "", msg)
+    msg = re.sub(r"^\w+: `\w+` ", "", msg) if msg.startswith(tuple("ABCDEFGHIJKLMNOPQRSTUVWXYZ")) else msg
+    msg = msg[0].lower() + msg[1:] if msg else msg
+    if "; got " in msg or (isinstance(given, str) and given and given in msg):
+        return msg if msg.endswith(".") else msg + "."
+    return f"{msg.rstrip('.')}; got {given!r}."

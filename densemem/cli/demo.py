@@ -11,8 +11,9 @@ visitors are the queries.
 betas), checks sharp retrieval against faiss exact nearest-neighbour search,
 and, when :mod:`densemem.duplicates` and :mod:`densemem.tuning` are present,
 groups the near-duplicates and tunes beta on the de-duplicated archive. It
-writes a report folder: ``summary.md``, PNG plots (with matplotlib), the store
-folder and the de-duplication plan.
+writes a report folder: ``summary.md``, ``report.html`` (one self-contained
+page, plots embedded), PNG plots (with matplotlib), the store folder and the
+de-duplication plan.
 
 Examples
 --------
@@ -24,20 +25,17 @@ Examples
 
 from __future__ import annotations
 
-import contextlib
-import os
-import secrets
 import time
-from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from .._util import replacing, write_atomic
 from .._validation import as_rng, check_positive_int
 from ..dense import DenseMemory
-from ..errors import InputValueError
+from ..errors import InputTypeError, InputValueError
 
 __all__ = ["Archive", "make_archive", "faded_prints", "DemoReport", "run_demo", "THEMES", "LABEL"]
 
@@ -93,7 +91,7 @@ def make_archive(n_photos: int = 4000, *, seed: Any = 0, rescan_rate: float = 0.
     ['crop', 'original', 'rescan']
     """
     n = check_positive_int(n_photos, name="n_photos", where="make_archive", minimum=20)
-    rng = as_rng(seed)
+    rng = as_rng(seed, where="make_archive")
     centres = _unit(rng.standard_normal((len(THEMES), DIM)))
     theme = rng.integers(0, len(THEMES), n)
     own = _unit(rng.standard_normal((n, DIM)))
@@ -123,7 +121,7 @@ def faded_prints(archive: Archive, n: int = 200, *, fade: float = 0.9, seed: Any
     >>> q.shape, src.shape
     ((5, 64), (5,))
     """
-    rng = as_rng(seed)
+    rng = as_rng(seed, where="faded_prints")
     originals = np.flatnonzero(archive.kind == "original")
     src = rng.choice(originals, min(n, originals.size), replace=False)
     noise = _unit(rng.standard_normal((src.size, DIM))) * fade
@@ -231,7 +229,7 @@ def _tune(mem: DenseMemory, plan: Any, out: Path, plots: bool) -> tuple[dict[str
     _write_text(out / "tuning.txt", tuning.format_report(rep) + "\n")
     files["tuning"] = str(out / "tuning.txt")
     if plots and rep.sweep is not None and _have_matplotlib():
-        with _replacing(out / "beta-sweep.png") as tmp:
+        with replacing(out / "beta-sweep.png") as tmp:
             tuning.plot_sweep(rep.sweep, tmp, predicted_beta=rep.prediction.beta_target_separated,
                               chosen_beta=rep.choice.beta if rep.choice else None)
         files["beta_sweep_png"] = str(out / "beta-sweep.png")
@@ -240,31 +238,13 @@ def _tune(mem: DenseMemory, plan: Any, out: Path, plots: bool) -> tuple[dict[str
             "predicted_beta": float(rep.prediction.beta_target_separated)}, files
 
 
-@contextlib.contextmanager
-def _replacing(path: Path) -> Iterator[Path]:
-    """Yield a temp path beside `path` (same suffix); once written, fsync it and move it
-    into place with os.replace, so a reader sees the old file or the new one, never half."""
-    tmp = path.with_name(f".{path.stem}.tmp-{os.getpid()}-{secrets.token_hex(4)}{path.suffix}")
-    try:
-        yield tmp
-        fd = os.open(tmp, os.O_RDWR)
-        try:
-            os.fsync(fd)
-        finally:
-            os.close(fd)
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
-
-
 def _write_text(path: Path, text: str) -> None:
     """Write a report text file atomically (temp file in the same folder + os.replace)."""
-    with _replacing(path) as tmp, open(tmp, "x", encoding="utf-8") as fh:
-        fh.write(text)
+    write_atomic(path, text)
 
 
 def _save_figure(fig: Any, path: Path) -> None:
-    with _replacing(path) as tmp:
+    with replacing(path) as tmp:
         fig.savefig(tmp, format="png", dpi=110)
 
 
@@ -287,7 +267,8 @@ def _plot_weights(mem: DenseMemory, q: np.ndarray, betas: tuple[float, float], p
         r = mem.retrieve(q, beta, k=20, method="exact")
         ax.bar(np.arange(20), r.top_weights[0], color="#3a6ea5" if name == "sharp" else "#c9783a")
         ax.set_title(f"{name}: beta = {beta:g}")
-        ax.set_xlabel("stored scans, heaviest first")
+        ax.set_xlabel("rank of the stored scan (heaviest first)")
+        ax.xaxis.get_major_locator().set_params(integer=True)  # ranks are whole numbers
     axes[0].set_ylabel("softmax weight")
     fig.suptitle("One faded print (invented data)", fontsize=10)
     fig.tight_layout()
@@ -327,14 +308,15 @@ def run_demo(
     seed: Any = 0,
     plots: bool = True,
     quiet: bool = True,
+    overwrite: bool = False,
 ) -> DemoReport:
     """Run the invented archive scenario and write the report folder ``out``.
 
     Parameters
     ----------
     out : str or os.PathLike
-        Report folder (created; files the demo writes are replaced, each atomically: a temp
-        file in the folder, then os.replace; other files are kept).
+        Report folder (created if missing; each file is written atomically: a temp
+        file in the folder, then os.replace).
     n_photos : int, default 4000
         Original photos (rescans and crops are added on top).
     n_queries : int, default 200
@@ -344,6 +326,9 @@ def run_demo(
         Draw PNG plots (skipped silently when matplotlib is missing).
     quiet : bool, default True
         No progress bar on stderr.
+    overwrite : bool, default False
+        Write into ``out`` even when it holds files (the demo's own files are
+        replaced; others are kept). Without it a non-empty ``out`` is refused.
 
     Returns
     -------
@@ -361,16 +346,23 @@ def run_demo(
     out = Path(out)
     if out.exists() and not out.is_dir():
         raise InputValueError(f"run_demo: `out` must be a folder; {str(out)!r} is a file.")
+    if not isinstance(overwrite, bool):
+        raise InputTypeError(f"run_demo: `overwrite` must be True or False; got {overwrite!r}.")
+    if out.is_dir() and any(out.iterdir()) and not overwrite:
+        raise InputValueError(
+            f"run_demo: `out` {str(out)!r} is a folder that already holds files; pass overwrite=True to write "
+            "into it or choose a new folder."
+        )
     out.mkdir(parents=True, exist_ok=True)
     from ._output import progress
 
     steps = progress(range(5), total=5, desc="demo", quiet=quiet)
     next(steps, None)
     arc = make_archive(n_photos, seed=seed)
-    q, src = faded_prints(arc, n_queries, seed=as_rng(seed).integers(1 << 31))
+    q, src = faded_prints(arc, n_queries, seed=as_rng(seed, where="run_demo").integers(1 << 31))
     sharp_beta, blended_beta = 40.0, 10.0
     mem = DenseMemory.from_array(arc.vectors, arc.ids, normalize=True, beta=sharp_beta)
-    mem.save(out / "store")
+    mem.save(out / "store", overwrite=overwrite)
     files = {"store": str(out / "store")}
     next(steps, None)
     sharp = _retrieval_stats(mem, arc, q, src, sharp_beta)
@@ -392,12 +384,16 @@ def run_demo(
         files["weights_png"] = str(out / "weights-sharp-vs-blended.png")
         files["curve_png"] = str(out / "retrieval-vs-beta.png")
     files["summary"] = str(out / "summary.md")
+    files["html"] = str(out / "report.html")
     report = DemoReport(
         out=str(out), label=LABEL, n_scans=len(arc.ids), n_photos=int(n_photos), n_queries=int(q.shape[0]),
         sharp_beta=sharp_beta, blended_beta=blended_beta, sharp=sharp, blended=blended, faiss=faiss_stats,
         dedup=dedup, tuning=tuned, files=files, seconds=time.perf_counter() - t0,
     )
     _write_text(out / "summary.md", _markdown(report))
+    from ._pages import demo_page
+
+    _write_text(out / "report.html", demo_page(report, out))
     for _ in steps:
         pass
     return report

@@ -7,7 +7,7 @@ update.
 Certified bound. With candidates C (the exact top-kc by score, kc = |C|) and
 z = beta * score, every omitted row has z <= z_kc (the smallest candidate), so
 the omitted mass is at most (N - kc) exp(z_kc - m) relative to the candidate
-normaliser l = sum_C exp(z - m). The omitted *fraction* of the full softmax is
+normalizer l = sum_C exp(z - m). The omitted *fraction* of the full softmax is
 therefore at most eps = (N - kc) exp(z_kc - m) / l, and the state, a convex
 blend of rows of norm <= M, moves by at most 2 M eps when the omitted rows are
 put back.
@@ -22,7 +22,10 @@ from typing import Callable
 import faiss
 import numpy as np
 
+from . import _fused
 from . import partial as P
+from .tiles import n_threads_default, search_top
+
 __all__ = ["CertifiedOptions", "certified_reduce", "index_reduce", "bound_can_hold"]
 
 
@@ -90,6 +93,47 @@ def _put(out: P.Partial, where: np.ndarray, part: P.Partial, sel: np.ndarray) ->
     out.top_i[where] = part.top_i[sel]
 
 
+# Cost of one exact top-kc search per query, in units of one exact pass (two products and the
+# rest): about 0.6 + 0.0014 kc, measured by bench/exact_floor.py's machine (2 cores, N = 1e5,
+# d = 128, 1000 queries) for both the compiled search and faiss.knn. A search that costs more
+# than the exact pass is never started.
+SEARCH_COST = 0.6
+SEARCH_COST_PER_CANDIDATE = 0.0014
+
+
+def search_cost(kc: int) -> float:
+    """Cost of one top-``kc`` search per query, in exact passes."""
+    return SEARCH_COST + SEARCH_COST_PER_CANDIDATE * kc
+AUTO_SAMPLE = 32  # most queries tried first to price the certified path for the batch
+MAX_ROUNDS = 3  # searches of at least MIN_PREDICT candidates per query before the exact path answers it
+MIN_PREDICT = 8  # fewer first candidates than this: the next search takes this many, unpredicted
+
+
+def _needed_k(z: np.ndarray, part: P.Partial, n: int, tol_mass: float) -> np.ndarray:
+    """Candidates the bound would need, predicted from the scores in hand (inf: hopeless).
+
+    With kc sorted candidate scores z_1 >= ... >= z_kc the bound at K candidates is
+    at most N exp(z_K - m) / l_kc, so K must reach the rank where z falls to
+    ``z* = m + ln(tol_mass l_kc / N)``. The decline per doubling of the rank is
+    read off the last doubling in hand, z_(kc/2) - z_kc, and carried on
+    linearly in log K. For scores with a Gaussian-like tail the decline per
+    doubling grows with the rank, so this overestimates K (it errs towards the
+    exact path, which is always safe).
+    """
+    b, kc = z.shape
+    out = np.full(b, np.inf)
+    if kc < 4 or b == 0:  # callers search at least MIN_PREDICT first
+        return out
+    z_last, z_half = z[:, -1], z[:, kc // 2 - 1]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        target = part.m + np.log(tol_mass * part.l / n)
+        drop = z_half - z_last
+        doublings = np.ceil(np.maximum(z_last - target, 0.0) / drop)
+    ok = (drop > 0) & np.isfinite(doublings) & (doublings <= 30)
+    out[ok] = kc * np.exp2(np.maximum(doublings[ok], 1.0))
+    return out
+
+
 def certified_reduce(
     x: np.ndarray,
     q: np.ndarray,
@@ -100,49 +144,117 @@ def certified_reduce(
     opts: CertifiedOptions,
     exact: Callable[[np.ndarray, int, bool], P.Partial],
 ) -> tuple[P.Partial, dict[str, np.ndarray]]:
-    """Certified softmax over faiss exact top-kc candidates, growing kc per query.
+    """Certified softmax over faiss exact top-kc candidates, grown per query where it pays.
 
-    kc starts at ``max(k, k_start)`` and doubles for the queries whose bound
-    exceeds ``tol_mass``, up to ``k_max``; the queries still failing then are
-    answered by ``exact(q_subset, k, need_acc)`` (reported in ``fell_back``).
-    With a finite ``give_up``, queries whose first bound exceeds
-    ``tol_mass * give_up`` skip the growth and go to exact at once.
+    kc starts at ``max(k, k_start)`` and grows along the doubling ladder
+    ``kc * 2^j`` (capped at ``k_max`` and N). A query whose bound exceeds
+    ``tol_mass`` gets a second (at most a third) search, on the first rung that
+    reaches the candidate count the scores in hand predict (:func:`_needed_k`),
+    and only if that count is within ``k_max``;
+    otherwise, or if that search fails too, it goes to ``exact(q_subset, k,
+    need_acc)`` (reported in ``fell_back``). A search costs about half an exact
+    pass, so a query costs at most a failed first search plus the exact pass.
+    With a finite ``give_up`` (auto) the path is also priced before it is
+    taken: with more than ``4 * AUTO_SAMPLE`` queries, an evenly spaced sample
+    of ``AUTO_SAMPLE`` runs first, and when its mean cost (searches times
+    ``SEARCH_COST`` plus exact answers) is not below one exact pass the other
+    queries go to exact at once; queries whose first bound exceeds
+    ``tol_mass * give_up`` go to exact without a second search.
     """
     n, d = x.shape
     b = q.shape[0]
-    kc = min(n, max(opts.k_start, k, 1))
-    k_cap = min(n, max(opts.k_max, kc))
     out = _empty_out(b, d, k, need_acc)
     bound = np.zeros(b)
     k_used = np.zeros(b, dtype=np.int64)
     fell_back = np.zeros(b, dtype=bool)
+    state = (out, bound, k_used)
     todo = np.arange(b)
-    straight: list[np.ndarray] = []
-    first = True
-    while True:
-        scores, pos = faiss.knn(q[todo], x, kc, metric=faiss.METRIC_INNER_PRODUCT)
-        part = _gather_partial(x, scores, pos, beta, k=k, need_acc=need_acc, tile_mib=opts.tile_mib)
-        eps = _mass_bound(part, beta * scores[:, -1].astype(np.float64), n - kc)
-        ok = eps <= opts.tol_mass
-        _put(out, todo[ok], part, ok)
-        bound[todo[ok]] = eps[ok]
-        k_used[todo[ok]] = kc
-        if first and math.isfinite(opts.give_up):
-            hopeless = ~ok & (eps > opts.tol_mass * opts.give_up)
-            straight.append(todo[hopeless])
-            ok = ok | hopeless
-        first = False
-        todo = todo[~ok]
-        if todo.size == 0 or kc >= k_cap:
-            break
-        kc = min(k_cap, 2 * kc)
-    todo = np.sort(np.concatenate([todo, *straight]))
-    if todo.size:
-        fell_back[todo] = True
-        ex = exact(q[todo], k, need_acc)
-        _put(out, todo, ex, np.arange(todo.size))
-        k_used[todo] = n
+    n_sample = min(AUTO_SAMPLE, b // 16)  # at most 1/16 of the batch
+    if n_sample >= 8:
+        sample = np.unique(np.linspace(0, b - 1, n_sample).round().astype(np.int64))
+        s_exact, searches = _certify(x, q, sample, beta, k, need_acc, opts, state)
+        cost = (searches + s_exact.size) / sample.size
+        rest = np.setdiff1d(todo, sample)
+        if cost >= 1.0:
+            to_exact = np.concatenate([s_exact, rest])
+        else:
+            r_exact, _ = _certify(x, q, rest, beta, k, need_acc, opts, state)
+            to_exact = np.concatenate([s_exact, r_exact])
+    else:
+        to_exact, _ = _certify(x, q, todo, beta, k, need_acc, opts, state)
+    to_exact = np.sort(to_exact)
+    if to_exact.size:
+        fell_back[to_exact] = True
+        _put(out, to_exact, exact(q[to_exact], k, need_acc), np.arange(to_exact.size))
+        k_used[to_exact] = n
+        bound[to_exact] = 0.0
     return out, {"mass_bound": bound, "k_used": k_used, "fell_back": fell_back}
+
+
+def _certify(
+    x: np.ndarray, q: np.ndarray, todo: np.ndarray, beta: float, k: int, need_acc: bool,
+    opts: CertifiedOptions, state: tuple[P.Partial, np.ndarray, np.ndarray],
+) -> tuple[np.ndarray, float]:
+    """Search candidates for queries ``todo``; certified answers go into ``state``.
+
+    Returns the queries left for the exact path and the cost of the searches run (in exact
+    passes, :func:`search_cost` per query and search).
+    """
+    out, bound, k_used = state
+    n = x.shape[0]
+    kc0 = min(n, max(opts.k_start, k, 1))
+    k_cap = min(n, max(opts.k_max, kc0))
+    give_up = math.isfinite(opts.give_up)
+    k_affordable = int((1.0 - SEARCH_COST) / SEARCH_COST_PER_CANDIDATE)
+    left: list[np.ndarray] = []
+    searches = 0.0
+    # (queries, kc) groups still to search, and the round each is in
+    groups: list[tuple[np.ndarray, int, int]] = [(todo, kc0, 0)] if todo.size else []
+    while groups:
+        idx, kc, rnd = groups.pop()
+        scores, pos = _search(q[idx], x, kc, opts.tile_mib)
+        searches += idx.size * search_cost(kc)
+        part = _gather_partial(x, scores, pos, beta, k=k, need_acc=need_acc, tile_mib=opts.tile_mib)
+        z = beta * scores.astype(np.float64)
+        eps = _mass_bound(part, z[:, -1], n - kc)
+        ok = eps <= opts.tol_mass
+        _put(out, idx[ok], part, ok)
+        bound[idx[ok]] = eps[ok]
+        k_used[idx[ok]] = kc
+        bad = ~ok
+        if kc >= k_cap or rnd + 1 >= MAX_ROUNDS:
+            left.append(idx[bad])
+            continue
+        need = np.full(idx.size, np.inf)
+        if kc < MIN_PREDICT:  # too few scores to read a decline from: go to the rung >= MIN_PREDICT
+            need[bad] = MIN_PREDICT
+        else:
+            need[bad] = _needed_k(z[bad], _rows(part, bad), n, opts.tol_mass)
+        # grow only to a count within k_max whose search costs less than the exact pass
+        hopeless = bad & (need > min(k_cap, k_affordable))
+        if give_up and rnd == 0:
+            hopeless |= bad & (eps > opts.tol_mass * opts.give_up)
+        left.append(idx[hopeless])
+        grow = bad & ~hopeless
+        if grow.any():
+            # the next rung of the doubling ladder kc0 * 2^j that reaches the predicted count
+            rung = np.ceil(np.log2(np.maximum(need[grow], 2 * kc) / kc0))
+            want = np.minimum(k_cap, kc0 * 2**rung).astype(np.int64)
+            for kk in np.unique(want):
+                groups.append((idx[grow][want == kk], int(kk), rnd + (kc >= MIN_PREDICT)))
+    return (np.concatenate(left) if left else np.empty(0, np.int64)), searches
+
+
+def _search(q: np.ndarray, x: np.ndarray, kc: int, tile_mib: float) -> tuple[np.ndarray, np.ndarray]:
+    """Exact top-kc by inner product, best first: the compiled tile kernel where it applies, else faiss."""
+    if _fused.available(kc):
+        return search_top(q, x, kc, tile_mib=tile_mib, n_threads=n_threads_default())
+    return faiss.knn(q, x, kc, metric=faiss.METRIC_INNER_PRODUCT)
+
+
+def _rows(part: P.Partial, sel: np.ndarray) -> P.Partial:
+    """The partial restricted to rows ``sel`` (m and l only: what the predictor reads)."""
+    return P.Partial(m=part.m[sel], l=part.l[sel], acc=None, top_z=part.top_z[sel], top_i=part.top_i[sel])
 
 
 def index_reduce(

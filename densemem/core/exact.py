@@ -20,11 +20,14 @@ def exact_reduce(
     n_threads: int,
     need_acc: bool = True,
     chunk: int = 512,
+    moments: bool = False,
 ) -> P.Partial:
     """Partial of every query over every stored row.
 
     Queries are split into one contiguous chunk per thread; each chunk walks the
     stored rows in tiles sized so that one (chunk x tile) block fits ``tile_mib``.
+    With ``moments`` the partial also carries the sums behind the entropy and
+    participation ratio of each query's full weight vector (same pass).
     """
     qz = np.ascontiguousarray(queries * np.float32(beta), dtype=np.float32)
     n_q = qz.shape[0]
@@ -32,7 +35,7 @@ def exact_reduce(
     def run(sl: slice) -> P.Partial:
         part = qz[sl]
         rows = tile_rows_for(part.shape[0], tile_mib)
-        return reduce_rows(part, patterns, k=k, tile_rows=rows, need_acc=need_acc)
+        return reduce_rows(part, patterns, k=k, tile_rows=rows, need_acc=need_acc, moments=moments)
 
     parts = map_query_chunks(run, n_q, n_threads=n_threads, chunk=chunk)
     if len(parts) == 1:
@@ -43,4 +46,6 @@ def exact_reduce(
         acc=np.concatenate([p.acc for p in parts]) if need_acc else None,  # type: ignore[misc]
         top_z=np.concatenate([p.top_z for p in parts]),
         top_i=np.concatenate([p.top_i for p in parts]),
+        s=np.concatenate([p.s for p in parts]) if moments else None,  # type: ignore[misc]
+        q=np.concatenate([p.q for p in parts]) if moments else None,  # type: ignore[misc]
     )

@@ -1,4 +1,8 @@
-"""faiss-backed approximate candidate indexes (HNSW, IVF) kept beside a memory.
+"""The one faiss index factory, and the candidate indexes (HNSW, IVF) kept beside a memory.
+
+:func:`make_index` builds every inner-product faiss index densemem uses
+(retrieval's candidate indexes, tuning's separation, duplicate search, the
+benchmark's baselines); :func:`train_ivf` trains an IVF on a row sample.
 
 An index answers "which stored rows score highest for this query" cheaply and
 approximately; the retrieval kernel then reduces only those rows. Rows are
@@ -19,9 +23,60 @@ import numpy as np
 from .._validation import check_positive_int
 from ..errors import InputValueError
 
-__all__ = ["IndexSettings", "CandidateIndex", "default_settings"]
+__all__ = ["IndexSettings", "CandidateIndex", "default_settings", "make_index", "train_ivf", "binary_flat"]
 
 Kind = Literal["hnsw", "ivf"]
+
+
+def make_index(
+    kind: Literal["flat", "hnsw", "ivf"],
+    dim: int,
+    *,
+    M: int = 32,
+    ef_construction: int = 80,
+    ef_search: int = 64,
+    nlist: int = 1,
+    nprobe: int = 1,
+    kmeans: dict[str, Any] | None = None,
+) -> Any:
+    """An empty faiss index by inner product.
+
+    "flat": ``IndexFlatIP`` (exact). "hnsw": ``IndexHNSWFlat`` with ``M``
+    links, ``efConstruction`` and ``efSearch`` set. "ivf": ``IndexIVFFlat``
+    with ``nlist`` lists and ``nprobe`` probed, owning its ``IndexFlatIP``
+    quantizer, untrained (see :func:`train_ivf`); ``kmeans`` sets fields of its
+    k-means parameters (faiss ``ClusteringParameters``: seed, niter,
+    spherical, min_points_per_centroid, ...).
+    """
+    if kind == "flat":
+        return faiss.IndexFlatIP(dim)
+    if kind == "hnsw":
+        index = faiss.IndexHNSWFlat(dim, M, faiss.METRIC_INNER_PRODUCT)
+        index.hnsw.efConstruction = ef_construction
+        index.hnsw.efSearch = ef_search
+        return index
+    quantizer = faiss.IndexFlatIP(dim)
+    index = faiss.IndexIVFFlat(quantizer, dim, nlist, faiss.METRIC_INNER_PRODUCT)
+    index.own_fields = True  # the index frees its quantizer
+    quantizer.this.disown()
+    for name, val in (kmeans or {}).items():
+        setattr(index.cp, name, val)
+    index.nprobe = nprobe
+    return index
+
+
+def train_ivf(index: Any, x: np.ndarray, n_train: int, rng: np.random.Generator | None) -> None:
+    """Train an IVF on ``n_train`` distinct rows of ``x`` drawn by ``rng`` (in row order); all rows if fewer."""
+    n = x.shape[0]
+    if n_train >= n or rng is None:
+        index.train(np.ascontiguousarray(x))
+        return
+    index.train(np.ascontiguousarray(x[np.sort(rng.choice(n, n_train, replace=False))]))
+
+
+def binary_flat(bits: int) -> Any:
+    """An empty faiss ``IndexBinaryFlat`` (exact Hamming search) over ``bits``-bit codes."""
+    return faiss.IndexBinaryFlat(bits)
 
 
 @dataclass(frozen=True, slots=True)
@@ -93,20 +148,13 @@ class CandidateIndex:
     def build(cls, x: np.ndarray, settings: IndexSettings, version: int) -> "CandidateIndex":
         d = x.shape[1]
         if settings.kind == "hnsw":
-            index = faiss.IndexHNSWFlat(d, settings.M, faiss.METRIC_INNER_PRODUCT)
-            index.hnsw.efConstruction = settings.ef_construction
-            index.add(x)
+            index = make_index("hnsw", d, M=settings.M, ef_construction=settings.ef_construction,
+                               ef_search=settings.ef_search)
         else:
-            quantizer = faiss.IndexFlatIP(d)
-            index = faiss.IndexIVFFlat(quantizer, d, settings.nlist, faiss.METRIC_INNER_PRODUCT)
-            index.cp.seed = settings.seed
-            rng = np.random.default_rng(settings.seed)
-            n_train = min(x.shape[0], 64 * settings.nlist)
-            sample = x if n_train == x.shape[0] else x[np.sort(rng.choice(x.shape[0], n_train, replace=False))]
-            index.train(np.ascontiguousarray(sample))
-            index.add(x)
-            index.own_fields = True
-            quantizer.this.disown()
+            index = make_index("ivf", d, nlist=settings.nlist, nprobe=settings.nprobe,
+                               kmeans={"seed": settings.seed})
+            train_ivf(index, x, 64 * settings.nlist, np.random.default_rng(settings.seed))
+        index.add(x)
         return cls(settings, index, int(x.shape[0]), version)
 
     def _apply_search_params(self) -> None:

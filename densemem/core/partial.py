@@ -8,10 +8,20 @@ Every retrieval path in densemem reduces *some set of stored rows* to a
     acc : sum_i exp(z_i - m) * x_i                             (B, d) float32
     top : the k largest z with their global row numbers        (B, k)
 
+and, only when asked (``moments=True``; plain retrieval pays nothing), two more
+sums for statistics of the full weight vector p = softmax(z):
+
+    s   : sum_i exp(z_i - m) * (z_i - m)                       (B,)   float64
+    q   : sum_i exp(2 (z_i - m))                               (B,)   float64
+
+from which the Shannon entropy ``H = -sum p ln p = ln l - s / l`` and the
+participation ratio ``PR = 1 / sum p^2 = l^2 / q`` follow (both free of m).
+
 Two partials over disjoint row sets merge exactly (the online-softmax identity,
 Milakov & Gimelshein, arXiv:1805.02867): ``m = max(m1, m2)``,
 ``l = l1 e^(m1-m) + l2 e^(m2-m)``, ``acc`` likewise, ``top`` = the k largest of
-both. The merge is associative and commutative, so any tree order gives the same
+both. A new reference ``m'`` rescales the moments exactly with
+``a = e^(m-m')``: ``s' = a (s + (m - m') l)``, ``q' = a^2 q``. The merge is associative and commutative, so any tree order gives the same
 answer up to rounding.
 
 ``m`` only has to be a *reference* value: any ``m >= max z - small`` keeps the
@@ -38,13 +48,15 @@ class Partial:
     acc: np.ndarray | None  # (B, d) float32, None when not asked for
     top_z: np.ndarray  # (B, k) float32, -inf padded, unsorted
     top_i: np.ndarray  # (B, k) int64 global row numbers, -1 padded
+    s: np.ndarray | None = None  # (B,) float64 sum e^(z-m) (z-m), None when not asked for
+    q: np.ndarray | None = None  # (B,) float64 sum e^(2(z-m)), None when not asked for
 
     @property
     def n_queries(self) -> int:
         return int(self.m.shape[0])
 
 
-def empty(n_queries: int, dim: int, k: int, *, need_acc: bool = True) -> Partial:
+def empty(n_queries: int, dim: int, k: int, *, need_acc: bool = True, moments: bool = False) -> Partial:
     """The partial of an empty row set (the identity of :func:`merge`)."""
     return Partial(
         m=np.full(n_queries, _NEG),
@@ -52,6 +64,8 @@ def empty(n_queries: int, dim: int, k: int, *, need_acc: bool = True) -> Partial
         acc=np.zeros((n_queries, dim), dtype=np.float32) if need_acc else None,
         top_z=np.full((n_queries, k), _NEG, dtype=np.float32),
         top_i=np.full((n_queries, k), -1, dtype=np.int64),
+        s=np.zeros(n_queries) if moments else None,
+        q=np.zeros(n_queries) if moments else None,
     )
 
 
@@ -138,6 +152,7 @@ def block(
     k: int,
     offset: int = 0,
     need_acc: bool = True,
+    moments: bool = False,
 ) -> Partial:
     """Partial of a tile of stored rows shared by every query.
 
@@ -153,6 +168,9 @@ def block(
         Global row number of ``rows[0]``.
     need_acc : bool
         Whether to form the weighted sum of rows (the second matrix product).
+    moments : bool
+        Whether to also sum ``e (z - m)`` and ``e^2`` (entropy and
+        participation ratio; see the module docstring).
     """
     if k > 0:
         top_z, top_i, m = _block_top(z, k, offset)
@@ -160,6 +178,9 @@ def block(
         top_z = np.empty((z.shape[0], 0), np.float32)
         top_i = np.empty((z.shape[0], 0), np.int64)
         m = z.max(axis=1).astype(np.float64)
+    s = q = l64 = None
+    if moments:  # entropy and participation ratio in float64 from the float32 scores (tuning only)
+        l64, s, q = _moment_sums(z, m)
     z -= m[:, None].astype(np.float32)
     if need_acc:
         np.exp(z, out=z)
@@ -168,7 +189,22 @@ def block(
     else:
         l = _energy_sum(z)
         acc = None
-    return Partial(m=m, l=l, acc=acc, top_z=top_z, top_i=top_i)
+    if l64 is not None:
+        l = l64  # the normaliser the moments were summed with, so H = ln l - s / l is float64-exact
+    return Partial(m=m, l=l, acc=acc, top_z=top_z, top_i=top_i, s=s, q=q)
+
+
+def _moment_sums(z: np.ndarray, m: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """sum e, sum e (z - m) and sum e^2 per row in float64, with e = exp(z - m) from the float32 scores ``z``.
+
+    Everything after the float32 product is float64, so the entropy ``ln l - s / l``
+    keeps float64 accuracy (its difference of near-equal terms at small beta
+    would lose the float32 digits otherwise).
+    """
+    zs = z.astype(np.float64)
+    zs -= m[:, None]
+    e = np.exp(zs)
+    return e.sum(axis=1), np.einsum("ij,ij->i", e, zs), np.einsum("ij,ij->i", e, e)
 
 
 def gathered(
@@ -177,6 +213,7 @@ def gathered(
     ids: np.ndarray,
     *,
     k: int,
+    moments: bool = False,
 ) -> Partial:
     """Partial over a per-query candidate set (certified and index-backed paths).
 
@@ -190,6 +227,8 @@ def gathered(
         Global row numbers of the candidates (-1 for a missing one).
     k : int
         Size of the top list kept.
+    moments : bool
+        Whether to also sum ``e (z - m)`` and ``e^2`` over the candidates.
     """
     # Round scores to float32 first (as the tiled path does) so the reported
     # top scores and the reference max agree exactly: weights exp(top_z - m) <= 1.
@@ -202,7 +241,13 @@ def gathered(
     if rows is not None:
         acc = np.einsum("bc,bcd->bd", w.astype(np.float32), rows, optimize=True).astype(np.float32)
     top_z, top_i = _select_top(z.astype(np.float32), ids.astype(np.int64), k)
-    return Partial(m=m, l=l, acc=acc, top_z=top_z, top_i=top_i)
+    s = q = None
+    if moments:
+        with np.errstate(invalid="ignore"):
+            zs = np.where(w > 0, z - safe_m[:, None], 0.0)
+        s = np.einsum("bc,bc->b", w, zs)
+        q = np.einsum("bc,bc->b", w, w)
+    return Partial(m=m, l=l, acc=acc, top_z=top_z, top_i=top_i, s=s, q=q)
 
 
 def _rescale(m_old: np.ndarray, m_new: np.ndarray) -> np.ndarray:
@@ -224,7 +269,19 @@ def merge(a: Partial, b: Partial) -> Partial:
     top_z, top_i = _select_top(
         np.concatenate([a.top_z, b.top_z], axis=1), np.concatenate([a.top_i, b.top_i], axis=1), k
     )
-    return Partial(m=m, l=l, acc=acc, top_z=top_z, top_i=top_i)
+    s = q = None
+    if a.s is not None and b.s is not None and a.q is not None and b.q is not None:
+        s = _shift_s(a, m, ea) + _shift_s(b, m, eb)
+        q = a.q * ea * ea + b.q * eb * eb
+    return Partial(m=m, l=l, acc=acc, top_z=top_z, top_i=top_i, s=s, q=q)
+
+
+def _shift_s(p: Partial, m: np.ndarray, e: np.ndarray) -> np.ndarray:
+    """``s`` of ``p`` moved to the reference ``m``: e (s + (m_p - m) l); 0 for an empty side."""
+    assert p.s is not None
+    with np.errstate(invalid="ignore"):
+        d = np.where(np.isfinite(p.m), p.m - m, 0.0)
+    return e * (p.s + d * p.l)
 
 
 @dataclass(slots=True)
@@ -236,10 +293,12 @@ class Finished:
     top_i: np.ndarray  # (B, k) row numbers, heaviest first
     top_w: np.ndarray  # (B, k) softmax weights, heaviest first
     top_z: np.ndarray  # (B, k) beta * score, heaviest first
+    entropy: np.ndarray | None = None  # (B,) nats, -sum p ln p over the partial's rows
+    participation: np.ndarray | None = None  # (B,) 1 / sum p^2 over the partial's rows
 
 
 def finish(p: Partial) -> Finished:
-    """Normalise a partial: states = acc / l, lse = m + log l, sorted top list."""
+    """Normalize a partial: states = acc / l, lse = m + log l, sorted top list."""
     states = None
     if p.acc is not None:
         states = (p.acc / p.l[:, None]).astype(np.float32)
@@ -251,4 +310,10 @@ def finish(p: Partial) -> Finished:
     with np.errstate(invalid="ignore"):
         top_w = np.exp(top_z.astype(np.float64) - p.m[:, None]) / p.l[:, None]
     top_w = np.where(top_i >= 0, top_w, 0.0)
-    return Finished(states=states, lse=lse, top_i=top_i, top_w=top_w, top_z=top_z)
+    entropy = participation = None
+    if p.s is not None and p.q is not None:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            entropy = np.maximum(np.log(p.l) - p.s / p.l, 0.0)
+            participation = p.l * p.l / p.q
+    return Finished(states=states, lse=lse, top_i=top_i, top_w=top_w, top_z=top_z,
+                    entropy=entropy, participation=participation)

@@ -9,10 +9,10 @@ rows and, for "certified" and "auto", the per-query bound. Two id partials over
 disjoint rows merge exactly (:func:`merge`), so the step loop in
 :mod:`densemem.core.steps` never knows which source it drives.
 
-Bound of a merge. A certified part over rows ``R`` with normaliser ``l_R``
+Bound of a merge. A certified part over rows ``R`` with normalizer ``l_R``
 omits at most ``eps_R l_R`` of mass (in the units of its own reference ``m_R``).
 The merge rescales both omitted masses to the merged reference and divides by
-the merged normaliser: ``eps = (eps_A l_A e^(m_A-m) + eps_B l_B e^(m_B-m)) / l``,
+the merged normalizer: ``eps = (eps_A l_A e^(m_A-m) + eps_B l_B e^(m_B-m)) / l``,
 at most ``max(eps_A, eps_B)`` since ``l`` is at least each rescaled ``l_R``. An
 exact part omits nothing. The state bound ``2 M eps`` follows as on one machine.
 """
@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import dataclasses
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any, Callable, Protocol, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Iterator, Protocol, Sequence
 
 import faiss
 import numpy as np
@@ -38,6 +38,7 @@ __all__ = ["IdPartial", "RowSource", "TableRows", "merge", "tree_merge", "finish
 AUTO_K_START = 16  # auto: first candidate count
 AUTO_SMALL_N = 2048  # auto: below this many rows, exact is cheaper than any search
 AUTO_GIVE_UP = 1e4  # auto: a first bound above tol_mass * this goes exact without growing
+ROW_BLOCK = 8192  # rows per block when a caller streams the rows themselves
 
 
 @dataclass(slots=True)
@@ -62,6 +63,10 @@ class RowSource(Protocol):
 
     def reduce(self, states: np.ndarray, beta: float, *, k: int, need_acc: bool, cert: CertifiedOptions) -> IdPartial:
         """The id partial of ``states`` over every row of the source."""
+        ...
+
+    def row_blocks(self) -> Iterator[np.ndarray]:
+        """The source's rows in blocks (read only where the energy needs them at tiny beta)."""
         ...
 
 
@@ -166,6 +171,10 @@ class TableRows:
 
     def __len__(self) -> int:
         return int(self.x.shape[0])
+
+    def row_blocks(self) -> Iterator[np.ndarray]:
+        """This table's rows in blocks of 8192, in file order."""
+        return (self.x[a:a + ROW_BLOCK] for a in range(0, self.x.shape[0], ROW_BLOCK))
 
     def candidate_recall(self, q: np.ndarray, k: int, n_sample: int) -> float:
         """Mean fraction of faiss exact top-kc found by the index, on a query sample."""

@@ -10,13 +10,14 @@ is the same source reduced without weighted sums.
 from __future__ import annotations
 
 import dataclasses
-import math
 from typing import Any, Callable
 
 import numpy as np
 
 from . import sparse as SP
 from .candidates import CertifiedOptions
+from .._validation import check_finite_result
+from .lse import lse_energy
 from .rows import AUTO_K_START, RowSource, finish
 from ..results import Deferred, RetrievalResult
 
@@ -38,7 +39,9 @@ class Steps:
 OnePass = Callable[[np.ndarray], tuple[np.ndarray, np.ndarray, np.ndarray, dict[str, Any]]]
 
 
-def run_steps(one_pass: OnePass, q: np.ndarray, *, steps: int, tol: float, max_norm: float, k: int) -> Steps:
+def run_steps(
+    one_pass: OnePass, q: np.ndarray, *, steps: int, tol: float, max_norm: float, k: int, where: str = "retrieve"
+) -> Steps:
     """Repeat ``one_pass`` on the queries still moving, at most ``steps`` times.
 
     ``one_pass(states)`` returns (new states, top ids, top weights, per-query
@@ -55,6 +58,7 @@ def run_steps(one_pass: OnePass, q: np.ndarray, *, steps: int, tol: float, max_n
     done = 0
     for _ in range(steps):
         new, ids, weights, info = one_pass(state[active])
+        check_finite_result(new, what="states", where=where)
         if ids_out is None or (ids.dtype.kind == "U" and ids.dtype.itemsize > ids_out.dtype.itemsize):
             grown = np.full((n_q, k), "" if ids.dtype.kind == "U" else -1, dtype=ids.dtype)
             if ids_out is not None:
@@ -168,9 +172,11 @@ def energy(
     source: RowSource, states: np.ndarray, beta: float, *, cert: CertifiedOptions, count: int, max_norm: float,
     smap: SP.SparseMap | None = None, method: str = "exact",
 ) -> np.ndarray:
-    """``-lse/beta + |xi|^2/2 + log(N)/beta + M^2/2`` from one pass without weighted sums.
+    """``-(lse - log N)/beta + |xi|^2/2 + M^2/2`` from one pass without weighted sums.
 
-    Certified searches of this pass start at >= 16 candidates. With a sparse
+    Certified searches of this pass start at >= 16 candidates. Where ``beta``
+    times the score spread is small, :func:`densemem.core.lse.lse_energy`
+    recomputes the difference from the source's rows in float64. With a sparse
     map ``smap``: ``-Omega*/beta + |xi|^2/2 + H_max/beta + M^2/2``
     (:func:`densemem.core.sparse.sparse_energy`).
     """
@@ -181,8 +187,7 @@ def energy(
         cert, k_start=max(cert.k_start, AUTO_K_START)))
     with np.errstate(divide="ignore"):
         lse = sp.part.m + np.log(sp.part.l)
-    sq = np.einsum("ij,ij->i", states.astype(np.float64), states.astype(np.float64))
-    return -lse / beta + 0.5 * sq + math.log(count) / beta + 0.5 * max_norm * max_norm
+    return lse_energy(lse, states, beta, n=count, max_norm=max_norm, row_blocks=source.row_blocks)
 
 
 def _store_info(acc: dict[str, Any], info: dict[str, Any], active: np.ndarray, n_q: int) -> None:

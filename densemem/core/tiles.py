@@ -20,8 +20,10 @@ from typing import Callable, TypeVar
 import numpy as np
 from threadpoolctl import threadpool_limits
 
+from . import _fused
 from . import partial as P
-__all__ = ["tile_rows_for", "reduce_rows", "map_query_chunks", "n_threads_default"]
+
+__all__ = ["tile_rows_for", "reduce_rows", "search_top", "map_query_chunks", "n_threads_default"]
 
 T = TypeVar("T")
 
@@ -49,6 +51,7 @@ def reduce_rows(
     k: int,
     tile_rows: int,
     need_acc: bool = True,
+    moments: bool = False,
 ) -> P.Partial:
     """Fold all stored rows, tile by tile, into one partial.
 
@@ -63,13 +66,17 @@ def reduce_rows(
         Stored rows per tile.
     need_acc : bool
         Whether the weighted sum (second GEMM) is needed.
+    moments : bool
+        Whether to carry the entropy / participation sums (see :mod:`.partial`).
     """
     n, dim = patterns.shape
     b = qz.shape[0]
-    run = P.empty(b, dim, k, need_acc=need_acc)
+    run = P.empty(b, dim, k, need_acc=need_acc, moments=moments)
     if n == 0:
         return run
     t = min(tile_rows, n)
+    if need_acc and not moments and _fused.available(k):
+        return _reduce_fused(qz, patterns, run, t)
     buf = np.empty(b * t, dtype=np.float32)
     first = True
     for start in range(0, n, t):
@@ -77,10 +84,57 @@ def reduce_rows(
         width = rows.shape[0]
         z = buf[: b * width].reshape(b, width)
         np.matmul(qz, rows.T, out=z)
-        blk = P.block(z, rows, k=k, offset=start, need_acc=need_acc)
+        blk = P.block(z, rows, k=k, offset=start, need_acc=need_acc, moments=moments)
         run = blk if first else P.merge(run, blk)
         first = False
     return run
+
+
+def _reduce_fused(qz: np.ndarray, patterns: np.ndarray, run: P.Partial, t: int) -> P.Partial:
+    """:func:`reduce_rows` with the compiled tile kernel (:mod:`._fused`): one visit per tile row."""
+    assert run.acc is not None
+    b, n = qz.shape[0], patterns.shape[0]
+    buf = np.empty(b * t, dtype=np.float32)
+    for start in range(0, n, t):
+        rows = patterns[start : start + t]
+        z = buf[: b * rows.shape[0]].reshape(b, rows.shape[0])
+        np.matmul(qz, rows.T, out=z)
+        scale = _fused.fold_tile(z, start, run.m, run.l, run.top_z, run.top_i)
+        run.acc *= scale.astype(np.float32)[:, None]
+        run.acc += z @ rows
+    return run
+
+
+def search_top(
+    q: np.ndarray, patterns: np.ndarray, kc: int, *, tile_mib: float, n_threads: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Exact top-``kc`` stored rows by inner product, best first: (scores, row numbers).
+
+    The compiled kernel's max-and-top-k visit of each tile after the first product
+    (NumPy's BLAS), with no exponentials and no second product; callers check
+    :func:`densemem.core._fused.available` first.
+    """
+    n = patterns.shape[0]
+    qf = np.ascontiguousarray(q, dtype=np.float32)
+
+    def run(sl: slice) -> tuple[np.ndarray, np.ndarray]:
+        part = qf[sl]
+        b = part.shape[0]
+        t = min(tile_rows_for(b, tile_mib), n)
+        top_z = np.full((b, kc), -np.inf, dtype=np.float32)
+        top_i = np.full((b, kc), -1, dtype=np.int64)
+        m, l = np.full(b, -np.inf), np.zeros(b)
+        buf = np.empty(b * t, dtype=np.float32)
+        for start in range(0, n, t):
+            rows = patterns[start : start + t]
+            z = buf[: b * rows.shape[0]].reshape(b, rows.shape[0])
+            np.matmul(part, rows.T, out=z)
+            _fused.fold_tile(z, start, m, l, top_z, top_i, weights=False)
+        order = np.argsort(-top_z, axis=1, kind="stable")
+        return np.take_along_axis(top_z, order, 1), np.take_along_axis(top_i, order, 1)
+
+    parts = map_query_chunks(run, qf.shape[0], n_threads=n_threads, chunk=512)
+    return np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts])
 
 
 def map_query_chunks(

@@ -1,7 +1,7 @@
 """A new batch against a stored memory: which new items duplicate a stored item or another new one.
 
 The store is only read (its memory-mapped patterns): a faiss index over a
-normalised float32 copy of them is built in memory for this run, and nothing
+normalized float32 copy of them is built in memory for this run, and nothing
 is written back. The batch is read chunk by chunk (a memory-mapped ``.npy``
 stays on disk); each chunk is searched against the store, and only the new
 items that match no stored item are kept in memory for the within-batch search.
@@ -35,6 +35,7 @@ import numpy as np
 from . import _candidates as C
 from . import _groups as G
 from ._checks import Options, batch_matrix, check_score, finite_unit_chunk
+from ._judge import judge_and_group, warn_far_chains  # the within-batch plan is the ordinary one
 from ._plan import DuplicatePlan
 
 __all__ = ["plan_against"]
@@ -59,7 +60,7 @@ def _batch_unit_rows(x: np.ndarray, rows: np.ndarray) -> np.ndarray:
 
 
 class _StoreIndex:
-    """A faiss index over the stored memory's non-zero rows, normalised (built chunk by chunk)."""
+    """A faiss index over the stored memory's non-zero rows, normalized (built chunk by chunk)."""
 
     def __init__(self, patterns: np.ndarray, opt: Options, n_batch: int, rng: np.random.Generator,
                  chunk: int) -> None:
@@ -143,12 +144,11 @@ class _StoreIndex:
 def plan_against(data: Any, stored: Any, ids: Any, representative: Any, opt: Options,
                  rng: np.random.Generator, bar: Any, t0: float) -> DuplicatePlan:
     """Plan the new batch ``data`` against the DenseMemory ``stored`` (see the module notes)."""
-    from ._find import judge_and_group, warn_far_chains  # the within-batch plan is the ordinary one
 
     x, bids = batch_matrix(data, ids, stored)
     n, d = x.shape
     rule, score = check_score(representative, n)
-    chunk = C.chunk_rows_for(d, opt.work_mib)
+    chunk = C.chunk_rows_for(d, opt.tile_mib)
     store = _StoreIndex(stored.patterns, opt, n, rng, chunk)
     if store.source == "ivf" and opt.check_sample > 0:
         sample = np.sort(rng.choice(n, size=min(opt.check_sample, n), replace=False))

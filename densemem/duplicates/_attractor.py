@@ -72,9 +72,9 @@ def attractor_edges(
     threshold: float,
     *,
     beta: float,
-    max_steps: int,
+    steps: int,
     tol: float,
-    retrieval: str,
+    retrieve_method: str,
     progress: Callable[[str, int], Any] | None = None,
 ) -> tuple[np.ndarray, dict[str, Any]]:
     """Judge each candidate pair (every pair above the threshold) by the dense-memory dynamics.
@@ -108,7 +108,7 @@ def attractor_edges(
             for a in range(0, idx.size, per):
                 pos = comps.offsets[idx[a : a + per]][:, None] + np.arange(s)
                 rows = comps.members[pos]  # (g, s)
-                states = _batched_fixed_points(xn[rows].astype(np.float64), beta, max_steps, tol, run)
+                states = _batched_fixed_points(xn[rows].astype(np.float64), beta, steps, tol, run)
                 d2 = np.einsum("gid,gjd->gij", states, states)
                 sq = np.einsum("gid,gid->gi", states, states)
                 dist2 = sq[:, :, None] + sq[:, None, :] - 2.0 * d2
@@ -122,7 +122,7 @@ def attractor_edges(
             rows = comps.group(g)
             local = xn[rows]
             mem = DenseMemory.from_array(local, normalize=False, beta=beta)
-            res = mem.retrieve(local, beta, steps=max_steps, tol=tol, k=1, method=retrieval, return_energy=False)
+            res = mem.retrieve(local, beta, steps=steps, tol=tol, k=1, method=retrieve_method, return_energy=False)
             run["unconverged"] += int((~res.converged).sum())
             run["steps"] = max(run["steps"], int(res.steps))
             a_, b_ = _close_states(np.ascontiguousarray(res.states, dtype=np.float32), radius, 4096)
@@ -139,9 +139,9 @@ def attractor_edges(
     unconverged, most_steps = run["unconverged"], run["steps"]
     joined = label[lo] == label[hi]
     info = {
-        "retrieval": retrieval,
+        "retrieve_method": retrieve_method,
         "beta": beta,
-        "max_steps": max_steps,
+        "steps": steps,
         "steps_used": most_steps,
         "tol": tol,
         "n_unconverged": unconverged,
@@ -155,7 +155,7 @@ def attractor_edges(
     return joined, info
 
 
-def _batched_fixed_points(x: np.ndarray, beta: float, max_steps: int, tol: float,
+def _batched_fixed_points(x: np.ndarray, beta: float, steps: int, tol: float,
                           run: dict[str, int]) -> np.ndarray:
     """Iterate ``xi <- X^T softmax(beta X xi)`` for a batch of small memories, from every stored row.
 
@@ -168,7 +168,7 @@ def _batched_fixed_points(x: np.ndarray, beta: float, max_steps: int, tol: float
     """
     states = x.copy()
     active = np.ones(x.shape[:2], dtype=bool)
-    for step in range(max_steps):
+    for step in range(steps):
         logits = beta * np.matmul(states, x.transpose(0, 2, 1))  # (g, s, s)
         logits -= logits.max(axis=2, keepdims=True)
         w = np.exp(logits)

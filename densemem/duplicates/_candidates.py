@@ -1,14 +1,13 @@
 """Candidate pairs for near-duplicate search: exact, IVF and HNSW sources from faiss.
 
 Every source returns pairs ``(lo, hi)`` with ``lo < hi`` (row numbers of the
-normalised matrix), re-scored in float64 so a pair gets the same similarity
+normalized matrix), re-scored in float64 so a pair gets the same similarity
 whichever source found it. The edge rule is ``cosine >= threshold - SLACK``.
 """
 
 from __future__ import annotations
 
 import math
-import sys
 import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
@@ -17,6 +16,8 @@ from typing import Any
 import faiss
 import numpy as np
 from faiss.contrib.ivf_tools import add_preassigned, range_search_preassigned
+
+from ..core.index import make_index, train_ivf
 
 __all__ = [
     "SLACK",
@@ -54,9 +55,9 @@ class PairSet:
 Progress = Callable[[str, int], Any]
 
 
-def chunk_rows_for(d: int, work_mib: float) -> int:
-    """Query rows per chunk so that a chunk's working arrays stay near ``work_mib``."""
-    rows = int(work_mib * 2**20 / (4.0 * max(d, 1) * 8))
+def chunk_rows_for(d: int, tile_mib: float) -> int:
+    """Query rows per chunk so that a chunk's working arrays stay near ``tile_mib``."""
+    rows = int(tile_mib * 2**20 / (4.0 * max(d, 1) * 8))
     return max(256, min(rows, 1 << 16))
 
 
@@ -144,7 +145,7 @@ def exact_pairs(
 ) -> PairSet:
     """Every pair above the rule, by faiss ``IndexFlatIP.range_search`` (brute force)."""
     n, d = xn.shape
-    index = faiss.IndexFlatIP(d)
+    index = make_index("flat", d)
     index.add(xn)
     radius = _radius(threshold)
     parts = []
@@ -174,16 +175,11 @@ def default_nlist(n: int) -> int:
 
 
 def _train_ivf(xn: np.ndarray, nlist: int, rng: np.random.Generator) -> faiss.IndexIVFFlat:
-    n, d = xn.shape
-    quantizer = faiss.IndexFlatIP(d)
-    index = faiss.IndexIVFFlat(quantizer, d, nlist, faiss.METRIC_INNER_PRODUCT)
-    index.cp.spherical = True  # unit centroids: inner-product assignment is cosine
-    index.cp.niter = 8
-    index.cp.min_points_per_centroid = 1  # we choose the sample size; silence faiss' warning
-    n_train = min(n, TRAIN_PER_LIST * nlist)
-    rows = np.sort(rng.choice(n, size=n_train, replace=False)) if n_train < n else slice(None)
-    index.train(np.ascontiguousarray(xn[rows]))
-    # faiss' python wrapper keeps a reference to `quantizer` inside `index`
+    # spherical: unit centroids, so inner-product assignment is cosine; min_points_per_centroid=1:
+    # we choose the sample size, which silences faiss' warning
+    index = make_index("ivf", xn.shape[1], nlist=nlist,
+                       kmeans={"spherical": True, "niter": 8, "min_points_per_centroid": 1})
+    train_ivf(index, xn, TRAIN_PER_LIST * nlist, rng)
     return index
 
 
@@ -286,10 +282,8 @@ def hnsw_pairs(
     """Pairs among each row's ``k`` approximate nearest neighbours (faiss IndexHNSWFlat)."""
     n, d = xn.shape
     k = min(k + 1, n)
-    index = faiss.IndexHNSWFlat(d, m, faiss.METRIC_INNER_PRODUCT)
-    index.hnsw.efConstruction = max(40, 2 * m)
     ef = max(2 * k, 64) if ef_search is None else ef_search
-    index.hnsw.efSearch = ef
+    index = make_index("hnsw", d, M=m, ef_construction=max(40, 2 * m), ef_search=ef)
     bar = _bar(progress, "dedup: hnsw build", n)
     for a, b in _chunks(n, chunk):
         index.add(xn[a:b])
@@ -362,10 +356,3 @@ def sample_recall(pairs: PairSet, sample: np.ndarray, exact: dict[int, set[int]]
     q = np.concatenate([lo[a], hi[b]])
     j = np.concatenate([hi[a], lo[b]])
     return _recall(_pair_dict(q, j), exact)
-
-
-def stderr_is_tty() -> bool:
-    try:
-        return sys.stderr.isatty()
-    except (AttributeError, ValueError):
-        return False

@@ -12,7 +12,7 @@ import numpy as np
 from .._validation import as_float_matrix, check_beta, check_ids, check_positive_int
 from ..errors import DenseMemWarning, InputTypeError, InputValueError
 
-__all__ = ["Options", "batch_matrix", "check_options", "check_score", "input_matrix", "normalised_copy"]
+__all__ = ["Options", "batch_matrix", "check_options", "check_score", "input_matrix", "normalized_copy"]
 
 WHERE = "plan_duplicates"
 METHODS = ("graph", "attractor")
@@ -33,9 +33,9 @@ class Options:
     check_sample: int
     target_recall: float
     beta: float | None
-    max_steps: int
-    retrieval: str
-    work_mib: float
+    steps: int
+    retrieve_method: str
+    tile_mib: float
     show_progress: bool | None
 
 
@@ -75,9 +75,9 @@ def check_options(**kw: Any) -> Options:
     target = _real(kw["target_recall"], "target_recall")
     if not 0.0 < target <= 1.0:
         raise InputValueError(f"{WHERE}: `target_recall` must be in (0, 1]; got {kw['target_recall']!r}.")
-    work = _real(kw["work_mib"], "work_mib")
+    work = _real(kw["tile_mib"], "tile_mib")
     if not (np.isfinite(work) and work > 0):
-        raise InputValueError(f"{WHERE}: `work_mib` must be a finite number > 0; got {kw['work_mib']!r}.")
+        raise InputValueError(f"{WHERE}: `tile_mib` must be a finite number > 0; got {kw['tile_mib']!r}.")
     progress = kw["progress"]
     if progress is not None and not isinstance(progress, bool):
         raise InputTypeError(f"{WHERE}: `progress` must be True, False or None; got {progress!r}.")
@@ -92,9 +92,9 @@ def check_options(**kw: Any) -> Options:
         check_sample=check_positive_int(kw["check_sample"], name="check_sample", where=WHERE, minimum=0),
         target_recall=target,
         beta=None if kw["beta"] is None else check_beta(kw["beta"], where=WHERE),
-        max_steps=check_positive_int(kw["max_steps"], name="max_steps", where=WHERE),
-        retrieval=_choice(kw["retrieval"], "retrieval", RETRIEVALS),
-        work_mib=work,
+        steps=check_positive_int(kw["steps"], name="steps", where=WHERE),
+        retrieve_method=_choice(kw["retrieve_method"], "retrieve_method", RETRIEVALS),
+        tile_mib=work,
         show_progress=progress,
     )
 
@@ -147,7 +147,7 @@ def check_score(representative: Any, n: int) -> tuple[str, np.ndarray | None]:
     return "quality", score
 
 
-def normalised_copy(x: np.ndarray, ids: np.ndarray, chunk: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def normalized_copy(x: np.ndarray, ids: np.ndarray, chunk: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Unit-norm float32 copy of the non-zero rows, their row numbers, and the zero rows.
 
     Norms are taken in float64. Zero rows have no direction: they are left out
@@ -193,7 +193,7 @@ def check_stored(stored: Any) -> Any:
 def batch_matrix(data: Any, ids: Any, stored: Any) -> tuple[np.ndarray, np.ndarray]:
     """The new batch as it is (a memory map stays one: nothing is converted whole) and its ids.
 
-    Finiteness is checked chunk by chunk later, while the rows are normalised.
+    Finiteness is checked chunk by chunk later, while the rows are normalized.
     Default ids continue the stored memory's integer ids (largest + 1, + 2, ...);
     a memory with string ids needs explicit ``ids``. Ids shared with the stored
     memory are refused.

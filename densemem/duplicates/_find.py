@@ -14,9 +14,7 @@ ever removed; inputs are read only.
 from __future__ import annotations
 
 import dataclasses
-import sys
 import time
-import warnings
 from typing import Any, Literal
 
 import numpy as np
@@ -24,7 +22,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from . import _candidates as C
 from . import _groups as G
-from ._attractor import attractor_edges, beta_for_threshold
+from ._judge import judge_and_group, warn_far_chains
 from ._checks import (
     WHERE,
     Options,
@@ -32,11 +30,12 @@ from ._checks import (
     check_score,
     check_stored,
     input_matrix,
-    normalised_copy,
+    normalized_copy,
 )
 from ._plan import DuplicateGroup, DuplicatePlan
-from .._validation import as_rng
-from ..errors import DenseMemWarning, InputValueError, MissingExtraError
+from .._util import bar_factory
+from .._validation import as_rng, check_search_sizes
+from ..errors import InputValueError
 
 __all__ = ["DedupSpec", "DuplicateGroup", "DuplicatePlan", "plan_duplicates"]
 
@@ -57,9 +56,9 @@ def plan_duplicates(
     check_sample: int = 1000,
     target_recall: float = 0.995,
     beta: float | None = None,
-    max_steps: int = 300,
-    retrieval: Literal["exact", "auto", "certified"] = "auto",
-    work_mib: float = 64.0,
+    steps: int = 300,
+    retrieve_method: Literal["exact", "auto", "certified"] = "auto",
+    tile_mib: float = 64.0,
     return_pairs: bool = False,
     progress: bool | None = None,
     seed: Any = 0,
@@ -69,7 +68,7 @@ def plan_duplicates(
     Parameters
     ----------
     data : array-like of shape (n_items, n_features) or DenseMemory
-        Embeddings (any norm; a normalised copy is used) or a memory, whose
+        Embeddings (any norm; a normalized copy is used) or a memory, whose
         patterns and ids are used. Never modified. With ``stored`` this is the
         new batch; a memory-mapped array (``np.load(path, mmap_mode="r")``) is
         then read chunk by chunk.
@@ -119,10 +118,10 @@ def plan_duplicates(
     nlist, nprobe, check_sample, target_recall
         IVF settings (default nlist about 4 * sqrt(n), a power of two) and
         the sampled recall check (0 rows: no check, no tuning).
-    beta, max_steps, retrieval
+    beta, steps, retrieve_method
         Attractor settings: beta (default ``2 / (1 - threshold)``), most
         updates, and the DenseMemory.retrieve method.
-    work_mib : float, default 64
+    tile_mib : float, default 64
         Memory budget of one query chunk.
     return_pairs : bool, default False
         Also return every pair judged (``pair_ids``, ``pair_similarities``).
@@ -175,14 +174,14 @@ def plan_duplicates(
     coarse assignment (``n * nlist * d``, shared by adding and searching) plus
     ``n * nprobe * n / nlist * d`` for the range search; candidate pairs are
     re-scored in float64. Group statistics cost ``size**2 * d`` per group.
-    Against a stored memory: a faiss index holds a normalised float32 copy of
+    Against a stored memory: a faiss index holds a normalized float32 copy of
     the stored patterns; the batch is read in chunks and only the new items
     that match no stored item are kept in memory for the within-batch search.
 
     References
     ----------
-    .. [1] H. Ramsauer et al., "Hopfield Networks is All You Need", ICLR 2021,
-       arXiv:2008.02217.
+    .. [1] The retrieval update and its metastable states: Ramsauer et al. (ICLR 2021),
+       as cited by :class:`densemem.DenseMemory`.
 
     Examples
     --------
@@ -197,10 +196,10 @@ def plan_duplicates(
     opt = check_options(
         threshold=threshold, method=method, candidates=candidates, k=k, grouping=grouping,
         nlist=nlist, nprobe=nprobe, check_sample=check_sample, target_recall=target_recall,
-        beta=beta, max_steps=max_steps, retrieval=retrieval, work_mib=work_mib, progress=progress,
+        beta=beta, steps=steps, retrieve_method=retrieve_method, tile_mib=tile_mib, progress=progress,
     )
     bar = _progress_factory(opt.show_progress)
-    rng = as_rng(seed)
+    rng = as_rng(seed, where=WHERE)
     if stored is not None:
         from ._against import plan_against
 
@@ -213,88 +212,16 @@ def plan_duplicates(
         plan = plan_against(data, stored, ids, representative, opt, rng, bar, t0)
         return plan if return_pairs else _without_pairs(plan)
     x, all_ids = input_matrix(data, ids)
+    check_search_sizes(x.shape[0], where=WHERE, nlist=nlist, nprobe=nprobe, k=k)  # before faiss
     rule, score = check_score(representative, x.shape[0])
-    chunk = C.chunk_rows_for(x.shape[1], opt.work_mib)
-    xn, valid, zero = normalised_copy(x, all_ids, chunk)
+    chunk = C.chunk_rows_for(x.shape[1], opt.tile_mib)
+    xn, valid, zero = normalized_copy(x, all_ids, chunk)
     vscore = None if score is None else score[valid]
     groups, reps, source, params, pairs = judge_and_group(xn, opt, rule, vscore, rng, chunk, bar)
     stats = G.summarise(xn, groups, rule, vscore, reps)
     warn_far_chains(opt, stats["min"], groups)
     plan = _plan(x.shape[0], all_ids, valid, zero, groups, stats, opt, rule, source, params, pairs, t0)
     return plan if return_pairs else _without_pairs(plan)
-
-
-FAR_FACTOR = 2.0
-"""A chain is "far below" the threshold when a pair in it is more than twice the
-threshold's cosine distance apart: ``1 - c > 2 (1 - t)``, i.e. ``c < 2 t - 1``."""
-
-
-def warn_far_chains(opt: Options, min_sim: np.ndarray, groups: G.Packed) -> None:
-    """DenseMemWarning when a chain group holds a pair far below the threshold."""
-    if opt.grouping != "chain" or min_sim.size == 0:
-        return
-    limit = 1.0 - FAR_FACTOR * (1.0 - opt.threshold)
-    far = np.flatnonzero(min_sim < limit)
-    if far.size == 0:
-        return
-    worst = int(far[np.argmin(min_sim[far])])
-    warnings.warn(
-        f"{WHERE}: grouping='chain' joined items far below the threshold {opt.threshold:g}: "
-        f"{far.size} group(s) hold a pair at cosine < {limit:.4g} (lowest {min_sim[worst]:.4g}, in a group of "
-        f"{int(groups.sizes[worst])}); items planned for dropping there may be far from the item kept. "
-        "Use grouping='star' (the default) or 'complete'.",
-        DenseMemWarning,
-        stacklevel=3,
-    )
-
-
-def find_pairs(xn: np.ndarray, opt: Options, rng: np.random.Generator, chunk: int, bar: Any) -> tuple:
-    """Every candidate pair at or above the threshold (re-scored), its source and settings."""
-    n, d = xn.shape
-    source, reason = C.choose_source(n, d, opt.candidates)
-    sample = None
-    if source != "exact" and opt.check_sample > 0 and n > 1:
-        sample = np.sort(rng.choice(n, size=min(opt.check_sample, n), replace=False))
-    if n < 2:
-        pairs = C.PairSet(np.empty(0, np.int64), np.empty(0, np.int64), np.empty(0), "exact", {})
-        source = "exact"
-    elif source == "exact":
-        pairs = C.exact_pairs(xn, opt.threshold, chunk=chunk, progress=bar)
-    elif source == "ivf":
-        pairs = C.ivf_pairs(
-            xn, opt.threshold, nlist=opt.nlist, nprobe=opt.nprobe, chunk=chunk, rng=rng, sample=sample,
-            target_recall=opt.target_recall, progress=bar,
-        )
-    else:
-        pairs = C.hnsw_pairs(xn, opt.threshold, k=opt.k, m=32, ef_search=None, chunk=chunk, sample=sample,
-                             progress=bar)
-    return pairs, source, {"chosen_because": reason, **pairs.params}
-
-
-def judge_and_group(xn: np.ndarray, opt: Options, rule: str, score: np.ndarray | None,
-                    rng: np.random.Generator, chunk: int, bar: Any) -> tuple:
-    """Candidate pairs, the method's judgement of them, and the grouping rule: (groups, reps, ...)."""
-    n = xn.shape[0]
-    pairs, source, params = find_pairs(xn, opt, rng, chunk, bar)
-    lo, hi, sim = pairs.lo, pairs.hi, pairs.sim
-    if opt.method == "attractor" and lo.size:
-        b = beta_for_threshold(opt.threshold) if opt.beta is None else opt.beta
-        joined, info = attractor_edges(
-            xn, lo, hi, opt.threshold, beta=b, max_steps=opt.max_steps, tol=1e-5, retrieval=opt.retrieval,
-            progress=bar,
-        )
-        info["beta_rule"] = "2 / (1 - threshold)" if opt.beta is None else "given"
-        params["attractor"] = info
-        lo, hi, sim = lo[joined], hi[joined], sim[joined]
-    elif opt.method == "attractor":
-        params["attractor"] = {"beta": beta_for_threshold(opt.threshold) if opt.beta is None else opt.beta,
-                               "pairs_judged": 0, "pairs_joined": 0}
-    adj = G.adjacency(n, lo, hi, sim)
-    groups = G.pack_labels(G.components(n, adj))
-    reps = None
-    if opt.grouping != "chain":
-        groups, reps = G.split_groups(groups, adj, opt.grouping, rule, score)
-    return groups, reps, source, params, pairs
 
 
 def _plan(n: int, all_ids: np.ndarray, valid: np.ndarray, zero: np.ndarray, groups: G.Packed,
@@ -334,17 +261,7 @@ def _without_pairs(plan: DuplicatePlan) -> DuplicatePlan:
 
 def _progress_factory(show: bool | None) -> Any:
     """A ``(desc, total) -> bar`` callable for tqdm bars on stderr, or None."""
-    if show is False or (show is None and not C.stderr_is_tty()):
-        return None
-    try:
-        from tqdm import tqdm
-    except ImportError:
-        if show:
-            raise MissingExtraError(
-                f"{WHERE}: `progress=True` needs tqdm; pip install densemem[progress] (or tqdm)."
-            ) from None
-        return None
-    return lambda desc, total: tqdm(total=total, desc=desc, unit="row", file=sys.stderr, leave=False)
+    return bar_factory(show, unit="row", where=WHERE)
 
 
 class DedupSpec(BaseModel):
@@ -375,9 +292,9 @@ class DedupSpec(BaseModel):
     check_sample: int = Field(1000, ge=0)
     target_recall: float = Field(0.995, gt=0.0, le=1.0)
     beta: float | None = Field(None, gt=0.0, allow_inf_nan=False)
-    max_steps: int = Field(300, ge=1)
-    retrieval: Literal["exact", "auto", "certified"] = "auto"
-    work_mib: float = Field(64.0, gt=0.0, allow_inf_nan=False)
+    steps: int = Field(300, ge=1)
+    retrieve_method: Literal["exact", "auto", "certified"] = "auto"
+    tile_mib: float = Field(64.0, gt=0.0, allow_inf_nan=False)
     seed: int = 0
 
     def kwargs(self, quality: Any = None) -> dict[str, Any]:

@@ -6,7 +6,6 @@ import csv
 import io
 import json
 import os
-import tempfile
 from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Any
@@ -14,7 +13,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import InputTypeError, InputValueError
-from ..results import _plain
+from .._util import fsync_dir, to_plain, write_atomic
 
 __all__ = ["PLAN_FILES", "DuplicateGroup", "DuplicatePlan"]
 
@@ -214,7 +213,7 @@ class DuplicatePlan:
             "threshold": self.threshold,
             "method": self.method,
             "candidates": self.candidates,
-            "candidate_params": _plain_deep(self.candidate_params),
+            "candidate_params": to_plain(self.candidate_params),
             "grouping": self.grouping,
             "representative_rule": self.representative_rule,
             "n_items": self.n_items,
@@ -225,7 +224,7 @@ class DuplicatePlan:
             "n_excluded_zero": int(self.excluded_zero_ids.shape[0]),
             "lowest_similarity": _lowest(self.min_similarity),
             "lowest_kept_similarity": _lowest(self.duplicate_similarities),
-            "stored": None if self.stored is None else _plain_deep(self.stored),
+            "stored": None if self.stored is None else to_plain(self.stored),
             "n_duplicates_of_stored": self.n_duplicates_of_stored,
             "seconds": self.seconds,
         }
@@ -249,7 +248,7 @@ class DuplicatePlan:
         >>> plan.to_dict()["threshold"]
         0.99
         """
-        return {f.name: _plain_deep(getattr(self, f.name)) for f in fields(self)}
+        return {f.name: to_plain(getattr(self, f.name)) for f in fields(self)}
 
     # ----------------------------------------------------------- files
     def write(self, folder: str | os.PathLike[str], *, overwrite: bool = False) -> dict[str, str]:
@@ -296,13 +295,13 @@ class DuplicatePlan:
                 )
         out.mkdir(parents=True, exist_ok=True)
         for role, data in blobs.items():
-            _atomic_write(targets[role], data)
+            write_atomic(targets[role], data)
         for role, name in PLAN_FILES.items():  # stale files of an earlier plan, own names only
             if role not in targets:
                 stale = out / name
                 if stale.is_file() or stale.is_symlink():
                     stale.unlink()
-        _fsync_dir(out)
+        fsync_dir(out)
         return {role: str(p) for role, p in targets.items()}
 
     def _kept_mask(self) -> np.ndarray:
@@ -371,14 +370,6 @@ def _lowest(values: np.ndarray) -> float | None:
     return float(values.min()) if values.size else None
 
 
-def _plain_deep(value: Any) -> Any:
-    if isinstance(value, dict):
-        return {str(k): _plain_deep(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_plain_deep(v) for v in value]
-    return _plain(value)
-
-
 def _csv_bytes(table: dict[str, np.ndarray]) -> bytes:
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
@@ -402,51 +393,3 @@ def _parquet_bytes(table: dict[str, np.ndarray]) -> bytes | None:
     buf = pa.BufferOutputStream()
     pq.write_table(pa.table({c: table[c] for c in _CSV_COLUMNS}), buf)
     return buf.getvalue().to_pybytes()
-
-
-def _umask() -> int:
-    """The process umask: from /proc on Linux, else by setting and restoring it (os has no getter)."""
-    try:
-        with open("/proc/self/status", encoding="ascii") as fh:
-            for line in fh:
-                if line.startswith("Umask:"):
-                    return int(line.split()[1], 8)
-    except (OSError, ValueError):
-        pass
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return mask
-
-
-def _atomic_write(path: Path, data: bytes) -> None:
-    """Temp file in the same folder, flush + fsync, then os.replace.
-
-    mkstemp creates the file with mode 0600; it is set to ``0666 & ~umask``
-    first, so a plan file gets the mode any other new file of the user gets.
-    """
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        if hasattr(os, "fchmod"):
-            os.fchmod(fd, 0o666 & ~_umask())
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
-def _fsync_dir(folder: Path) -> None:
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-    except OSError:  # some platforms cannot open folders
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)

@@ -30,9 +30,9 @@ A partial over rows ``R`` is ``(m, l, acc, top)`` with ``m`` a reference
 ``A u B`` is ``m = max(m_A, m_B)``, ``l = l_A e^(m_A - m) + l_B e^(m_B - m)``,
 ``acc`` likewise, ``top`` = the best k of both (derived merge of partials): an
 identity, not an approximation, and associative and commutative, so any tree
-gives the single-machine normaliser, state and top list up to float rounding.
+gives the single-machine normalizer, state and top list up to float rounding.
 Certified shards bound their own omitted mass; the merged bound is the merged
-omitted mass over the merged normaliser, proved in :mod:`densemem.core.rows`.
+omitted mass over the merged normalizer, proved in :mod:`densemem.core.rows`.
 
 Where shards live on workers (and why not Actors)
 -------------------------------------------------
@@ -86,7 +86,7 @@ import threading
 import time
 import uuid
 from collections.abc import Callable
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 
@@ -169,6 +169,20 @@ def _sums_task(shard: tuple[str, str, int, bool, str], states: np.ndarray, beta:
                tau: np.ndarray, k: int, final: bool, need_acc: bool) -> Any:
     return S.shard_rows(_shard(*shard), "auto").sparse_sums(states, beta, alpha, tau, k=k, final=final,
                                                           need_acc=need_acc)
+
+
+def _index_task(shard: tuple[str, str, int, bool, str], settings: dict[str, Any]) -> dict[str, Any]:
+    """Build one shard's index on a worker and write the shard as a new folder beside it: its entry."""
+    from pathlib import Path
+
+    from ._store import write_shard
+
+    mem = _shard(*shard)
+    if len(mem):
+        mem.build_index(**settings)
+    entry = write_shard(Path(shard[0]).parent, mem, shard[4])
+    entry["index"] = dict(settings) if len(mem) else None
+    return entry
 
 
 def _nearest_task(shard: tuple[str, str, int, bool, str], q: np.ndarray, k: int, metric: str) -> S.ShardNearest:
@@ -272,6 +286,14 @@ class _DaskShards:
                  n_candidates: int = 32) -> None:
         self.session, self.shards, self.method, self.n_candidates = session, shards, method, n_candidates
 
+    def row_blocks(self) -> Any:
+        """The shards' rows, read here from the shared folders (only the tiny-beta energy needs them)."""
+        from ._store import load_shard
+
+        for folder, checksum, number, verify, where in self.shards:
+            yield from S.shard_rows(load_shard(folder, checksum, verify=verify, where=where, number=number),
+                                    "exact").row_blocks()
+
     def reduce(self, states: np.ndarray, beta: float, *, k: int, need_acc: bool, cert: CertifiedOptions) -> IdPartial:
         return self.session.run(_partial_task, self.shards, states,
                                 (beta, k, self.method, need_acc, cert, self.n_candidates), merge_partials)
@@ -349,6 +371,40 @@ class ClusterShards(Retriever):
         self._session.start_call(where)
         shards = [(f, c, i, v, where) for f, c, i, v, _ in self._shards]
         return _DaskShards(self._session, shards, opts.method, opts.n_candidates)
+
+    def build_index(self, kind: Literal["hnsw", "ivf"] = "hnsw", **params: Any) -> dict[str, Any]:
+        """Build every shard's candidate index on the workers (persisted beside each shard).
+
+        As :meth:`densemem.ShardedMemory.build_index`, with one task per shard:
+        each worker writes its shard as a new folder with the index, and this
+        process then replaces ``shards.json`` once. Settings are checked here first.
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> from densemem.sharding import open_sharded
+        >>> with open_sharded("/shared/shards").on_cluster("tcp://10.0.0.5:8786") as c:  # doctest: +SKIP
+        ...     c.build_index("hnsw", M=32)["kind"]
+        'hnsw'
+        """
+        from ..core.index import default_settings
+        from ._store import tidy
+
+        where = f"{self._name}.build_index"
+        settings = {"kind": kind, **params}
+        default_settings(kind, max(1, max(self._store.counts)), **params)  # bad settings fail before any task
+        store = self._store
+        tidy(store.path, store._man)
+        self._session.start_call(where)
+        c = self._session.client
+        shards = [(f, cs, i, v, where) for f, cs, i, v, _ in self._shards]
+        futs = [c.submit(_index_task, sh, settings, pure=False, retries=self._session.retries) for sh in shards]
+        entries = c.gather(futs)
+        man = store._next_manifest()
+        man["shards"] = entries
+        store._commit(man)
+        self._shards = _shards(store, self._shards[0][3] if self._shards else True, "ShardedMemory.on_cluster")
+        return dict(settings)
 
     def _nearest_batch(self, q: np.ndarray, k: int, metric: str, index: bool, *, where: str) -> tuple[np.ndarray, np.ndarray]:
         if index:

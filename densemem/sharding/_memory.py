@@ -2,7 +2,7 @@
 
 Layout of a sharded store (a plain folder)::
 
-    shards.json      format name and version, dim, normalisation, default beta,
+    shards.json      format name and version, dim, normalization, default beta,
                      id kind, total count, next free id, how rows were split,
                      and per shard: its folder, count, largest norm and the
                      sha256 of its manifest.json
@@ -62,7 +62,6 @@ from ._store import (
     SHARDS_FORMAT_NAME,
     SHARDS_FORMAT_VERSION,
     TOP_MANIFEST,
-    _as_path,
     _check_target,
     _fill,
     _is_sharded,
@@ -82,7 +81,7 @@ from ..core.tiles import DEFAULT_TILE_MIB
 from ..options import Layout, RetrievalOptions
 from .._validation import check_ids, check_patterns, check_positive_int, unknown_id_error
 from ..errors import InputTypeError, InputValueError, StoreFormatError
-from ..store._folder import MANIFEST, _sha256
+from ..store._folder import MANIFEST, _as_path, _sha256
 
 __all__ = [
     "SHARDS_FORMAT_NAME",
@@ -141,7 +140,7 @@ class ShardedMemory(Retriever):
     the partials merge exactly, so the result equals one memory holding every
     row (states to float32 rounding, identical top ids). Certified bounds are
     per shard and merged (the reported ``mass_bound`` is the merged omitted
-    mass over the merged normaliser). For Dask, :meth:`on_cluster` gives the
+    mass over the merged normalizer). For Dask, :meth:`on_cluster` gives the
     same calls run by the workers.
 
     Examples
@@ -172,7 +171,7 @@ class ShardedMemory(Retriever):
 
     @property
     def normalize(self) -> bool:
-        """Whether patterns and queries are L2-normalised."""
+        """Whether patterns and queries are L2-normalized."""
         return bool(self._man["normalize"])
 
     @property
@@ -724,6 +723,19 @@ def open_sharded(path: Any, *, verify: bool = True) -> ShardedMemory:
     return ShardedMemory(p, man, verify=verify)
 
 
+def is_sharded_store(path: Any) -> bool:
+    """Whether ``path`` is a sharded store folder (it holds a ``shards.json`` of this format).
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> from densemem.sharding import is_sharded_store
+    >>> is_sharded_store(tempfile.mkdtemp())
+    False
+    """
+    return isinstance(path, (str, os.PathLike)) and _is_sharded(Path(os.fspath(path)))
+
+
 def open_store(path: Any, *, mmap: bool = False, verify: bool = True) -> Any:
     """Open a store folder of either kind: a :class:`~densemem.DenseMemory` or a :class:`ShardedMemory`.
 
@@ -751,6 +763,6 @@ def open_store(path: Any, *, mmap: bool = False, verify: bool = True) -> Any:
     >>> type(open_store(os.path.join(base, "one"))).__name__, type(open_store(os.path.join(base, "many"))).__name__
     ('DenseMemory', 'ShardedMemory')
     """
-    if isinstance(path, (str, os.PathLike)) and _is_sharded(Path(os.fspath(path))):
+    if is_sharded_store(path):
         return open_sharded(path, verify=verify)
     return DenseMemory.load(path, mmap=mmap, verify=verify)

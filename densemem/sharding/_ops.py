@@ -23,7 +23,7 @@ Shard ``s`` reduces its candidates to ``(m_s, l_s)`` and certifies that the
 softmax mass of its omitted rows is ``O_s <= eps_s * l_s * e^(m_s)`` (its own
 bound, ``eps_s = (N_s - kc_s) e^(z_kc,s - m_s) / l_s``; 0 where the shard fell
 back to its exact path). The shards hold disjoint rows, so the merged omitted
-mass is exactly ``O = sum_s O_s`` and the merged candidate normaliser is
+mass is exactly ``O = sum_s O_s`` and the merged candidate normalizer is
 ``L = sum_s l_s e^(m_s) = l e^m``. Hence the reported global bound
 
     eps = O / L <= sum_s eps_s l_s e^(m_s) / (l e^m)
@@ -42,7 +42,7 @@ from __future__ import annotations
 
 import functools
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Iterator
 
 import faiss
 import numpy as np
@@ -90,6 +90,11 @@ class LocalShards:
         parts = [shard_rows(m, self.method).sparse_sums(states, beta, alpha, tau, k=k, final=final, need_acc=need_acc)
                  for m in self.memories]
         return tree_merge(parts, SP.merge_sums)
+
+    def row_blocks(self) -> Iterator[np.ndarray]:
+        """Every shard's rows in blocks, shard after shard."""
+        for m in self.memories:
+            yield from shard_rows(m, "exact").row_blocks()
 
 
 def shard_candidates(mem: Any, q: np.ndarray, kc: int) -> np.ndarray:

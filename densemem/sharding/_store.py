@@ -15,56 +15,33 @@ from typing import Any
 
 import numpy as np
 
+from .._util import fsync_dir, write_atomic
+from .._validation import max_row_norm
 from ..dense import DenseMemory
-from ..errors import InputTypeError, InputValueError, StoreFormatError
+from ..errors import InputValueError, StoreFormatError
 from ..store._folder import (
     MANIFEST,
     StoreContent,
-    _fsync_dir,
     _sha256,
+    manifest_text,
     read_json_manifest,
     write_store,
 )
 
 SHARDS_FORMAT_NAME = "densemem-shards"
-SHARDS_FORMAT_VERSION = 1
+SHARDS_FORMAT_VERSION = 2  # 2: shards.json carries manifest_sha256 (its own checksum); 1 still opens
 TOP_MANIFEST = "shards.json"
 _SPLITS = ("round_robin", "contiguous")
 
 
 # ------------------------------------------------------------------ helpers
-def _as_path(path: Any, where: str) -> Path:
-    if not isinstance(path, (str, os.PathLike)):
-        raise InputTypeError(f"{where}: `path` must be a str or os.PathLike; got {type(path).__name__}.")
-    p = Path(os.fspath(path))
-    if p.name in ("", ".", ".."):
-        raise InputValueError(f"{where}: `path` must name a folder; got {os.fspath(path)!r}.")
-    return p.absolute()
-
-
 def _shard_name(i: int) -> str:
     return f"shard-{i:05d}"
 
 
-def _max_norm(x: np.ndarray) -> float:
-    """Largest row norm, computed as :attr:`DenseMemory.max_norm` does."""
-    return float(np.sqrt(np.max(np.einsum("ij,ij->i", x, x)))) if len(x) else 0.0
-
-
 def _write_json_atomic(path: Path, payload: dict[str, Any]) -> None:
-    """Write ``path`` by temp file + fsync + rename + fsync of the folder."""
-    tmp = path.parent / f".{path.name}.tmp-{os.getpid()}-{secrets.token_hex(4)}"
-    text = json.dumps(payload, indent=2, sort_keys=True).encode("utf-8")
-    try:
-        with open(tmp, "xb") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
-    _fsync_dir(path.parent)
+    """Write ``path`` atomically (see :func:`densemem._util.write_atomic`)."""
+    write_atomic(path, manifest_text(payload))
 
 
 # ------------------------------------------------------------------- updates
@@ -78,7 +55,7 @@ def write_shard(p: Path, mem: Any, where: str) -> dict[str, Any]:
     name = new_shard_name()
     folder = p / name
     mem.save(folder, overwrite=False)
-    return {"folder": name, "count": len(mem), "max_norm": _max_norm(mem.patterns),
+    return {"folder": name, "count": len(mem), "max_norm": max_row_norm(mem.patterns),
             "manifest_sha256": _sha256(folder / MANIFEST)}
 
 
@@ -102,7 +79,7 @@ def tidy(p: Path, man: dict[str, Any]) -> None:
         name = child.name
         if name in keep:
             continue
-        ours = name.startswith(("shard-", ".shard-")) or name.startswith(f".{TOP_MANIFEST}.tmp-")
+        ours = name.startswith(("shard-", ".shard-", f".{Path(TOP_MANIFEST).stem}.tmp-"))
         if not ours:
             continue
         if child.is_dir() and not child.is_symlink():
@@ -159,7 +136,7 @@ def _fill(memory: Any, tmp: Path, n_shards: int, by: str) -> dict[str, Any]:
         write_store(StoreContent(x=x, ids=ids[rows].copy(), normalize=memory.normalize, beta=memory.beta),
                     folder, where="shard_memory")
         shards.append({
-            "folder": folder.name, "count": int(rows.size), "max_norm": _max_norm(x),
+            "folder": folder.name, "count": int(rows.size), "max_norm": max_row_norm(x),
             "manifest_sha256": _sha256(folder / MANIFEST),
         })
     from .._version import __version__
@@ -194,7 +171,7 @@ def _swap_in(tmp: Path, p: Path) -> None:
     if p.exists():
         os.rename(p, prev)
     os.rename(tmp, p)
-    _fsync_dir(p.parent)
+    fsync_dir(p.parent)
     if prev.exists():
         shutil.rmtree(prev)
 
@@ -202,7 +179,7 @@ def _swap_in(tmp: Path, p: Path) -> None:
 def _read_top(p: Path, where: str) -> dict[str, Any]:
     mpath = p / TOP_MANIFEST
     man = read_json_manifest(
-        mpath, name=SHARDS_FORMAT_NAME, version=SHARDS_FORMAT_VERSION, where=where,
+        mpath, name=SHARDS_FORMAT_NAME, version=SHARDS_FORMAT_VERSION, where=where, unsealed=(1,),
         missing=f"there is no sharded store at {str(p)!r} ({TOP_MANIFEST} is missing).",
     )
     shards = man.get("shards")

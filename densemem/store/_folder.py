@@ -2,14 +2,19 @@
 
 Layout of a store folder::
 
-    manifest.json    format name and version, dim, count, dtype, normalisation,
-                     default beta, id kind, and the sha256 and size of every file
+    manifest.json    format name and version, dim, count, dtype, normalization,
+                     default beta, id kind, the sha256 and size of every file, and
+                     ``manifest_sha256``: the sha256 of its own content (every other
+                     key, as canonical JSON), checked on every load
     patterns.npy     float32 (count, dim), C order
     ids.npy          int64 (count,) or fixed-width unicode '<U..' (count,); never object
     index.faiss      optional: a candidate index written by ``faiss.write_index``
 
-Loads never unpickle (``np.load(..., allow_pickle=False)``) and, unless
-``verify=False``, check every file against the manifest's sha256.
+Loads never unpickle (``np.load(..., allow_pickle=False)``), always check the
+manifest's own checksum and each array header's claimed size against the file
+size (before anything is allocated), and, unless ``verify=False``, check every
+file against the manifest's sha256. Version 1 stores (written before the
+manifest checksum) still load.
 
 Crash safety (the write protocol)
 ---------------------------------
@@ -35,8 +40,14 @@ without changing anything on disk:
 
 Recovery in step 1 of the next save finishes the interrupted one: a missing
 ``P`` is restored from ``next`` (or from ``prev``), leftover ``tmp`` folders
-and a stale ``prev``/``next`` are deleted. Only one process may save to a path
-at a time; concurrent writers are not coordinated.
+and a stale ``prev``/``next`` are deleted.
+
+Concurrent saves: a save holds an exclusive ``fcntl`` lock on the file
+``.<name>.densemem-lock`` beside the store for its whole run (taken before the
+recovery step). A second process (or thread) saving to the same path while the
+lock is held gets :class:`~densemem.errors.StoreBusyError` at once and changes
+nothing; the first save completes whole. Loads take no lock. Where ``fcntl``
+does not exist (Windows) saves are not coordinated.
 
 Examples
 --------
@@ -50,6 +61,7 @@ Examples
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
 import os
@@ -57,16 +69,19 @@ import secrets
 import shutil
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Iterator
 
 import numpy as np
 
-from ..errors import InputTypeError, InputValueError, StoreFormatError
+from .._util import fsync_dir, write_atomic
+from ..errors import InputTypeError, InputValueError, StoreBusyError, StoreFormatError
+from ._readers import NPY_ERRORS
 
 __all__ = ["StoreContent", "write_store", "read_store", "describe_store", "StoreInfo", "FORMAT_NAME", "FORMAT_VERSION"]
 
 FORMAT_NAME = "densemem-store"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2  # 2: the manifest carries manifest_sha256; 1 (no self-checksum) still loads
+SELF_SHA = "manifest_sha256"
 MANIFEST = "manifest.json"
 PATTERNS = "patterns.npy"
 IDS = "ids.npy"
@@ -88,17 +103,63 @@ def _sibling(p: Path, tag: str) -> Path:
     return p.parent / f".{p.name}.densemem-{tag}"
 
 
-def _fsync_dir(d: Path) -> None:
-    fd = os.open(d, os.O_RDONLY)
+@contextlib.contextmanager
+def save_lock(p: Path, where: str) -> Iterator[None]:
+    """Hold the exclusive save lock of the store at ``p`` (or raise StoreBusyError at once)."""
     try:
-        os.fsync(fd)
+        import fcntl
+    except ImportError:  # no advisory locks here (Windows): saves are not coordinated
+        yield
+        return
+    lock_path = _sibling(p, "lock")
+    while True:
+        fd = os.open(lock_path, os.O_RDWR | os.O_CREAT, 0o666)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            os.close(fd)
+            raise StoreBusyError(
+                f"{where}: another save to {str(p)!r} is running (it holds {lock_path.name!r}); "
+                "nothing was written. Retry when it has finished."
+            ) from None
+        try:
+            same = os.stat(lock_path).st_ino == os.fstat(fd).st_ino
+        except FileNotFoundError:
+            same = False
+        if same:
+            break
+        os.close(fd)  # the holder before us removed that file on release: lock the current one
+    try:
+        yield
     finally:
-        os.close(fd)
+        try:
+            os.unlink(lock_path)  # removed while still held, so no one can lock the stale file and go on
+        finally:
+            os.close(fd)
+
+
+def _content_sha256(man: dict[str, Any]) -> str:
+    body = {k: v for k, v in man.items() if k != SELF_SHA}
+    text = json.dumps(body, sort_keys=True, separators=(",", ":"), ensure_ascii=True, allow_nan=False)
+    return hashlib.sha256(text.encode("ascii")).hexdigest()
+
+
+def manifest_text(man: dict[str, Any]) -> str:
+    """The manifest as JSON text, sealed with the checksum of its own content."""
+    return json.dumps({**man, SELF_SHA: _content_sha256(man)}, indent=2, sort_keys=True)
+
+
+def _check_seal(man: dict[str, Any], mpath: Path, where: str) -> None:
+    if man.get(SELF_SHA) != _content_sha256(man):
+        raise StoreFormatError(
+            f"{where}: {str(mpath)!r} does not match its own checksum ({SELF_SHA}); the manifest is damaged "
+            "or was edited by hand."
+        )
 
 
 def _rename(src: Path, dst: Path) -> None:
     os.rename(src, dst)
-    _fsync_dir(dst.parent)
+    fsync_dir(dst.parent)
 
 
 def _is_store(d: Path) -> bool:
@@ -131,7 +192,7 @@ def _recover(p: Path) -> None:
     for stale in [nxt, prev, *p.parent.glob(f".{p.name}.densemem-tmp-*")]:
         if stale.is_dir():
             shutil.rmtree(stale)
-    _fsync_dir(p.parent)
+    fsync_dir(p.parent)
 
 
 # -------------------------------------------------------------------- writing
@@ -207,9 +268,9 @@ def _fill_folder(content: StoreContent, tmp: Path) -> None:
     if content.index is not None:
         man["files"][INDEX] = _write_index(tmp / INDEX, content.index)
         man["index"] = {"file": INDEX, "meta": content.index_meta or {}}
-    text = json.dumps(man, indent=2, sort_keys=True).encode("utf-8")
+    text = manifest_text(man).encode("utf-8")
     _write_file(tmp / MANIFEST, lambda fh: fh.write(text))
-    _fsync_dir(tmp)
+    fsync_dir(tmp)
 
 
 def write_store(content: StoreContent, path: Any, *, overwrite: bool = True, where: str = "DenseMemory.save") -> None:
@@ -246,22 +307,23 @@ def write_store(content: StoreContent, path: Any, *, overwrite: bool = True, whe
     p = _as_path(path, where)
     if not p.parent.is_dir():
         raise InputValueError(f"{where}: the parent folder of `path` does not exist: {str(p.parent)!r}.")
-    _recover(p)
-    _check_target(p, overwrite, where)
-    tmp = _sibling(p, f"tmp-{os.getpid()}-{secrets.token_hex(4)}")
-    tmp.mkdir()
-    try:
-        _fill_folder(content, tmp)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    nxt, prev = _sibling(p, "next"), _sibling(p, "prev")
-    _rename(tmp, nxt)
-    if p.exists():
-        _rename(p, prev)
-    _rename(nxt, p)
-    if prev.exists():
-        shutil.rmtree(prev)
+    with save_lock(p, where):
+        _recover(p)
+        _check_target(p, overwrite, where)
+        tmp = _sibling(p, f"tmp-{os.getpid()}-{secrets.token_hex(4)}")
+        tmp.mkdir()
+        try:
+            _fill_folder(content, tmp)
+        except BaseException:
+            shutil.rmtree(tmp, ignore_errors=True)
+            raise
+        nxt, prev = _sibling(p, "next"), _sibling(p, "prev")
+        _rename(tmp, nxt)
+        if p.exists():
+            _rename(p, prev)
+        _rename(nxt, p)
+        if prev.exists():
+            shutil.rmtree(prev)
 
 
 def _check_target(p: Path, overwrite: bool, where: str) -> None:
@@ -282,10 +344,12 @@ def _check_target(p: Path, overwrite: bool, where: str) -> None:
 
 
 # -------------------------------------------------------------------- reading
-def read_json_manifest(mpath: Path, *, name: str, version: int, missing: str, where: str) -> dict[str, Any]:
-    """Read a manifest file and check its format name and version (shared with shard stores).
+def read_json_manifest(mpath: Path, *, name: str, version: int, missing: str, where: str,
+                       unsealed: tuple[int, ...] = ()) -> dict[str, Any]:
+    """Read a manifest file and check its format name, version and own checksum (shared with shard stores).
 
-    ``missing`` is the message used when the file does not exist.
+    ``missing`` is the message used when the file does not exist; ``unsealed``
+    lists older versions written without the self-checksum (read without it).
     """
     try:
         with open(mpath, encoding="utf-8") as fh:
@@ -296,18 +360,21 @@ def read_json_manifest(mpath: Path, *, name: str, version: int, missing: str, wh
         raise StoreFormatError(f"{where}: {str(mpath)!r} is not valid JSON ({exc}).") from None
     if not isinstance(man, dict) or man.get("format") != name:
         raise StoreFormatError(f"{where}: {str(mpath)!r} is not a {name} manifest.")
-    if man.get("format_version") != version:
+    found = man.get("format_version")
+    if found != version and not (found in unsealed and type(found) is int):
+        older = "".join(f" (and {v})" for v in unsealed)
         raise StoreFormatError(
-            f"{where}: {str(mpath)!r} has format_version {man.get('format_version')!r}; "
-            f"this densemem reads version {version}."
+            f"{where}: {str(mpath)!r} has format_version {found!r}; this densemem reads version {version}{older}."
         )
+    if found == version or SELF_SHA in man:  # an old version never carries the key: one that does is damaged
+        _check_seal(man, mpath, where)
     return man
 
 
 def _read_manifest(folder: Path, where: str) -> dict[str, Any]:
     mpath = folder / MANIFEST
     man = read_json_manifest(
-        mpath, name=FORMAT_NAME, version=FORMAT_VERSION, where=where,
+        mpath, name=FORMAT_NAME, version=FORMAT_VERSION, where=where, unsealed=(1,),
         missing=f"the store has no {MANIFEST} ({str(mpath)!r} is missing).",
     )
     needed = {"dim": int, "count": int, "normalize": bool, "beta": float, "id_kind": str, "files": dict}
@@ -342,8 +409,14 @@ def _npy_dtype(fpath: Path, where: str) -> np.dtype:
         with open(fpath, "rb") as fh:
             version = fmt.read_magic(fh)
             reader = fmt.read_array_header_1_0 if version == (1, 0) else fmt.read_array_header_2_0
-            _, _, dtype = reader(fh)
-    except (ValueError, OSError, EOFError) as exc:
+            shape, _, dtype = reader(fh)
+            claimed = int(dtype.itemsize)
+            for n in shape:
+                claimed *= int(n)
+            holds = os.fstat(fh.fileno()).st_size - fh.tell()
+            if claimed > holds and not dtype.hasobject:  # refused before np.load allocates the claimed size
+                raise ValueError(f"its header claims {claimed} bytes of data but the file holds {max(holds, 0)}")
+    except NPY_ERRORS as exc:
         raise StoreFormatError(f"{where}: {str(fpath)!r} is not a readable .npy file ({exc}).") from None
     return dtype
 
@@ -355,7 +428,7 @@ def _load_array(fpath: Path, mmap: bool, where: str) -> np.ndarray:
         )
     try:
         arr = np.load(fpath, mmap_mode="r" if mmap else None, allow_pickle=False)
-    except (ValueError, OSError, EOFError) as exc:
+    except NPY_ERRORS as exc:
         raise StoreFormatError(f"{where}: {str(fpath)!r} is not a readable .npy file ({exc}).") from None
     return arr
 
@@ -517,3 +590,45 @@ def describe_store(path: Any, *, verify: bool = True) -> StoreInfo:
         index=man.get("index"),
         verified=verify,
     )
+
+
+def set_stored_beta(path: Any, beta: float) -> float:
+    """Replace the default beta in the manifest of the store folder ``path``, atomically.
+
+    Only ``manifest.json`` changes (the arrays and their checksums stay): the
+    new manifest is written to a temp file in the store folder, fsynced and
+    moved over the old one with ``os.replace``, so a reader sees the old beta
+    or the new one. Returns the beta that was stored before.
+
+    Raises
+    ------
+    InputTypeError
+        ``beta`` is not a real number.
+    InputValueError
+        ``beta`` is not finite and > 0.
+    StoreFormatError
+        ``path`` is not a complete store folder.
+
+    Examples
+    --------
+    >>> import tempfile, os, numpy as np, densemem
+    >>> from densemem.store._folder import set_stored_beta
+    >>> path = os.path.join(tempfile.mkdtemp(), "store")
+    >>> densemem.DenseMemory.from_array(np.eye(2), beta=4.0).save(path)
+    >>> set_stored_beta(path, 30.0), densemem.DenseMemory.load(path).beta
+    (4.0, 30.0)
+    """
+    where = "set_stored_beta"
+    if isinstance(beta, bool) or not isinstance(beta, (int, float, np.integer, np.floating)):
+        raise InputTypeError(f"{where}: `beta` must be a real number; got {type(beta).__name__}.")
+    if not (np.isfinite(beta) and beta > 0):
+        raise InputValueError(f"{where}: `beta` must be a finite number > 0; got {float(beta)!r}.")
+    p = _as_path(path, where)
+    if not p.is_dir():
+        raise StoreFormatError(f"{where}: there is no store folder at {str(p)!r}.")
+    man = _read_manifest(p, where)
+    old = float(man["beta"])
+    man["beta"] = float(beta)
+    with save_lock(p, where):
+        write_atomic(p / MANIFEST, manifest_text(man), where=where)  # with its own checksum, fsynced
+    return old

@@ -19,7 +19,10 @@ from __future__ import annotations
 import contextlib
 import csv
 import os
+import struct
+import tokenize
 import zipfile
+import zlib
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -28,7 +31,7 @@ from typing import Any
 import numpy as np
 
 from .._validation import as_float_matrix, check_ids
-from ..errors import InputTypeError, InputValueError, MissingExtraError
+from ..errors import DenseMemError, InputTypeError, InputValueError, MissingExtraError
 
 __all__ = ["EmbeddingTable", "read_embeddings", "SUFFIXES"]
 
@@ -166,14 +169,33 @@ def _about(subject: str) -> Iterator[None]:
 
 
 _NPY_MAGIC = b"\x93NUMPY"
+# what numpy's .npy header parser and loader raise on damaged bytes (the header is a Python
+# literal: a damaged one can raise SyntaxError or a tokenizer error, an odd dtype TypeError)
+NPY_ERRORS: tuple[type[BaseException], ...] = (
+    ValueError, OSError, EOFError, SyntaxError, tokenize.TokenError, TypeError, KeyError, OverflowError,
+    struct.error, zlib.error,
+)
+# a damaged zip can also claim encryption (RuntimeError) or an unknown compression method
+_NPZ_ERRORS = NPY_ERRORS + (zipfile.BadZipFile, zipfile.LargeZipFile, NotImplementedError, RuntimeError)
 
 
-def _npy_header(fh: Any) -> tuple[tuple[int, ...], np.dtype]:
-    """Shape and dtype from a .npy header; ValueError when it is not one."""
+def _npy_header(fh: Any, available: int | None = None) -> tuple[tuple[int, ...], np.dtype]:
+    """Shape and dtype from a .npy header; ValueError when it is not one.
+
+    With ``available`` (the bytes the file or member holds), a header claiming
+    more data than that is refused before anything is allocated.
+    """
     fmt = np.lib.format
     version = fmt.read_magic(fh)
     reader = fmt.read_array_header_1_0 if version == (1, 0) else fmt.read_array_header_2_0
     shape, _, dtype = reader(fh)
+    if available is not None and not dtype.hasobject:  # object arrays are pickled (and refused)
+        claimed = int(dtype.itemsize)
+        for n in shape:
+            claimed *= int(n)
+        holds = available - fh.tell()
+        if claimed > holds:
+            raise ValueError(f"its header claims {claimed} bytes of data but the file holds {max(holds, 0)}")
     return shape, dtype
 
 
@@ -187,8 +209,8 @@ def _read_npy(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, Any]
             )
         fh.seek(0)
         try:
-            _, dtype = _npy_header(fh)
-        except ValueError as exc:
+            _, dtype = _npy_header(fh, os.fstat(fh.fileno()).st_size)
+        except NPY_ERRORS as exc:
             raise InputValueError(f"{_WHERE}: {str(p)!r} is not a valid .npy file ({exc}).") from None
     if dtype.hasobject:
         raise InputValueError(
@@ -197,7 +219,7 @@ def _read_npy(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, Any]
         )
     try:
         arr = np.load(p, allow_pickle=False)
-    except (ValueError, OSError, EOFError) as exc:
+    except NPY_ERRORS as exc:
         raise InputValueError(f"{_WHERE}: {str(p)!r} is not a valid .npy file ({exc}).") from None
     return arr, None, None, None
 
@@ -219,7 +241,7 @@ def _read_npz(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, Any]
                     raise _object_member(p, [name])
             vectors = z[column]
             ids = z[id_column] if id_column is not None else None
-    except (ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
+    except _NPZ_ERRORS as exc:
         if isinstance(exc, InputValueError):
             raise
         raise InputValueError(f"{_WHERE}: {str(p)!r} is not a valid .npz file ({exc}).") from None
@@ -250,8 +272,8 @@ def _member_header(p: Path, z: Any, name: str) -> tuple[tuple[int, ...], np.dtyp
     """Shape and dtype of an npz member from its header alone."""
     try:
         with z.zip.open(name + ".npy") as fh:
-            return _npy_header(fh)
-    except (ValueError, EOFError) as exc:
+            return _npy_header(fh, z.zip.getinfo(name + ".npy").file_size)
+    except _NPZ_ERRORS as exc:
         raise InputValueError(f"{_WHERE}: {str(p)!r} is not a valid .npz file (member {name!r}: {exc}).") from None
 
 
@@ -270,9 +292,21 @@ def _pyarrow() -> Any:
 def _read_parquet(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, Any]:
     pa, pc, pq = _pyarrow()
     try:
-        schema = pq.read_schema(p)
-    except (pa.ArrowException, OSError) as exc:
+        return _parquet_columns(p, column, id_column, pa, pc, pq)
+    except DenseMemError:
+        raise
+    except _DECODE_ERRORS + (pa.ArrowException,) as exc:  # damaged bytes surface as any of these
         raise _not_parquet(p, exc) from None
+
+
+# what a damaged file can raise from inside pyarrow or while decoding its cells
+_DECODE_ERRORS: tuple[type[BaseException], ...] = (
+    OSError, ValueError, UnicodeDecodeError, KeyError, IndexError, TypeError, OverflowError, EOFError,
+)
+
+
+def _parquet_columns(p: Path, column: Any, id_column: Any, pa: Any, pc: Any, pq: Any) -> tuple[Any, Any, Any, Any]:
+    schema = pq.read_schema(p)
     names = schema.names
     if column is None:
         lists = [f.name for f in schema if pa.types.is_list(f.type) or pa.types.is_fixed_size_list(f.type)
@@ -286,10 +320,7 @@ def _read_parquet(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, 
     for name in (column, id_column):
         if name is not None and name not in names:
             raise InputValueError(f"{_WHERE}: {p.name} has no column {name!r}; it has {names}.")
-    try:
-        table = pq.read_table(p, columns=[c for c in (column, id_column) if c is not None])
-    except (pa.ArrowException, OSError) as exc:
-        raise _not_parquet(p, exc) from None
+    table = pq.read_table(p, columns=[c for c in (column, id_column) if c is not None])
     col = table.column(column).combine_chunks()
     vectors = _list_column_to_matrix(col, pa, pc, f"{p.name} column {column!r}")
     ids = None
@@ -302,7 +333,7 @@ def _read_parquet(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, 
 
 
 def _not_parquet(p: Path, exc: Exception) -> InputValueError:
-    return InputValueError(f"{_WHERE}: {str(p)!r} is not a readable parquet file ({exc}).")
+    return InputValueError(f"{_WHERE}: {str(p)!r} is not a readable parquet file ({type(exc).__name__}: {exc}).")
 
 
 def _list_column_to_matrix(col: Any, pa: Any, pc: Any, label: str) -> np.ndarray:
@@ -346,6 +377,8 @@ def _read_text(p: Path, column: Any, id_column: Any) -> tuple[Any, Any, Any, Any
         raise InputValueError(
             f"{_WHERE}: {str(p)!r} is not UTF-8 text (cannot decode byte 0x{bad}); save it as UTF-8."
         ) from None
+    except csv.Error as exc:  # e.g. a NUL byte
+        raise InputValueError(f"{_WHERE}: {str(p)!r} is not readable as delimited text ({exc}).") from None
     if not rows:
         raise InputValueError(f"{_WHERE}: {str(p)!r} has no rows.")
     header = _detect_header(rows)

@@ -13,6 +13,8 @@ from ._reports import (
     TuneReport,
     format_report,
     plot_sweep,
+    tune_text,
+    verdict,
 )
 from ._sparse import ExactRecallReport, exact_recall_beta
 from ._sweep import choose_beta, sweep_beta
@@ -35,4 +37,6 @@ __all__ = [
     "separation",
     "sweep_beta",
     "tune_beta",
+    "tune_text",
+    "verdict",
 ]

@@ -8,29 +8,11 @@ from typing import Any
 
 import numpy as np
 
+from .._util import to_plain
 from ..errors import InputTypeError, InputValueError, MissingExtraError
 
 
 KINDS = ("single", "metastable", "global")  # codes 0, 1, 2 of SweepReport.kind
-
-
-def _plain(value: Any) -> Any:
-    """JSON-ready copy: arrays to lists, NaN and infinities to None."""
-    if isinstance(value, _Report):
-        return value.to_dict()
-    if isinstance(value, np.ndarray):
-        if value.dtype.kind == "f":
-            return [_plain(v) for v in value.tolist()] if value.ndim else _plain(float(value))
-        return value.tolist()
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, float):
-        return value if math.isfinite(value) else None
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    return value
 
 
 class _Report:
@@ -53,7 +35,7 @@ class _Report:
         >>> json.loads(json.dumps(t.separation(mem).to_dict()))["rival_ids"]
         [1, 0, 1]
         """
-        return {f.name: _plain(getattr(self, f.name)) for f in fields(self)}  # type: ignore[arg-type]
+        return {f.name: to_plain(getattr(self, f.name)) for f in fields(self)}  # type: ignore[arg-type]
 
 
 @dataclass(frozen=True, slots=True, repr=False)
@@ -227,18 +209,113 @@ def _kv(title: str, rows: dict[str, Any]) -> str:
     return "\n".join([title] + [f"  {k:<{width}}  {_g(v) if not isinstance(v, str) else v}" for k, v in rows.items()])
 
 
-def _sweep_table(r: SweepReport) -> str:
-    cols = [
-        ("beta", r.betas), ("top1", r.accuracy), ("sharp", r.sharp_fraction), ("top_w", r.top_weight),
-        ("blend", r.blend_size), ("pr", r.participation), ("d_near", r.nearest_distance),
-        ("single", r.fraction_single), ("meta", r.fraction_metastable), ("global", r.fraction_global),
-        ("energy", r.energy),
+#: Sweep table columns: (heading, SweepReport field, legend line).
+SWEEP_COLUMNS = (
+    ("beta", "betas", "inverse temperature of the softmax update"),
+    ("sharp", "sharp_fraction", "share of noisy queries whose heaviest item is their own, with weight >= {sw:g}"),
+    ("top weight", "top_weight", "mean weight of the heaviest item (1 = all weight on one item)"),
+    ("blend", "blend_size", "mean exp(entropy) of the weights: how many items the state blends (1 = one)"),
+    ("particip.", "participation", "mean participation ratio 1 / sum w^2 (1 = one item, n = n equal items)"),
+    ("dist item", "nearest_distance", "mean distance of the returned state to its nearest stored item"),
+    ("single", "fraction_single", "share of queries in the single regime"),
+    ("metastable", "fraction_metastable", "share of queries in the metastable regime"),
+    ("global", "fraction_global", "share of queries in the global regime"),
+    ("energy", "energy", "mean log-sum-exp energy of the returned states"),
+)
+
+
+def regime_lines(settings: dict[str, Any]) -> list[str]:
+    """One line per regime of the sweep's classification (single, metastable, global)."""
+    pr, gf = settings.get("single_pr", 1.5), settings.get("global_frac", 0.1)
+    return [
+        f"single      the state is one stored item (participation ratio below {pr:g}): sharp recall.",
+        "metastable  the state blends a small group of similar items: neither one item nor the mean.",
+        f"global      the state sits near the mean of all stored items (within {gf:g} of their spread): "
+        "beta is too small to tell items apart.",
     ]
-    head = "  ".join(f"{name:>9}" for name, _ in cols)
-    lines = [head] + ["  ".join(f"{_g(c[i]):>9}" for _, c in cols) for i in range(len(r.betas))]
-    if r.predicted_beta is not None:
-        lines.append(f"predicted beta: {_g(r.predicted_beta)}")
+
+
+def _sweep_table(r: SweepReport) -> str:
+    sw = float(r.settings.get("sharp_weight", 0.95))
+    cols = [(h, getattr(r, f)) for h, f, _ in SWEEP_COLUMNS]
+    width = max(10, *(len(h) for h, _ in cols))
+    head = "  ".join(f"{name:>{width}}" for name, _ in cols)
+    lines = [head] + ["  ".join(f"{_g(c[i]):>{width}}" for _, c in cols) for i in range(len(r.betas))]
+    lines += ["", "legend"] + [f"  {h:<10}  {text.format(sw=sw)}" for h, _, text in SWEEP_COLUMNS]
     return "\n".join(lines)
+
+
+def _queries_phrase(settings: dict[str, Any]) -> str:
+    n = settings.get("n_queries", "?")
+    if settings.get("queries") == "generated":
+        return (f"{n} noisy copies of stored items ({settings.get('corruption')} corruption, level "
+                f"{_g(settings.get('level'))}, {settings.get('steps', 1)} update step(s))")
+    return f"{n} given queries"
+
+
+def verdict(report: TuneReport) -> str:
+    """The first line of the tuning report: which beta to use and what it gives."""
+    c, sw = report.choice, report.sweep
+    settings = sw.settings if sw is not None else {}
+    if c is None:
+        return "verdict: no automatic choice was asked for (--target none); read the sweep below."
+    if c.beta is None or not c.reached:
+        return (f"verdict: no beta in the searched range reaches the {c.target} goal ({_g(c.goal)}; best "
+                f"{_g(c.value)}): {c.note}.")
+    if c.target == "sharp":
+        sharp_w = float(settings.get("sharp_weight", 0.95))
+        return (f"verdict: for sharp recall use beta = {_g(c.beta)}: {c.value:.1%} of the noisy queries end on "
+                f"their own item with weight >= {sharp_w:g} (goal {c.goal:.0%}).")
+    return (f"verdict: for blends of about {_g(c.goal)} items use beta = {_g(c.beta)} (measured blend size "
+            f"{_g(c.value)}).")
+
+
+def _predicted_vs_measured(report: TuneReport) -> str:
+    p, c = report.prediction, report.choice
+    pred = p.beta_target_separated
+    lines = [f"predicted beta {_g(pred)}: the smallest beta at which {p.target_fraction:.0%} of the stored items "
+             "meet the well-separated condition (Ramsauer et al. 2021) computed from their separation Delta "
+             "from the nearest rival item."]
+    if c is not None and c.beta is not None and c.target == "sharp" and math.isfinite(pred) and c.beta > 0:
+        ratio = pred / c.beta
+        if ratio >= 1:
+            lines.append(f"It is {ratio:.2g} x the measured beta {_g(c.beta)}: the condition is sufficient, not "
+                         "necessary (it guards against the worst query direction and holds the state inside a "
+                         "tiny ball), so real queries turn sharp well before it. Use the measured beta; the "
+                         "predicted one is a safe upper value.")
+        else:
+            lines.append(f"It is below the measured beta {_g(c.beta)} ({ratio:.2g} x): the noisy queries lie "
+                         "farther from their items than the condition's radius, so they need a larger beta.")
+    elif not math.isfinite(pred):
+        lines.append("It is infinite: too many stored items have a rival as close as themselves (see the "
+                     "inseparable share below); no beta separates them.")
+    return "\n".join(lines)
+
+
+def tune_text(report: TuneReport, *, apply_hint: str | None = None, extra: list[str] | None = None) -> str:
+    """The tuning report in words: verdict, sweep table with legend, regimes, predicted against measured.
+
+    Examples
+    --------
+    >>> import numpy as np, densemem, densemem.tuning as t
+    >>> mem = densemem.DenseMemory.from_array(np.eye(8))
+    >>> rep = t.tune_beta(mem, t.TuneSpec(n_betas=5, n_queries=16))
+    >>> t.tune_text(rep).startswith("verdict: for sharp recall use beta = ")
+    True
+    """
+    parts = [verdict(report)]
+    if apply_hint and report.choice is not None and report.choice.beta is not None:
+        parts[0] += "\n" + apply_hint
+    parts += list(extra or [])
+    if report.sweep is not None:
+        parts.append(f"measured sweep: {_queries_phrase(report.sweep.settings)}\n{_sweep_table(report.sweep)}")
+        parts.append("regimes\n" + "\n".join("  " + line for line in regime_lines(report.sweep.settings)))
+    parts.append("predicted against measured\n" + _predicted_vs_measured(report))
+    sep = report.separation.summary
+    parts.append(f"separation Delta (exact over {len(report.separation.ids)} items; median {_g(sep.get('delta_median'))}, "
+                 f"smallest {_g(sep.get('delta_min'))}); inseparable items (a rival as close as the item itself): "
+                 f"{float(sep.get('fraction_inseparable', 0.0)):.1%}")
+    return "\n\n".join(parts)
 
 
 def format_report(report: Any) -> str:
@@ -270,8 +347,8 @@ def format_report(report: Any) -> str:
         rows.update({f"support at beta={_g(b)}": s for b, s in zip(report.dial_betas, report.dial_support)})
         return _kv("exact single-item recall (Fenchel-Young margin)", rows)
     if isinstance(report, TuneReport):
-        parts = [report.separation, report.prediction, report.sweep, report.choice, report.exact_recall]
-        return "\n\n".join(format_report(p) for p in parts if p is not None)
+        parts = [report.separation, report.prediction, report.choice, report.exact_recall]
+        return tune_text(report) + "\n\ndetails\n\n" + "\n\n".join(format_report(p) for p in parts if p is not None)
     raise InputTypeError(
         f"format_report: `report` must be a densemem.tuning report; got {type(report).__name__}."
     )
@@ -283,8 +360,9 @@ def plot_sweep(
 ) -> Any:
     """Draw a sweep as a PNG: metrics against beta on a log axis.
 
-    Top panel: top-1 accuracy, sharp fraction, mean top weight and the
-    fractions of single / metastable / global states. Bottom panel: mean
+    Top panel: sharp fraction, mean top weight and the fractions of single /
+    metastable / global states (top-1 accuracy is left out: after one step
+    from a noisy copy it is flat in beta by construction). Bottom panel: mean
     effective blend size exp(H) and participation ratio (log scale). Vertical
     lines mark the predicted beta (default: ``report.predicted_beta``) and a
     chosen beta when given. Needs matplotlib (``pip install densemem[plot]``).
@@ -313,10 +391,10 @@ def plot_sweep(
     out = Path(path)
     if not out.parent.is_dir():
         raise InputValueError(f"plot_sweep: the folder of `path` does not exist; got {str(out)!r}.")
-    fig = Figure(figsize=(7.5, 6.5), layout="constrained")
+    fig = Figure(figsize=(9.5, 6.5), layout="constrained")
     top, bottom = fig.subplots(2, 1, sharex=True)
     b = report.betas
-    for label, y in [("top-1 accuracy", report.accuracy), ("sharp fraction", report.sharp_fraction),
+    for label, y in [("sharp fraction", report.sharp_fraction),
                      ("mean top weight", report.top_weight), ("single", report.fraction_single),
                      ("metastable", report.fraction_metastable), ("global", report.fraction_global)]:
         top.plot(b, y, marker=".", label=label)
@@ -334,7 +412,18 @@ def plot_sweep(
         if pred is not None and math.isfinite(pred):
             ax.axvline(pred, color="k", linestyle="--", linewidth=1, label="predicted beta")
         if chosen_beta is not None:
-            ax.axvline(chosen_beta, color="r", linestyle=":", linewidth=1.2, label="chosen beta")
-        ax.legend(fontsize=7, loc="best")
+            ax.axvline(chosen_beta, color="r", linestyle=":", linewidth=1.2, label=f"chosen beta {chosen_beta:.4g}")
+        ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)  # beside, not over
     fig.savefig(out, format="png", dpi=110)
     return out
+
+
+def plot_sweep_figure(report: SweepReport, *, predicted_beta: float | None = None,
+                      chosen_beta: float | None = None) -> bytes:
+    """The PNG bytes of :func:`plot_sweep` (for reports that embed the figure)."""
+    import tempfile
+    from pathlib import Path
+
+    with tempfile.TemporaryDirectory() as d:
+        path = plot_sweep(report, Path(d) / "sweep.png", predicted_beta=predicted_beta, chosen_beta=chosen_beta)
+        return path.read_bytes()

@@ -23,7 +23,8 @@ from typing import Any
 import numpy as np
 
 from ._reports import SeparationReport, _Report
-from ._theory import _check_fraction, _check_memory, _target_beta, separation
+from ._theory import _check_memory, _target_beta, separation
+from .._validation import check_positive_fraction
 from ..dense import DenseMemory
 from ..errors import InputValueError
 from ..options import check_weighting
@@ -120,7 +121,7 @@ def exact_recall_beta(
     if name == "softmax" or a is None:
         raise InputValueError(f"{where}: `weighting` must be a sparse map ('sparsemax', 'entmax15' or 'entmax'); "
                               "softmax never returns a stored pattern exactly.")
-    fraction = _check_fraction(fraction, "fraction", where)
+    fraction = check_positive_fraction(fraction, name="fraction", where=where)
     sep = separation(memory) if separation_report is None else separation_report
     n = len(memory)
     if not isinstance(sep, SeparationReport) or len(sep.delta) != n:

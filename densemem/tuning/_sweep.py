@@ -5,6 +5,7 @@ Public names are re-exported by :mod:`densemem.tuning`.
 
 from __future__ import annotations
 
+import contextvars
 import math
 from collections.abc import Callable
 from typing import Any
@@ -12,17 +13,25 @@ from typing import Any
 import faiss
 import numpy as np
 
-from ..core.weight_stats import weight_stats
-from ._queries import CORRUPTIONS, corrupt
+from ..core import partial as P
+from ..core.exact import exact_reduce
+from ..core.candidates import CertifiedOptions
+from ..core.rows import TableRows, finish
+from ..core.steps import Steps, run_steps
+from .._synthetic import corrupt
+
+CORRUPTIONS = ("gaussian", "mask", "mix")  # the kinds of densemem._synthetic a sweep offers
 from ._reports import BetaChoice, SweepReport
-from ._theory import _check_fraction, _check_memory
+from ._theory import _check_memory
 from .._validation import (
     as_rng,
+    check_positive_fraction,
     check_beta,
     check_k,
     check_nonneg_float,
     check_positive_int,
     check_queries,
+    unit_rows,
 )
 from ..dense import DenseMemory
 from ..errors import InputValueError, UnknownIdError
@@ -84,11 +93,13 @@ def _make_queries(
             raise InputValueError(f"{where}: `sources` is only used with `queries`; got sources without queries.")
         level = _check_level(opts["corruption"], opts["level"], where)
         n_q = check_positive_int(opts["n_queries"], name="n_queries", where=where)
-        rng = as_rng(opts["seed"])
+        rng = as_rng(opts["seed"], where=where)
         n = len(memory)
         rows = rng.choice(n, size=n_q, replace=n_q > n)
         rivals = _rivals(memory.patterns, rows) if opts["corruption"] == "mix" else None
-        q = corrupt(memory.patterns, rows, corruption=opts["corruption"], level=level, rng=rng, rivals=rivals)
+        x = memory.patterns
+        q = corrupt(x[rows], opts["corruption"], level, rng,
+                    rivals=None if rivals is None else x[rivals]).astype(np.float32)
         src: np.ndarray | None = memory.ids[rows]
         seed = opts["seed"] if opts["seed"] is None or isinstance(opts["seed"], int) else repr(opts["seed"])
         info = {"queries": "generated", "corruption": opts["corruption"], "level": level, "seed": seed}
@@ -101,7 +112,7 @@ def _make_queries(
         norms = np.linalg.norm(q, axis=1)
         if np.any(norms == 0):
             raise InputValueError(
-                f"{where}: query row {int(np.flatnonzero(norms == 0)[0])} has zero norm and cannot be normalised."
+                f"{where}: query row {int(np.flatnonzero(norms == 0)[0])} has zero norm and cannot be normalized."
             )
         q = (q / norms[:, None]).astype(np.float32)
     return q, src, {**info, "n_queries": int(q.shape[0])}
@@ -114,37 +125,60 @@ def _rivals(x: np.ndarray, rows: np.ndarray) -> np.ndarray:
 
 
 # ---------------------------------------------------------------- measure
-def _last_input(memory: DenseMemory, q: np.ndarray, beta: float, run: dict[str, Any]) -> np.ndarray:
-    """The state the last update starts from (the query itself for one step)."""
-    if run["steps"] == 1:
-        return q
-    prev = memory.retrieve(q, beta, steps=run["steps"] - 1, tol=run["tol"], k=1, method=run["method"],
-                           return_energy=False)
-    return prev.states
+def _one_beta(memory: DenseMemory, q: np.ndarray, beta: float, run: dict[str, Any], k: int) -> Steps:
+    """Retrieve ``q`` at ``beta``; each step's info carries the entropy and PR of its weights.
 
+    "exact" and "auto": one exact pass per step gives the states, the top list
+    and (from the same partial's moments) the statistics of all N weights; auto
+    takes it because the statistics need every row anyway, so no candidate
+    path can be cheaper. "certified" and "index": the asked path gives the
+    answers and a pass without the weighted sum gives the statistics. The step
+    loop keeps, per query, the info of its last update.
+    """
+    x, ids = memory.patterns, memory.ids
+    cert = CertifiedOptions(tile_mib=memory.tile_mib)  # retrieve's defaults
+    index = (lambda: memory._fresh_index(where="sweep_beta")) if run["method"] == "index" else None
+    rows = TableRows(x, ids, memory.max_norm, run["method"], memory.tile_mib, memory.n_threads, max(k, 32), index)
 
-def _weights(memory: DenseMemory, q: np.ndarray, beta: float, run: dict[str, Any]) -> Any:
-    inp = _last_input(memory, q, beta, run)
-    return weight_stats(inp, memory.patterns, beta, tile_mib=memory.tile_mib, n_threads=memory.n_threads)
+    def stats(states: np.ndarray, kk: int, acc: bool) -> P.Finished:
+        part = exact_reduce(states, x, beta, k=kk, tile_mib=memory.tile_mib, n_threads=memory.n_threads,
+                            need_acc=acc, moments=True)
+        return P.finish(part)
+
+    def one_pass(states: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, dict[str, Any]]:
+        if run["method"] in ("exact", "auto"):
+            fin = stats(states, k, True)
+            assert fin.states is not None
+            new, top_ids, top_w = fin.states, ids[fin.top_i], fin.top_w
+        else:
+            got, top_ids = finish(rows.reduce(states, beta, k=k, need_acc=True, cert=cert))  # misses: fill ids
+            assert got.states is not None
+            new, top_w = got.states, got.top_w
+            fin = stats(states, 0, False)
+        return new, top_ids, top_w, {"entropy": fin.entropy, "participation": fin.participation}
+
+    if memory.normalize:  # as DenseMemory.retrieve does with its queries
+        q = unit_rows(q, where="sweep_beta", what="query")
+    return run_steps(one_pass, q, steps=run["steps"], tol=run["tol"], max_norm=memory.max_norm, k=k)
 
 
 def _measure(memory: DenseMemory, q: np.ndarray, src: np.ndarray | None, beta: float, run: dict[str, Any],
              geometry: tuple[np.ndarray, float]) -> dict[str, np.ndarray]:
     """Everything the sweep records for one beta, per query."""
-    res = memory.retrieve(q, beta, steps=run["steps"], tol=run["tol"], k=run["k"], method=run["method"])
-    ws = _weights(memory, q, beta, run)
+    res = _one_beta(memory, q, beta, run, run["k"])
     states = np.ascontiguousarray(res.states, dtype=np.float32)
+    energy = memory.energy(states, beta)
     d2, _ = faiss.knn(states, memory.patterns, 1, metric=faiss.METRIC_L2)
     mean, spread = geometry
     d_mean = np.linalg.norm(states.astype(np.float64) - mean, axis=1)
-    pr = ws.participation
+    pr = res.info["participation"]
     kind = np.where(pr < run["single_pr"], 0, np.where(d_mean <= run["global_frac"] * spread, 2, 1))
-    correct = None if src is None else res.top_ids[:, 0] == src
+    correct = None if src is None else res.ids[:, 0] == src
     return {
-        "top_ids": res.top_ids, "top_weights": res.top_weights, "entropy": ws.entropy, "participation": pr,
+        "top_ids": res.ids, "top_weights": res.weights, "entropy": res.info["entropy"], "participation": pr,
         "nearest": np.sqrt(np.maximum(d2[:, 0].astype(np.float64), 0.0)), "kind": kind.astype(np.int8),
-        "energy": np.asarray(res.energy, dtype=np.float64), "correct": correct,
-        "sharp": (res.top_weights[:, 0] >= run["sharp_weight"]) & (True if correct is None else correct),
+        "energy": np.asarray(energy, dtype=np.float64), "correct": correct,
+        "sharp": (res.weights[:, 0] >= run["sharp_weight"]) & (True if correct is None else correct),
     }
 
 
@@ -157,7 +191,7 @@ def _check_run(memory: DenseMemory, opts: dict[str, Any], where: str) -> dict[st
         "tol": check_nonneg_float(opts["tol"], name="tol", where=where),
         "k": min(10, n) if opts.get("k") is None else check_k(opts["k"], n=n, where=where),
         "method": opts["method"],
-        "sharp_weight": _check_fraction(opts["sharp_weight"], "sharp_weight", where),
+        "sharp_weight": check_positive_fraction(opts["sharp_weight"], name="sharp_weight", where=where),
         "single_pr": check_nonneg_float(opts.get("single_pr", 1.5), name="single_pr", where=where),
         "global_frac": check_nonneg_float(opts.get("global_frac", 0.1), name="global_frac", where=where),
     }
@@ -260,7 +294,10 @@ def sweep_beta(
         else _check_betas(betas, where)
     q, src, info = _make_queries(memory, queries, sources, opts, where)
     geometry = _geometry(memory)
-    per = [_measure(memory, q, src, float(b), run, geometry) for b in grid]
+    per = []
+    for b in grid:
+        per.append(_measure(memory, q, src, float(b), run, geometry))
+        _ticked()
     return _sweep_report(grid, per, src, {**info, **run, "n_patterns": len(memory)}, predicted_beta)
 
 
@@ -293,6 +330,16 @@ def _sweep_report(grid: np.ndarray, per: list[dict[str, Any]], src: np.ndarray |
 
 
 # ------------------------------------------------------------ choose beta
+#: A progress tick set by :func:`densemem.tuning.tune_beta` for one call (None: no bar).
+TICK: contextvars.ContextVar[Callable[[], None] | None] = contextvars.ContextVar("densemem_tune_tick", default=None)
+
+
+def _ticked() -> None:
+    tick = TICK.get()
+    if tick is not None:
+        tick()
+
+
 def _bisect(f: Callable[[float], float], lo: float, hi: float, rtol: float, up: Callable[[float], bool],
             log: list[tuple[float, float]]) -> tuple[float, float]:
     """Shrink [lo, hi] in log beta, keeping ``up(f(hi))`` true and ``up(f(lo))`` false."""
@@ -387,7 +434,7 @@ def choose_beta(
         raise InputValueError(f"{where}: `beta_min` must be below `beta_max`; got {lo!r} and {hi!r}.")
     rtol = check_nonneg_float(rtol, name="rtol", where=where, strict=True)
     if target == "sharp":
-        goal = _check_fraction(fraction, "fraction", where)
+        goal = check_positive_fraction(fraction, name="fraction", where=where)
     else:
         goal = check_nonneg_float(blend_size, name="blend_size", where=where)
         if not 1.0 <= goal <= len(memory):
@@ -404,6 +451,7 @@ def choose_beta(
 def _choose_sharp(memory: DenseMemory, q: np.ndarray, src: np.ndarray | None, run: dict[str, Any],
                   lo: float, hi: float, rtol: float, goal: float) -> BetaChoice:
     def frac(b: float) -> float:
+        _ticked()
         res = memory.retrieve(q, b, steps=run["steps"], tol=run["tol"], k=1, method=run["method"],
                               return_energy=False)
         ok = res.top_weights[:, 0] >= run["sharp_weight"]
@@ -424,7 +472,8 @@ def _choose_sharp(memory: DenseMemory, q: np.ndarray, src: np.ndarray | None, ru
 def _choose_blend(memory: DenseMemory, q: np.ndarray, run: dict[str, Any], lo: float, hi: float,
                   rtol: float, goal: float) -> BetaChoice:
     def size(b: float) -> float:
-        return float(np.mean(np.exp(_weights(memory, q, b, run).entropy)))
+        _ticked()
+        return float(np.mean(np.exp(_one_beta(memory, q, b, run, 1).info["entropy"])))
 
     log = [(lo, size(lo)), (hi, size(hi))]
     if log[0][1] <= goal or log[1][1] >= goal:

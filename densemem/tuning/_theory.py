@@ -12,8 +12,9 @@ import faiss
 import numpy as np
 from scipy.special import lambertw
 
+from ..core.index import make_index, train_ivf
 from ._reports import BetaPrediction, SeparationReport
-from .._validation import check_nonneg_float
+from .._validation import check_nonneg_float, check_positive_fraction
 from ..dense import DenseMemory
 from ..errors import InputTypeError, InputValueError
 
@@ -35,26 +36,16 @@ def _check_memory(memory: Any, where: str, *, minimum: int = 1) -> DenseMemory:
     return memory
 
 
-def _check_fraction(x: Any, name: str, where: str) -> float:
-    v = check_nonneg_float(x, name=name, where=where)
-    if not 0 < v <= 1:
-        raise InputValueError(f"{where}: `{name}` must be a number in (0, 1]; got {x!r}.")
-    return v
-
-
 # ------------------------------------------------------------- separation
 def _ann_top(x: np.ndarray, kind: str, k: int) -> tuple[np.ndarray, np.ndarray]:
     """Top-k inner-product neighbours of every stored row from a temporary faiss index."""
     n, d = x.shape
     if kind == "hnsw":
-        index = faiss.IndexHNSWFlat(d, 32, faiss.METRIC_INNER_PRODUCT)
-        index.hnsw.efConstruction = 80  # common practice for HNSW builds
-        index.hnsw.efSearch = 64
+        index = make_index("hnsw", d, M=32, ef_construction=80, ef_search=64)  # common practice for HNSW
     else:
         nlist = max(1, min(round(4 * math.sqrt(n)), n // 39))  # faiss wants >= 39 points per list
-        index = faiss.IndexIVFFlat(faiss.IndexFlatIP(d), d, nlist, faiss.METRIC_INNER_PRODUCT)
-        index.train(x)
-        index.nprobe = max(8, nlist // 32)
+        index = make_index("ivf", d, nlist=nlist, nprobe=max(8, nlist // 32))
+        train_ivf(index, x, n, None)
     index.add(x)
     return index.search(x, k)
 
@@ -229,7 +220,7 @@ def predict_beta(
         raise InputValueError(f"{where}: every stored pattern is zero; no beta separates them.")
     error_tol = 1e-2 * big_m if error_tol is None else check_nonneg_float(
         error_tol, name="error_tol", where=where, strict=True)
-    target_fraction = _check_fraction(target_fraction, "target_fraction", where)
+    target_fraction = check_positive_fraction(target_fraction, name="target_fraction", where=where)
     sep = separation(memory, index=index, tol=tol) if separation_report is None else separation_report
     if not isinstance(sep, SeparationReport) or len(sep.delta) != n:
         raise InputValueError(

@@ -18,6 +18,7 @@ Every report is a frozen dataclass with ``to_dict()`` (JSON-ready).
 
 from __future__ import annotations
 
+import math
 from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, PositiveFloat
@@ -26,11 +27,10 @@ from ._reports import (
     TuneReport,
 )
 from ._sparse import exact_recall_beta
-from ._sweep import choose_beta, sweep_beta
+from ._sweep import TICK, choose_beta, sweep_beta
 from ._theory import _check_memory, predict_beta, separation
 from ..dense import DenseMemory
 from ..errors import InputTypeError
-
 
 
 class TuneSpec(BaseModel):
@@ -76,8 +76,31 @@ class TuneSpec(BaseModel):
     alpha: float | None = Field(None, gt=1, le=2, description="alpha of weighting='entmax'")
 
 
+def _bar(total: int, progress: bool | None) -> Any:
+    """A tqdm bar on stderr (None: only when stderr is a terminal; needs tqdm), or None."""
+    import sys
+
+    if not (sys.stderr.isatty() if progress is None else progress):
+        return None
+    try:
+        from tqdm import tqdm
+    except ImportError:
+        return None
+    return tqdm(total=total, desc="tune", unit="run", file=sys.stderr, leave=False)
+
+
+def _planned_runs(spec: TuneSpec) -> int:
+    """Retrieval runs tune_beta makes: the sweep grid plus the bisection's evaluations (for a bar)."""
+    runs = (len(spec.betas) if spec.betas else spec.n_betas) if spec.sweep else 0
+    if spec.target is not None:
+        span = math.log((spec.beta_max or 1e6) / (spec.beta_min or 1e-2))
+        runs += 2 + max(0, math.ceil(math.log2(max(span / math.log1p(spec.rtol), 1.0))))
+    return 1 + runs
+
+
 def tune_beta(
-    memory: DenseMemory, spec: TuneSpec | None = None, *, queries: Any = None, sources: Any = None
+    memory: DenseMemory, spec: TuneSpec | None = None, *, queries: Any = None, sources: Any = None,
+    progress: bool | None = False,
 ) -> TuneReport:
     """Separation, predicted beta, a measured sweep and an automatic choice in one call.
 
@@ -89,6 +112,8 @@ def tune_beta(
         All options (default ``TuneSpec()``).
     queries, sources : optional
         The user's query set (else queries are generated from ``spec``).
+    progress : bool or None, default False
+        A tqdm bar on stderr (None: only when stderr is a terminal).
 
     Returns
     -------
@@ -110,7 +135,22 @@ def tune_beta(
     spec = TuneSpec() if spec is None else spec
     if not isinstance(spec, TuneSpec):
         raise InputTypeError(f"{where}: `spec` must be a TuneSpec; got {type(spec).__name__}.")
+    bar = _bar(_planned_runs(spec), progress)
+    token = TICK.set(None if bar is None else (lambda: bar.update(1)))
+    try:
+        return _tune(memory, spec, queries, sources, bar)
+    finally:
+        TICK.reset(token)
+        if bar is not None:
+            bar.total = bar.n  # the bisection can stop early (goal met at an end of the range)
+            bar.refresh()  # show the finished count before the bar is cleared
+            bar.close()
+
+
+def _tune(memory: DenseMemory, spec: TuneSpec, queries: Any, sources: Any, bar: Any) -> TuneReport:
     sep = separation(memory, index=spec.index, tol=spec.tol)
+    if bar is not None:
+        bar.update(1)
     pred = predict_beta(memory, radius=spec.radius, error_tol=spec.error_tol,
                         target_fraction=spec.target_fraction, separation_report=sep)
     common = dict(sources=sources, corruption=spec.corruption, level=spec.level, n_queries=spec.n_queries,

@@ -62,7 +62,7 @@ def test_async_energy_never_rises_and_ends_at_fixed_points(seed):
     w[np.diag_indices(n)] = np.abs(rng.standard_normal(n)) * 0.1  # w_ii >= 0
     mem = BinaryMemory.from_weights(w, theta)
     probes = pm1(rng, (30, n))
-    r = mem.retrieve(probes, max_sweeps=200, seed=seed, return_trajectory=True)
+    r = mem.retrieve(probes, steps=200, seed=seed, return_trajectory=True)
     assert np.all(np.diff(r.energy, axis=0) <= 1e-9)
     assert r.converged.all()
     # reported energies agree with the definition, computed naively here
@@ -73,13 +73,13 @@ def test_async_energy_never_rises_and_ends_at_fixed_points(seed):
     assert np.all(s * (s @ w - theta) >= -1e-9)
 
 
-def _naive_async(s0, w, theta, free, rng, max_sweeps):
+def _naive_async(s0, w, theta, free, rng, steps):
     """Sequential single-unit reference: same draws as the library (one permutation of the
     free units per sweep, shared by the batch), one probe and one unit at a time."""
     s = s0.astype(np.float64).copy()
     free_idx = np.flatnonzero(free)
     active = np.ones(len(s), dtype=bool)
-    for _ in range(max_sweeps):
+    for _ in range(steps):
         order = free_idx[rng.permutation(free_idx.size)]
         for b in np.flatnonzero(active):
             changed = False
@@ -100,7 +100,7 @@ def test_blocked_async_equals_naive_sequential_updates(n, block, rng):
     w, theta = random_network(rng, n)
     free = rng.random(n) > 0.1
     probes = pm1(rng, (9, n)).astype(np.float64)
-    out = dyn.run(dyn.PairwiseEngine(w, theta, block=block), probes, mode="async", max_sweeps=30,
+    out = dyn.run(dyn.PairwiseEngine(w, theta, block=block), probes, mode="async", steps=30,
                   rng=np.random.default_rng(5), free=free, keep_trajectory=False)
     ref = _naive_async(probes, w, theta, free, np.random.default_rng(5), 30)
     assert np.array_equal(out["states"], ref)
@@ -115,12 +115,12 @@ def test_sync_ends_in_fixed_point_or_two_cycle_and_lyapunov_never_rises(seed):
     n = 60
     w, theta = random_network(rng, n)
     mem = BinaryMemory.from_weights(w, theta)
-    r = mem.retrieve(pm1(rng, (40, n)), mode="sync", max_sweeps=500, return_trajectory=True)
+    r = mem.retrieve(pm1(rng, (40, n)), mode="sync", steps=500, return_trajectory=True)
     assert np.all(r.converged | r.two_cycle)
     assert r.two_cycle.any()  # random symmetric W: 2-cycles do occur for these seeds
     traj = r.trajectory.astype(np.float64)
     for b in range(traj.shape[1]):
-        t_end = r.sweeps_per_probe[b]
+        t_end = r.steps_per_query[b]
         last, before = traj[t_end, b], traj[t_end - 1, b]
         if r.converged[b]:
             assert np.array_equal(last, before)
@@ -135,7 +135,7 @@ def test_mutually_inhibiting_pair_oscillates_sync_settles_async():
     # Bruck, Proc. IEEE 78(10) (1990): parallel mode may end in a 2-cycle, serial mode in a
     # stable state. Values of our own: w_12 = -1, thresholds +0.5.
     mem = BinaryMemory.from_weights([[0.0, -1.0], [-1.0, 0.0]], [0.5, 0.5])
-    sync = mem.retrieve([[1, 1]], mode="sync", max_sweeps=10, return_trajectory=True)
+    sync = mem.retrieve([[1, 1]], mode="sync", steps=10, return_trajectory=True)
     assert sync.two_cycle.tolist() == [True] and sync.converged.tolist() == [False]
     assert sync.trajectory[:3, 0].tolist() == [[1, 1], [-1, -1], [1, 1]]
     for seed in range(5):
@@ -156,9 +156,9 @@ def test_01_and_pm1_forms_give_identical_trajectories(mode, rng):
     s_probes = pm1(rng, (12, n))
     v_probes = (s_probes + 1) // 2
     a = BinaryMemory.from_weights(w, theta).retrieve(
-        s_probes, mode=mode, seed=3, max_sweeps=50, return_trajectory=True)
+        s_probes, mode=mode, seed=3, steps=50, return_trajectory=True)
     b = BinaryMemory.from_weights(t_w, u, states="01").retrieve(
-        v_probes, mode=mode, seed=3, max_sweeps=50, return_trajectory=True)
+        v_probes, mode=mode, seed=3, steps=50, return_trajectory=True)
     assert np.array_equal(2 * b.trajectory.astype(int) - 1, a.trajectory)
     assert np.array_equal(b.converged, a.converged)
     v = b.trajectory[-1].astype(np.float64)
@@ -209,7 +209,7 @@ def _fraction_fixed(rule, n, p, n_sets, seed0=0):
     fixed = []
     for s in range(n_sets):
         x = pm1(np.random.default_rng(seed0 + s), (p, n))
-        r = BinaryMemory(x, rule=rule).retrieve(x, mode="sync", max_sweeps=1)
+        r = BinaryMemory(x, rule=rule).retrieve(x, mode="sync", steps=1)
         fixed.append((r.states == x).all(axis=1))
     return np.array(fixed)
 
@@ -283,7 +283,7 @@ def test_pseudo_inverse_makes_independent_patterns_exact_fixed_points(rng):
     mem = BinaryMemory(x, rule="pseudo_inverse")
     assert np.linalg.norm(mem.weights @ x.T - x.T, axis=0).max() < 1e-9
     r = mem.retrieve(x, seed=0)
-    assert np.array_equal(r.states, x) and r.converged.all() and r.sweeps == 1
+    assert np.array_equal(r.states, x) and r.converged.all() and r.steps == 1
 
 
 def test_pseudo_inverse_add_recomputes_and_says_so(rng):
@@ -307,7 +307,7 @@ def test_pseudo_inverse_completes_real_digits():
     first = [np.flatnonzero(data.target == c)[0] for c in range(10)]
     v = (data.data[first] >= 8).astype(np.int8)
     mem = BinaryMemory(v, rule="pseudo_inverse", states="01")
-    assert np.array_equal(mem.retrieve(v, mode="sync", max_sweeps=1).states, v)
+    assert np.array_equal(mem.retrieve(v, mode="sync", steps=1).states, v)
     rng = np.random.default_rng(0)
     ok = []
     for rep in range(10):
@@ -317,7 +317,7 @@ def test_pseudo_inverse_completes_real_digits():
         ok.append((mem.retrieve(probes, seed=rep).states == v).all(axis=1).mean())
     assert np.mean(ok) >= 0.8
     hebb = BinaryMemory(v, rule="hebbian", states="01")
-    assert (hebb.retrieve(v, mode="sync", max_sweeps=1).states == v).all(axis=1).mean() < 0.5
+    assert (hebb.retrieve(v, mode="sync", steps=1).states == v).all(axis=1).mean() < 0.5
 
 
 # ---------------------------------------------------------------- dense memories
@@ -351,10 +351,10 @@ def test_polynomial_n3_one_step_error_far_above_classic_capacity():
     errs, hebb = [], []
     for s in range(n_sets):
         x = pm1(np.random.default_rng(s), (k, n))
-        errs.append((DenseBinaryMemory(x, degree=3).retrieve(x, mode="sync", max_sweeps=1)
+        errs.append((DenseBinaryMemory(x, degree=3).retrieve(x, mode="sync", steps=1)
                      .states != x).mean())
         if s < 3:
-            hebb.append((BinaryMemory(x).retrieve(x, mode="sync", max_sweeps=1).states != x).mean())
+            hebb.append((BinaryMemory(x).retrieve(x, mode="sync", steps=1).states != x).mean())
     errs = np.array(errs)
     se = errs.std(ddof=1) / np.sqrt(n_sets)
     assert derived - 4 * se <= errs.mean() <= 1.3 * derived + 4 * se, (errs.mean(), derived, se)
@@ -373,7 +373,7 @@ def test_exponential_memory_keeps_hundreds_of_patterns_at_n30():
     assert np.log(300) < curves_for("exp", None, None)[0].log_capacity(np.array(30.0))
     with np.errstate(over="raise", invalid="raise"):
         r = DenseBinaryMemory(x, interaction="exponential").retrieve(x, mode="sync",
-                                                                    max_sweeps=1)
+                                                                    steps=1)
     assert np.array_equal(r.states, x) and r.converged.all()
 
 
@@ -388,7 +388,7 @@ def test_exponential_one_step_retrieval_from_flipped_bits():
     for row in probes:  # exactly rho N flipped bits per probe
         row[rng.choice(n, int(rho * n), replace=False)] *= -1
     r = DenseBinaryMemory(x, interaction="exponential").retrieve(probes, mode="sync",
-                                                                max_sweeps=1)
+                                                                steps=1)
     assert (r.states == x[:100]).all(axis=1).mean() >= 0.95
 
 
@@ -401,7 +401,7 @@ def test_exponential_never_overflows_at_1000_units():
     probes = flip(rng, x[:5], 0.2)
     with np.errstate(over="raise", invalid="raise"), warnings.catch_warnings():
         warnings.simplefilter("error")
-        r = mem.retrieve(probes, seed=0, max_sweeps=3)
+        r = mem.retrieve(probes, seed=0, steps=3)
         e = mem.energy(x[:3])
     assert np.array_equal(r.states, x[:5]) and np.isfinite(r.energy).all()
     assert np.allclose(e, -logsumexp(x[:3].astype(float) @ x.T.astype(float), axis=1))
@@ -522,7 +522,7 @@ def test_graceful_degradation_under_weight_damage():
     rates = []
     for f in (0.0, 0.25, 0.5, 0.75):
         dm = mem.damaged(weights=f, seed=0)
-        rate = (dm.retrieve(x, mode="sync", max_sweeps=1).states != x).mean()
+        rate = (dm.retrieve(x, mode="sync", steps=1).states != x).mean()
         assert rate == pytest.approx(erfc(np.sqrt((1 - f) * n / (2 * (p + f)))) / 2, rel=0.3,
                                      abs=3e-4)
         rates.append(rate)
@@ -575,18 +575,18 @@ def test_result_is_frozen_slotted_and_serialises(rng):
     assert np.array_equal(probes, before)  # inputs are never modified
     assert isinstance(r, BinaryRetrieval) and not hasattr(r, "__dict__")
     with pytest.raises(dataclasses.FrozenInstanceError):
-        r.sweeps = 3  # type: ignore[misc]
-    assert repr(r).startswith("BinaryRetrieval(mode='sync', n_probes=3, n_units=20")
+        r.steps = 3  # type: ignore[misc]
+    assert repr(r).startswith("BinaryRetrieval(mode='sync', n_queries=3, n_units=20")
     d = json.loads(json.dumps(r.to_dict()))
-    assert d["states"] == r.states.tolist() and len(d["trajectory"]) == r.sweeps + 1
-    assert r.energy.shape == (r.sweeps + 1, 3)
+    assert d["states"] == r.states.tolist() and len(d["trajectory"]) == r.steps + 1
+    assert r.energy.shape == (r.steps + 1, 3)
 
 
 def test_max_sweeps_stops_early(rng):
     w, theta = random_network(rng, 50)
     r = BinaryMemory.from_weights(w, theta).retrieve(pm1(rng, (20, 50)), mode="sync",
-                                                     max_sweeps=1)
-    assert r.sweeps == 1 and r.energy.shape == (2, 20)
+                                                     steps=1)
+    assert r.steps == 1 and r.energy.shape == (2, 20)
     assert not (r.converged | r.two_cycle).all()
 
 
@@ -622,16 +622,16 @@ P3 = [[1, -1, 1], [-1, -1, 1]]
         (lambda: BinaryMemory(P3, thresholds=[0, np.inf, 0]), InputValueError,
          r"`thresholds` must be finite"),
         (lambda: BinaryMemory(P3).retrieve([[1, 1]]), InputValueError,
-         r"BinaryMemory.retrieve: `probes` have 2 units but the memory has 3"),
-        (lambda: BinaryMemory(P3).retrieve(P3, max_sweeps=0), InputValueError,
-         r"BinaryMemory.retrieve: `max_sweeps` must be an integer >= 1; got 0\."),
-        (lambda: BinaryMemory(P3).retrieve(P3, max_sweeps=True), InputValueError,
-         r"`max_sweeps` must be an integer"),
+         r"BinaryMemory.retrieve: `queries` have 2 units but the memory has 3"),
+        (lambda: BinaryMemory(P3).retrieve(P3, steps=0), InputValueError,
+         r"BinaryMemory.retrieve: `steps` must be an integer >= 1; got 0\."),
+        (lambda: BinaryMemory(P3).retrieve(P3, steps=True), InputValueError,
+         r"`steps` must be an integer"),
         (lambda: BinaryMemory(P3).retrieve(P3, mode="parallel"), InputValueError,
          r"`mode` must be one of 'async', 'sync'"),
-        (lambda: BinaryMemory(P3).retrieve(P3, seed=-1), InputValueError, r"`seed` must be >= 0"),
+        (lambda: BinaryMemory(P3).retrieve(P3, seed=-1), InputValueError, r"`seed` must be an int in \[0, 2147483647\]; got -1"),
         (lambda: BinaryMemory(P3).retrieve(P3, seed="x"), InputTypeError,
-         r"`seed` must be None, an int or a numpy Generator; got str"),
+         r"`seed` must be an int in \[0, 2147483647\]; got str 'x'"),
         (lambda: BinaryMemory(P3).energy([[1, 0, 1]]), InputValueError,
          r"BinaryMemory.energy: `states` contains 0"),
         (lambda: BinaryMemory(P3).add([[1, 1]]), InputValueError,
@@ -658,9 +658,9 @@ P3 = [[1, -1, 1], [-1, -1, 1]]
         (lambda: DenseBinaryMemory(np.ones((2, 1000)), degree=120), InputValueError,
          r"`degree` 120 with 1000 units .*overflow.*interaction='exponential'"),
         (lambda: DenseBinaryMemory(P3).retrieve([1, 1, 1, 1]), InputValueError,
-         r"DenseBinaryMemory.retrieve: `probes` have 4 units but the memory has 3"),
-        (lambda: DenseBinaryMemory(P3).retrieve(P3, max_sweeps=0), InputValueError,
-         r"DenseBinaryMemory.retrieve: `max_sweeps` must be an integer >= 1; got 0\."),
+         r"DenseBinaryMemory.retrieve: `queries` have 4 units but the memory has 3"),
+        (lambda: DenseBinaryMemory(P3).retrieve(P3, steps=0), InputValueError,
+         r"DenseBinaryMemory.retrieve: `steps` must be an integer >= 1; got 0\."),
         (lambda: DenseBinaryMemory(P3).energy([[2, 1, 1]]), InputValueError,
          r"DenseBinaryMemory.energy: `states` must be binary"),
         (lambda: DenseBinaryMemory(P3).add([[1, 0, 1]]), InputValueError,

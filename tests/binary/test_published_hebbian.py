@@ -44,7 +44,7 @@ def _one_step_flips(n: int, p: int, n_sets: int, seed: int) -> np.ndarray:
     out = []
     for s in range(n_sets):
         x = _pm1(np.random.default_rng([seed, n, p, s]), (p, n))
-        r = BinaryMemory(x).retrieve(x, mode="sync", max_sweeps=1)
+        r = BinaryMemory(x).retrieve(x, mode="sync", steps=1)
         out.append(float((r.states != x).mean()))
     return np.array(out)
 
@@ -148,7 +148,7 @@ def _async_fixed_points(n: int, p: int, n_sets: int, seed: int):
     errs, lost = [], []
     for s in range(n_sets):
         x = _pm1(np.random.default_rng([seed, n, p, s]), (p, n))
-        r = BinaryMemory(x).retrieve(x, seed=s, max_sweeps=100)
+        r = BinaryMemory(x).retrieve(x, seed=s, steps=100)
         assert r.converged.all()
         e = (r.states != x).mean(axis=1)
         keep = e < 0.1  # overlap m > 0.8: the retrieval state, not a spin-glass state

@@ -118,7 +118,7 @@ def test_pseudo_inverse_stores_n_patterns_and_nothing_more(n):
     assert np.abs(mem.weights - np.eye(n)).max() < 1e-9
     probe = x[:5].copy()
     probe[:, 0] *= -1
-    assert np.array_equal(mem.retrieve(probe, **{"mode": "sync", "max_sweeps": 1}).states, probe)
+    assert np.array_equal(mem.retrieve(probe, **{"mode": "sync", "steps": 1}).states, probe)
 
 
 # ----------------------------------------------------------- Krotov & Hopfield 2016

@@ -43,7 +43,7 @@ def test_sharded_build_info_and_retrieve_equal_single_store(data: Path) -> None:
     for a, b in zip(one["queries"], sh["queries"]):
         assert a["top_ids"] == b["top_ids"]
         np.testing.assert_allclose(a["top_weights"], b["top_weights"], rtol=1e-4, atol=1e-7)
-    # faiss exact search on the normalised rows names the same top-1 (beta 25 is sharp here).
+    # faiss exact search on the normalized rows names the same top-1 (beta 25 is sharp here).
     x = np.load(data / "x.npy")
     q = np.load(data / "q.npy")
     xn = x / np.linalg.norm(x, axis=1, keepdims=True)
@@ -75,3 +75,24 @@ def test_sharded_usage_errors_exit_2_with_one_line(data: Path, args: tuple, mess
     assert r.returncode == 2, (r.returncode, r.stderr)
     assert message in r.stderr
     assert len(r.stderr.strip().splitlines()) == 1
+
+
+def test_rebalance_command_keeps_every_answer(data: Path, tmp_path: Path) -> None:
+    # The same query file against the same rows in 3 then 5 shards: identical top ids (the exact
+    # merge), weights to float32 rounding; the single store is the outside reference.
+    import shutil
+
+    shutil.copytree(data / "sh", tmp_path / "sh")
+    shutil.copy(data / "q.npy", tmp_path / "q.npy")
+    before = json.loads(_cli("retrieve", "sh", "q.npy", "-k", "4", "--json", cwd=tmp_path).stdout)
+    r = _cli("rebalance", "sh", "--shards", "5", "--json", cwd=tmp_path)
+    assert r.returncode == 0, r.stderr
+    assert sum(json.loads(r.stdout)["counts_after"]) == 3001 and len(json.loads(r.stdout)["counts_after"]) == 5
+    after = json.loads(_cli("retrieve", "sh", "q.npy", "-k", "4", "--json", cwd=tmp_path).stdout)
+    for a, b in zip(before["queries"], after["queries"]):
+        assert a["top_ids"] == b["top_ids"]
+        np.testing.assert_allclose(a["top_weights"], b["top_weights"], rtol=1e-5, atol=1e-7)
+    bad = _cli("rebalance", "sh", cwd=tmp_path)
+    assert bad.returncode == 2 and "one of the arguments --shards --rows is required" in bad.stderr
+    single = _cli("rebalance", str(data / "one"), "--shards", "2", cwd=tmp_path)
+    assert single.returncode == 2 and "is not a sharded store" in single.stderr

@@ -26,7 +26,7 @@ def test_report_files_go_through_os_replace(tmp_path, monkeypatch):
         moved.append((os.fspath(src), os.fspath(dst)))
         real(src, dst)
 
-    monkeypatch.setattr(demo.os, "replace", spy)
+    monkeypatch.setattr(os, "replace", spy)
     rep = demo.run_demo(tmp_path / "rep", **SMALL)
     out = tmp_path / "rep"
     for name in ("summary.md", "tuning.txt"):
@@ -42,7 +42,11 @@ def test_rerun_replaces_demo_files_and_keeps_others(tmp_path):
     demo.run_demo(out, seed=0, **SMALL)
     (out / "notes.txt").write_text("mine")
     first = (out / "summary.md").read_text(encoding="utf-8")
-    demo.run_demo(out, seed=0, **{**SMALL, "n_queries": 30})
+    with pytest.raises(InputValueError, match=r"run_demo: `out` .*rep' is a folder that already holds files; "
+                       r"pass overwrite=True"):
+        demo.run_demo(out, seed=0, **{**SMALL, "n_queries": 30})
+    assert (out / "summary.md").read_text(encoding="utf-8") == first
+    demo.run_demo(out, seed=0, overwrite=True, **{**SMALL, "n_queries": 30})
     second = (out / "summary.md").read_text(encoding="utf-8")
     assert second != first
     # the query count is reported as written, not merely some number containing "30"
@@ -60,7 +64,7 @@ def test_failed_write_keeps_the_old_file_whole(tmp_path, monkeypatch):
     def fail(fd):
         raise OSError("disk full (simulated)")
 
-    monkeypatch.setattr(demo.os, "fsync", fail)
+    monkeypatch.setattr(os, "fsync", fail)
     with pytest.raises(OSError, match="disk full"):
         demo._write_text(path, "new report that never lands\n")
     assert path.read_text(encoding="utf-8") == "old report\n"

@@ -153,7 +153,7 @@ def test_merge_contiguous_blocks_equals_one_pass() -> None:
 def test_merge_is_commutative_and_associative_on_the_partials() -> None:
     # Derived (merge of partials over disjoint rows): the merged statistics themselves (lse = m
     # + log l, the
-    # weighted sum normalised by l) do not depend on the order.
+    # weighted sum normalized by l) do not depend on the order.
     rng = np.random.default_rng(3)
     q, x, z = _data(11, n=45)
     a, b, c = (_gathered_subset(z, x, cols, 6) for cols in _random_split(rng, 45, 3))

@@ -70,7 +70,7 @@ def test_incremental_plan_agrees_with_the_concatenated_data(setup, tmp_path):
     before = sha_tree(root)
     mem = densemem.DenseMemory.load(root / "store", mmap=True)
     b = np.load(root / "new.npy", mmap_mode="r")
-    plan = plan_duplicates(b, T, stored=mem, return_pairs=True, work_mib=0.05)  # many small chunks
+    plan = plan_duplicates(b, T, stored=mem, return_pairs=True, tile_mib=0.05)  # many small chunks
     plan.write(tmp_path / "plan")
     assert sha_tree(root) == before  # sha256 of the store files and the batch file unchanged
     n = batch.shape[0]
@@ -182,7 +182,7 @@ def test_bad_batches_and_ids(setup):
     bad = batch.copy()
     bad[677, 3] = np.nan
     with pytest.raises(InputValueError, match=r"plan_duplicates: `data` contains NaN at row 677"):
-        plan_duplicates(bad, T, stored=mem, work_mib=0.05)  # found in a later chunk
+        plan_duplicates(bad, T, stored=mem, tile_mib=0.05)  # found in a later chunk
     named = densemem.DenseMemory.from_array(stored_x[:5], ids=list("abcde"))
     with pytest.raises(InputValueError, match=r"has string ids, so `ids` for the new rows must be given"):
         plan_duplicates(batch, T, stored=named)

@@ -144,7 +144,7 @@ def _faiss_range(xu: np.ndarray, t: float):
 def test_exact_edges_equal_brute_force_on_random_data(rng):
     x = rng.standard_normal((600, 8)).astype(np.float32)
     t = gap_threshold(x, 0.995)
-    plan = plan_duplicates(x, t, candidates="exact", return_pairs=True, work_mib=0.1)  # many small chunks
+    plan = plan_duplicates(x, t, candidates="exact", return_pairs=True, tile_mib=0.1)  # many small chunks
     assert plan_pairs(plan) == brute_pairs(x, t)  # reference: numpy brute force
     u = unit64(x)  # reference: numpy cosine of each reported pair
     sims = np.einsum("ij,ij->i", u[plan.pair_ids[:, 0]], u[plan.pair_ids[:, 1]])
@@ -208,7 +208,7 @@ def test_ivf_pairs_against_faiss_flat_on_clustered_data(rng):
 # ------------------------------------------------------------------ chaining
 def bridged_families(digits: np.ndarray, t: float, n_pairs: int = 8):
     """Pairs of digits rows (a, b) at cosine in [0.94, 0.955] (below t), each with a family of
-    copies, joined by a bridge item at the normalised midpoint (within t of both)."""
+    copies, joined by a bridge item at the normalized midpoint (within t of both)."""
     u = unit64(digits)
     sim = u @ u.T
     rng = np.random.default_rng(5)
@@ -427,7 +427,7 @@ X3 = np.array([[1.0, 0.0], [1.0, 0.0], [0.0, 1.0]], dtype=np.float32)
         ({"method": "cluster"}, InputValueError, r"`method` must be one of 'graph', 'attractor'; got 'cluster'"),
         ({"candidates": "lsh"}, InputValueError, r"`candidates` must be one of .*; got 'lsh'"),
         ({"grouping": "maybe"}, InputValueError, r"`grouping` must be one of 'star', 'complete', 'chain'; got 'maybe'"),
-        ({"retrieval": "fast"}, InputValueError, r"`retrieval` must be one of"),
+        ({"retrieve_method": "fast"}, InputValueError, r"`retrieve_method` must be one of"),
         ({"representative": "best"}, InputValueError, r"`representative` must be one of 'medoid', 'first'"),
         ({"representative": None}, InputTypeError, r"`representative` must be 'medoid', 'first' or an array"),
         ({"representative": np.array(["a", "b", "c"])}, InputTypeError, r"scores must be real numbers; got dtype <U1"),
@@ -435,7 +435,7 @@ X3 = np.array([[1.0, 0.0], [1.0, 0.0], [0.0, 1.0]], dtype=np.float32)
         ({"representative": np.array([1.0, np.nan, 0.0])}, InputValueError, r"score at row 1 is not finite"),
         ({"method": "attractor", "threshold": 1.0}, InputValueError, r"method='attractor' needs `threshold` < 1"),
         ({"target_recall": 0.0}, InputValueError, r"`target_recall` must be in \(0, 1\]; got 0.0"),
-        ({"work_mib": 0}, InputValueError, r"`work_mib` must be a finite number > 0; got 0"),
+        ({"tile_mib": 0}, InputValueError, r"`tile_mib` must be a finite number > 0; got 0"),
         ({"progress": "yes"}, InputTypeError, r"`progress` must be True, False or None; got 'yes'"),
         ({"k": 0}, InputValueError, r"plan_duplicates: `k` must be an integer >= 1; got 0"),
         ({"check_sample": -1}, InputValueError, r"`check_sample` must be an integer >= 0; got -1"),

@@ -11,6 +11,7 @@ from __future__ import annotations
 import os
 import sys
 import time
+from pathlib import Path
 from concurrent.futures import ThreadPoolExecutor
 
 import faiss
@@ -114,7 +115,7 @@ def test_nearest_equals_faiss_flat(client, data, metric):
     # outside reference: faiss flat index over all rows
     index = faiss.IndexFlatIP(24) if metric == "ip" else faiss.IndexFlatL2(24)
     index.add(mem.patterns)
-    scores, pos = index.search(q / np.linalg.norm(q, axis=1, keepdims=True), 9)  # the memory normalises
+    scores, pos = index.search(q / np.linalg.norm(q, axis=1, keepdims=True), 9)  # the memory normalizes
     got = _nearest(sm, q, 9, metric=metric, client=client, timeout=60)
     np.testing.assert_array_equal(got.ids, mem.ids[pos])
     np.testing.assert_allclose(got.scores, scores, rtol=1e-5, atol=1e-5)
@@ -227,3 +228,22 @@ def test_index_method_on_the_cluster_equals_local_shards(client, tmp_path):
     np.testing.assert_array_equal(local.top_ids, remote.top_ids)
     np.testing.assert_allclose(local.states, remote.states, atol=1e-6)
     assert remote.method == "index"
+
+
+def test_index_built_on_the_workers_equals_one_built_here(client, tmp_path):
+    # The same settings on the same rows give the same faiss HNSW graph (faiss builds it
+    # deterministically single-threaded per shard: common practice), so answers agree.
+    rng = np.random.default_rng(6)
+    x = rng.standard_normal((4000, 16)).astype(np.float32)
+    mem = DenseMemory.from_array(x, normalize=True, beta=20.0)
+    here = shard_memory(mem, tmp_path / "here", 2)
+    there = shard_memory(mem, tmp_path / "there", 2)
+    here.build_index("ivf", nlist=16, nprobe=16)
+    with there.on_cluster(client) as cluster:
+        assert cluster.build_index("ivf", nlist=16, nprobe=16)["kind"] == "ivf"
+    q = x[::200] + 0.05
+    a = open_sharded(here.path).retrieve(q, k=5, method="index")
+    b = open_sharded(there.path).retrieve(q, k=5, method="index")
+    np.testing.assert_array_equal(a.top_ids, b.top_ids)
+    assert sorted(p.name for p in (tmp_path / "there").iterdir() if p.name != "shards.json") == sorted(
+        Path(f).name for f in open_sharded(there.path).shard_folders)

@@ -22,6 +22,7 @@ from densemem.core import rows
 from densemem.sharding import _ops as S
 from densemem.core.candidates import CertifiedOptions
 from densemem.sharding import open_sharded, shard_memory
+from densemem.store._folder import manifest_text
 
 
 def _ref_energy(x: np.ndarray, s: np.ndarray, beta: float) -> np.ndarray:
@@ -244,7 +245,7 @@ def test_open_errors_name_the_shard(tmp_path, rng):
     man = json.loads(top.read_text())
     man["format_version"] = 99
     top.write_text(json.dumps(man))
-    with pytest.raises(StoreFormatError, match=r"has format_version 99; this densemem reads version 1"):
+    with pytest.raises(StoreFormatError, match=r"has format_version 99; this densemem reads version 2"):
         open_sharded(tmp_path / "s")
     top.write_text("{not json")
     with pytest.raises(StoreFormatError, match=r"is not valid JSON"):
@@ -252,14 +253,14 @@ def test_open_errors_name_the_shard(tmp_path, rng):
     top.write_text(json.dumps({"format": "other"}))
     with pytest.raises(StoreFormatError, match=r"is not a densemem-shards manifest"):
         open_sharded(tmp_path / "s")
-    man["format_version"] = 1
-    top.write_text(json.dumps({**man, "shards": []}))
+    man["format_version"] = 2
+    top.write_text(manifest_text({**man, "shards": []}))
     with pytest.raises(StoreFormatError, match=r"has a missing or bad 'shards' list"):
         open_sharded(tmp_path / "s")
-    top.write_text(json.dumps({k: v for k, v in man.items() if k != "next_id"}))
+    top.write_text(manifest_text({k: v for k, v in man.items() if k != "next_id"}))
     with pytest.raises(StoreFormatError, match=r"has no 'next_id' entry"):
         open_sharded(tmp_path / "s")
-    top.write_text(json.dumps(man))
+    top.write_text(manifest_text(man))
     open_sharded(tmp_path / "s")
     (tmp_path / "s" / "shard-00001" / "manifest.json").write_text("{}")
     with pytest.raises(StoreFormatError, match=r"open_sharded: shard 1 at .*shard-00001' does not match shards.json"):
@@ -306,7 +307,7 @@ def test_sharded_retrieve_refuses_what_one_machine_refuses(tmp_path) -> None:
     import densemem
 
     sm = densemem.shard_memory(densemem.DenseMemory.from_array(np.eye(4)), tmp_path / "s", 2)
-    with pytest.raises(densemem.InputValueError, match=r"`beta` = 1e\+300 times the largest query norm"):
+    with pytest.raises(densemem.InputValueError, match=r"`beta` = 1e\+300 is beyond the float32 score range; use beta <= 1e\+37"):
         sm.retrieve([1.0, 0.0, 0.0, 0.0], beta=1e300)
-    with pytest.raises(densemem.InputValueError, match=r"`tol_mass` must be a fraction in \(0, 1\); got 2\."):
+    with pytest.raises(densemem.InputValueError, match=r"`tol_mass` must be a number in \(0, 1\); got 2\."):
         sm.retrieve([1.0, 0.0, 0.0, 0.0], tol_mass=2)

@@ -70,7 +70,7 @@ def test_save_over_existing_and_empty_folder(tmp_path, rng):
     path = tmp_path / "s"
     path.mkdir()  # an empty folder may be used
     save_memory(_mem(rng, n=5), path)
-    save_memory(_mem(rng, n=7), path)
+    save_memory(_mem(rng, n=7), path, overwrite=True)
     assert len(load_memory(path)) == 7
     assert sorted(os.listdir(tmp_path)) == ["s"]  # no hidden leftovers
 
@@ -120,13 +120,13 @@ _CRASH_HELPER = textwrap.dedent(
     rng = np.random.default_rng(seed)
     mems = [DenseMemory.from_array(np.full((n, 32), v, np.float32), beta=2.0) for n, v in ((60000, 1.0), (40000, 2.0))]
     mems[0].save(path)
-    t0 = time.perf_counter(); mems[1].save(path); mems[0].save(path); span = (time.perf_counter() - t0) / 2
+    t0 = time.perf_counter(); mems[1].save(path, overwrite=True); mems[0].save(path, overwrite=True); span = (time.perf_counter() - t0) / 2
     print("ready", span, flush=True)
     for t in range(trials):
         sys.stdin.readline()
         pid = os.fork()
         if pid == 0:
-            mems[(t + 1) % 2].save(path)
+            mems[(t + 1) % 2].save(path, overwrite=True)
             os._exit(0)
         time.sleep(rng.uniform(0.0, 1.1 * span))
         os.kill(pid, signal.SIGKILL)
@@ -161,7 +161,7 @@ def test_sigkill_during_save_leaves_old_or_new(tmp_path):
         proc.stdin.close()
         proc.wait(timeout=60)
     assert killed >= 20  # at least 20 saves really were killed part-way
-    save_memory(DenseMemory.from_array(np.ones((3, 32))), path)  # the next save tidies up
+    save_memory(DenseMemory.from_array(np.ones((3, 32))), path, overwrite=True)  # the next save tidies up
     assert sorted(os.listdir(tmp_path)) == ["store"]
 
 
@@ -190,7 +190,7 @@ def test_crash_at_every_filesystem_step(tmp_path, rng, monkeypatch):
         monkeypatch.setattr(storage.shutil, "rmtree", lambda *a, **k: gate("rmtree", *a, **k))
         monkeypatch.setattr(storage, "_write_file", lambda *a: gate("write", *a))
         try:
-            save_memory(new, path)
+            save_memory(new, path, overwrite=True)
             finished = True
         except _Crash:
             finished = False
@@ -198,7 +198,7 @@ def test_crash_at_every_filesystem_step(tmp_path, rng, monkeypatch):
         got = load_memory(path)
         assert len(got) in (8, 11)
         np.testing.assert_array_equal(got.patterns, (old if len(got) == 8 else new).patterns)
-        save_memory(new, path)  # recovery then a clean save
+        save_memory(new, path, overwrite=True)  # recovery then a clean save
         assert len(load_memory(path)) == 11
         if finished:
             n_steps = step
@@ -216,7 +216,7 @@ def test_load_reads_next_when_crashed_between_renames(tmp_path, rng):
     before = sorted(os.listdir(tmp_path))
     assert len(load_memory(path)) == 6
     assert sorted(os.listdir(tmp_path)) == before  # loading changes nothing on disk
-    save_memory(_mem(rng, n=9), path)
+    save_memory(_mem(rng, n=9), path, overwrite=True)
     assert sorted(os.listdir(tmp_path)) == ["s"]
 
 
@@ -224,7 +224,7 @@ def test_load_reads_next_when_crashed_between_renames(tmp_path, rng):
 def _rewrite_manifest(path: Path, **changes) -> None:
     man = json.loads((path / "manifest.json").read_text())
     man.update(changes)
-    (path / "manifest.json").write_text(json.dumps(man))
+    (path / "manifest.json").write_text(storage.manifest_text(man))  # re-sealed: only the edit is wrong
 
 
 def _replace_array(path: Path, name: str, arr: np.ndarray, *, pickle: bool = False) -> None:
@@ -232,7 +232,7 @@ def _replace_array(path: Path, name: str, arr: np.ndarray, *, pickle: bool = Fal
     np.save(path / name, arr, allow_pickle=pickle)
     man = json.loads((path / "manifest.json").read_text())
     man["files"][name] = {"sha256": storage._sha256(path / name), "bytes": (path / name).stat().st_size}
-    (path / "manifest.json").write_text(json.dumps(man))
+    (path / "manifest.json").write_text(storage.manifest_text(man))  # re-sealed: only the edit is wrong
 
 
 @pytest.fixture
@@ -260,7 +260,7 @@ def test_truncated_file(store):
 
 def test_bad_version(store):
     _rewrite_manifest(store, format_version=99)
-    with pytest.raises(StoreFormatError, match=r"manifest\.json.*format_version 99.*reads version 1"):
+    with pytest.raises(StoreFormatError, match=r"manifest\.json.*format_version 99.*reads version 2"):
         load_memory(store)
 
 
@@ -330,7 +330,7 @@ def test_manifest_entries_checked(store, changes, match):
 def test_manifest_without_checksum(store):
     man = json.loads((store / "manifest.json").read_text())
     del man["files"]["patterns.npy"]
-    (store / "manifest.json").write_text(json.dumps(man))
+    (store / "manifest.json").write_text(storage.manifest_text(man))  # re-sealed: only the edit is wrong
     with pytest.raises(StoreFormatError, match=r"no checksum for 'patterns\.npy'"):
         load_memory(store)
 
@@ -365,7 +365,7 @@ def test_not_an_npy_file(store):
 def _replace_array_checksum_only(path: Path, name: str) -> None:
     man = json.loads((path / "manifest.json").read_text())
     man["files"][name] = {"sha256": storage._sha256(path / name), "bytes": (path / name).stat().st_size}
-    (path / "manifest.json").write_text(json.dumps(man))
+    (path / "manifest.json").write_text(storage.manifest_text(man))  # re-sealed: only the edit is wrong
 
 
 def test_unreadable_index_file(store, monkeypatch):

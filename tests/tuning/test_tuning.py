@@ -17,8 +17,9 @@ from scipy.stats import entropy as scipy_entropy
 
 import densemem
 import densemem.tuning as tu
-from densemem.core.weight_stats import weight_stats
-from densemem.tuning._queries import corrupt
+from densemem.core import partial as P
+from densemem.core.exact import exact_reduce
+from densemem._synthetic import corrupt
 from densemem.errors import InputTypeError, InputValueError, MissingExtraError, UnknownIdError
 
 
@@ -156,7 +157,7 @@ def test_predicted_beta_is_conservative_random(rng: np.random.Generator) -> None
 
 
 def test_predicted_beta_is_conservative_digits(digits_unit: np.ndarray, rng: np.random.Generator) -> None:
-    # Same claim on scikit-learn's bundled digits (UCI optdigits), first 120 normalised rows.
+    # Same claim on scikit-learn's bundled digits (UCI optdigits), first 120 normalized rows.
     x = np.ascontiguousarray(digits_unit[:120])
     assert _check_sphere_maps_into_itself(densemem.DenseMemory.from_array(x), x, rng) == 240
 
@@ -200,16 +201,41 @@ def test_target_beta_covers_the_fraction(rng: np.random.Generator) -> None:
 
 
 # ------------------------------------------------------- weights / sweep
-def test_weight_stats_match_scipy_on_uneven_tiles(rng: np.random.Generator) -> None:
-    # Reference: scipy.special.softmax and scipy.stats.entropy; tiles of a
-    # few rows and query chunks of 7 over 2 threads make every tile and chunk boundary uneven.
+def test_partial_moments_match_scipy_on_uneven_tiles(rng: np.random.Generator) -> None:
+    # Reference: scipy.special.softmax and scipy.stats.entropy (Shannon entropy -sum p ln p);
+    # participation ratio 1 / sum p^2 from the same scipy weights. Tiles of a few rows and
+    # query chunks of 7 over 2 threads make every tile, merge and chunk boundary uneven.
     x = rng.standard_normal((1003, 10)).astype(np.float32)
     q = rng.standard_normal((37, 10)).astype(np.float32)
     for beta in (1e-9, 0.2, 3.0):
-        ws = weight_stats(q, x, beta, tile_mib=0.002, n_threads=2, chunk=7)
-        p = softmax(beta * (q.astype(np.float64) @ x.T.astype(np.float64)), axis=1)
-        np.testing.assert_allclose(ws.entropy, scipy_entropy(p, axis=1), atol=2e-6)
-        np.testing.assert_allclose(ws.participation, 1.0 / np.sum(p * p, axis=1), rtol=1e-5)
+        for need_acc in (True, False):
+            part = exact_reduce(q, x, beta, k=3, tile_mib=0.002, n_threads=2, chunk=7, need_acc=need_acc,
+                                moments=True)
+            fin = P.finish(part)
+            p = softmax(beta * (q.astype(np.float64) @ x.T.astype(np.float64)), axis=1)
+            np.testing.assert_allclose(fin.entropy, scipy_entropy(p, axis=1), atol=2e-6)
+            np.testing.assert_allclose(fin.participation, 1.0 / np.sum(p * p, axis=1), rtol=1e-5)
+    plain = P.finish(exact_reduce(q, x, 3.0, k=3, tile_mib=0.002, n_threads=2, chunk=7))
+    assert plain.entropy is None and plain.participation is None  # only when asked
+
+
+def test_gathered_moments_match_scipy_with_missing_candidates(rng: np.random.Generator) -> None:
+    # Reference: scipy.special.softmax / scipy.stats.entropy over each query's present
+    # candidates; -inf marks a missing candidate and must weigh nothing.
+    z = rng.standard_normal((6, 40)) * 4.0
+    ids = np.tile(np.arange(40), (6, 1))
+    z[:, 30:] = -np.inf
+    ids[:, 30:] = -1
+    fin = P.finish(P.gathered(z, None, ids, k=2, moments=True))
+    p = softmax(z[:, :30].astype(np.float32).astype(np.float64), axis=1)
+    np.testing.assert_allclose(fin.entropy, scipy_entropy(p, axis=1), atol=1e-9)
+    np.testing.assert_allclose(fin.participation, 1.0 / np.sum(p * p, axis=1), rtol=1e-9)
+    # Split the candidates in two disjoint halves: the merge rescales the moments exactly.
+    a = P.gathered(z[:, :13], None, ids[:, :13], k=2, moments=True)
+    b = P.gathered(z[:, 13:], None, ids[:, 13:], k=2, moments=True)
+    both = P.finish(P.merge(a, b))
+    np.testing.assert_allclose(both.entropy, fin.entropy, atol=1e-12)
+    np.testing.assert_allclose(both.participation, fin.participation, rtol=1e-12)
 
 
 def test_entropy_non_increasing_in_beta_and_ln_n_at_zero(rng: np.random.Generator) -> None:
@@ -270,16 +296,16 @@ def test_sweep_steps_use_the_last_update_weights(rng: np.random.Generator) -> No
 
 def test_corruption_models(rng: np.random.Generator) -> None:
     # Derived: Gaussian noise norm ~ level ||x|| (chi distribution, d = 400); mask zeroes a
-    # `level` fraction; mix is the stated convex combination with the rival.
+    # `level` fraction (exactly round(0.25 * 400) = 100 per row); mix is the stated convex combination with the rival.
     x = unit_rows(rng, 30, 400) * np.float32(3.0)
     before = x.copy()
     rows = np.arange(30)
-    g = corrupt(x, rows, corruption="gaussian", level=0.2, rng=rng)
+    g = corrupt(x[rows], "gaussian", 0.2, rng)
     assert np.linalg.norm(g - x, axis=1).mean() == pytest.approx(0.6, rel=0.03)
-    mk = corrupt(x, rows, corruption="mask", level=0.25, rng=rng)
-    assert np.mean(mk == 0) == pytest.approx(0.25, abs=0.02) and ((mk == 0) | (mk == x)).all()
+    mk = corrupt(x[rows], "mask", 0.25, rng)
+    assert ((mk == 0).sum(axis=1) == 100).all() and ((mk == 0) | (mk == x)).all()
     rivals = np.roll(rows, 1)
-    mx = corrupt(x, rows, corruption="mix", level=0.3, rng=rng, rivals=rivals)
+    mx = corrupt(x[rows], "mix", 0.3, rng, rivals=x[rivals])
     np.testing.assert_allclose(mx, 0.7 * x + 0.3 * x[rivals], atol=1e-6)
     # The sweep's "mix" queries use the nearest rival found by the exact separation.
     mem = densemem.DenseMemory.from_array(x)
@@ -384,7 +410,11 @@ def test_reports_are_json_and_tables(rng: np.random.Generator, tmp_path) -> None
     table = tu.format_report(rep)
     for head in ("separation (exact", "predicted beta", "beta", "chosen beta (blend)"):
         assert head in table
-    assert len(tu.format_report(rep.sweep).splitlines()) == 1 + 6 + 1
+    from densemem.tuning._reports import SWEEP_COLUMNS
+
+    # header, one line per beta, a blank line, "legend" and one legend line per column
+    assert len(tu.format_report(rep.sweep).splitlines()) == 1 + 6 + 2 + len(SWEEP_COLUMNS)
+    assert table.splitlines()[0].startswith("verdict: for blends of about 5 items use beta = ")
     gen = tu.sweep_beta(mem, betas=[1.0], n_queries=4, seed=np.random.default_rng(3))
     json.dumps(gen.to_dict(), allow_nan=False)  # a Generator seed is recorded as text
     assert repr(rep.sweep).startswith("SweepReport(betas=array(shape=(6,))")

@@ -1,0 +1,96 @@
+"""Optional compiled tile kernel (numba): max, top-k, exp and sum in one visit of each row.
+
+Installed with ``pip install densemem[fast]``. Without numba (or with the
+environment variable ``DENSEMEM_KERNEL=numpy``) the NumPy kernel in
+:mod:`.partial` runs instead; both are exact softmax reductions and agree to
+float32 rounding. The matrix products stay with NumPy's BLAS.
+
+Per stored-row tile ``z = qz @ rows.T`` (float32, one row per query) the kernel
+folds the tile into a running partial *in place*, per query row:
+
+1. group maxima: ``gmax[g] = max_c z[c*G + g]`` over the 16 strided column
+   slices (an element-wise max, vectorised), and the row max from them;
+2. top-k: only groups whose max beats the running k-th best are scanned (a
+   group holding a top-k entry has a max at least that large); the top list is
+   a min-heap whose root is that k-th best;
+3. ``m' = max(m, row max)``, ``e = exp(z - m')`` written over ``z`` (for the
+   second product), ``l' = l e^(m-m') + sum e`` summed in float64; the factor
+   ``e^(m-m')`` is returned to rescale the weighted sum.
+
+``exp`` is evaluated in float32 by range reduction ``x = n ln2 + r`` and a
+degree-7 polynomial for ``e^r`` on ``|r| <= ln2/2`` (Cephes ``expf``
+coefficients, S. L. Moshier, Cephes Math Library, 1984-1992): relative error
+below 3e-7, like NumPy's float32 ``exp``; arguments below -87 are clamped to -87
+(a weight of 1.6e-38 beside the row max's weight of 1).
+"""
+
+from __future__ import annotations
+
+import os
+import threading
+from typing import Any
+
+import numpy as np
+
+__all__ = ["fold_tile", "available", "set_enabled"]
+
+_GROUP = 16
+_MAX_K = 4096  # top lists longer than this use the NumPy kernel (the kernel keeps a heap)
+
+_kernel: Any = None
+_tried = False
+_lock = threading.Lock()  # query chunks run on threads: load once
+
+
+def available(k: int) -> bool:
+    """Whether the compiled kernel is installed, enabled and suited to top lists of ``k``."""
+    return k <= _MAX_K and _load() is not None
+
+
+def set_enabled(flag: bool) -> bool:
+    """Use (True) or bypass (False) the compiled kernel from now on; returns whether it is in use.
+
+    For measurements and tests that compare both kernels in one process; the
+    environment variable ``DENSEMEM_KERNEL=numpy`` sets the default.
+    """
+    global _kernel, _tried
+    _tried, _kernel = False, None
+    if flag:
+        _load(force=True)
+    else:
+        _tried = True
+    return _kernel is not None
+
+
+def _load(force: bool = False) -> Any:
+    global _kernel, _tried
+    if _tried:
+        return _kernel
+    with _lock:
+        if _tried:
+            return _kernel
+        if force or os.environ.get("DENSEMEM_KERNEL", "").lower() != "numpy":
+            try:
+                from ._fused_numba import kernel
+            except ImportError:
+                kernel = None
+            _kernel = kernel
+        _tried = True
+    return _kernel
+
+
+def fold_tile(
+    z: np.ndarray, offset: int, m: np.ndarray, l: np.ndarray, top_z: np.ndarray, top_i: np.ndarray,
+    *, weights: bool = True,
+) -> np.ndarray:
+    """Fold one tile into the running (m, l, top_z, top_i), in place; ``z`` becomes the weights.
+
+    Returns the factor ``exp(m_old - m_new)`` per query (0 where nothing was seen yet)
+    by which the caller rescales its weighted sum before adding ``z @ rows``. With
+    ``weights=False`` only the max and the top list are kept (a candidate search):
+    ``z`` and ``l`` are left alone.
+    """
+    kern = _load()
+    scale = np.empty(z.shape[0], dtype=np.float64)
+    kern(z, offset, m, l, top_z, top_i, scale, weights)
+    return scale

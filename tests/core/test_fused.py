@@ -1,0 +1,83 @@
+"""The compiled tile kernel (densemem.core._fused) and the NumPy kernel it stands in for.
+
+References: scipy.special.softmax / scipy.special.logsumexp in float64 for states, weights
+and log-sum-exp; faiss.knn (brute-force inner product) for the top list; NumPy's float64
+exp for the kernel's float32 exp (Cephes expf, S. L. Moshier, Cephes Math Library: relative
+error a few float32 ulps). Both kernels run in every test: the NumPy one by disabling the
+compiled one for the test, the compiled one where numba is installed (else skipped, visibly).
+"""
+
+from __future__ import annotations
+
+import faiss
+import numpy as np
+import pytest
+from scipy.special import logsumexp, softmax
+
+from densemem.core import _fused
+from densemem.core import partial as P
+from densemem.core.exact import exact_reduce
+
+
+@pytest.fixture(params=["numpy", "compiled"])
+def kernel(request: pytest.FixtureRequest) -> str:
+    if request.param == "numpy":
+        assert not _fused.set_enabled(False) and not _fused.available(10)
+        request.addfinalizer(lambda: _fused.set_enabled(True))
+    else:
+        pytest.importorskip("numba")
+        assert _fused.set_enabled(True) and _fused.available(10)
+    return request.param
+
+
+def _case(seed: int, n: int, d: int, n_q: int) -> tuple[np.ndarray, np.ndarray]:
+    rng = np.random.default_rng(seed)
+    x = rng.standard_normal((n, d)).astype(np.float32)
+    x /= np.linalg.norm(x, axis=1, keepdims=True)
+    q = x[rng.choice(n, n_q, replace=False)] + 0.3 * rng.standard_normal((n_q, d)).astype(np.float32) / np.sqrt(d)
+    return x, np.ascontiguousarray(q, dtype=np.float32)
+
+
+@pytest.mark.parametrize("beta,k,tile_mib", [(0.5, 1, 0.01), (8.0, 10, 0.05), (60.0, 7, 0.003), (8.0, 64, 16.0)])
+def test_kernel_matches_scipy_and_faiss(kernel: str, beta: float, k: int, tile_mib: float) -> None:
+    # Tiles of a few hundred rows (uneven last tile, widths not multiples of 16) over 2 threads.
+    x, q = _case(3, 5003, 384, 37)
+    fin = P.finish(exact_reduce(q, x, beta, k=k, tile_mib=tile_mib, n_threads=2, chunk=16))
+    z = beta * (q.astype(np.float64) @ x.T.astype(np.float64))
+    p = softmax(z, axis=1)
+    np.testing.assert_allclose(fin.states, p @ x.astype(np.float64), rtol=0, atol=2e-6)
+    np.testing.assert_allclose(fin.lse, logsumexp(z, axis=1), rtol=0, atol=1e-5 * max(1.0, beta))
+    _, truth = faiss.knn(q, x, k, metric=faiss.METRIC_INNER_PRODUCT)
+    assert np.mean(fin.top_i == truth) >= 0.99  # float32 near-ties may swap neighbours
+    np.testing.assert_allclose(fin.top_w, np.take_along_axis(p, fin.top_i, 1), rtol=2e-5, atol=1e-12)
+    assert np.all(np.diff(fin.top_z, axis=1) <= 0)  # heaviest first
+
+
+def test_kernels_agree_to_float32_rounding() -> None:
+    pytest.importorskip("numba")
+    x, q = _case(5, 3001, 64, 50)
+    assert _fused.set_enabled(True)
+    fast = P.finish(exact_reduce(q, x, 20.0, k=5, tile_mib=0.02, n_threads=1))
+    try:
+        _fused.set_enabled(False)
+        slow = P.finish(exact_reduce(q, x, 20.0, k=5, tile_mib=0.02, n_threads=1))
+    finally:
+        _fused.set_enabled(True)
+    np.testing.assert_array_equal(fast.top_i, slow.top_i)
+    np.testing.assert_allclose(fast.states, slow.states, rtol=0, atol=1e-6)
+    np.testing.assert_allclose(fast.top_w, slow.top_w, rtol=1e-5)
+
+
+def test_compiled_exp_is_float32_accurate() -> None:
+    pytest.importorskip("numba")
+    # One tile row holding the arguments: after the fold, z holds exp(z - max z) = exp(z) (max 0).
+    t = -np.linspace(0.0, 80.0, 200_001).astype(np.float32)
+    z = t[None, :].copy()
+    m, l = np.full(1, -np.inf), np.zeros(1)
+    top_z, top_i = np.full((1, 1), -np.inf, np.float32), np.full((1, 1), -1, np.int64)
+    scale = _fused.fold_tile(z, 0, m, l, top_z, top_i)
+    ref = np.exp(t.astype(np.float64))
+    assert np.max(np.abs(z[0] - ref) / ref) < 4e-7
+    assert m[0] == 0.0 and scale[0] == 0.0 and top_i[0, 0] == 0
+    assert l[0] == pytest.approx(z[0].astype(np.float64).sum(), rel=1e-12)  # summed in float64
+    assert l[0] == pytest.approx(ref.sum(), rel=1e-7)
