@@ -14,7 +14,7 @@ Certificate. Take candidates C = faiss's exact top-kc rows by score, and let
 ``(alpha - 1) z_kc <= tau_C``, every omitted row (``z <= z_kc``) carries
 weight 0 at ``tau_C``, so ``tau_C`` also solves the equation over all rows:
 the answer over C *is* the answer over all rows, with zero omitted mass.
-Otherwise kc doubles (up to a cap) and the query is searched again; a query
+Otherwise kc grows fourfold (up to a cap) and the query is searched again; a query
 whose support would exceed the cap is answered by the tiled pass.
 
 The partial of a sparse map (:class:`Support`) is the support of a row set:
@@ -61,6 +61,7 @@ __all__ = [
 WEIGHTINGS: tuple[str, ...] = ("softmax", "sparsemax", "entmax15", "entmax")
 NAMED_ALPHA = {"sparsemax": 2.0, "entmax15": 1.5}
 K_START = 8  # first candidate count of the faiss search (at least k)
+GROW = 4  # candidate growth factor per search round
 NEWTON_ITERS = 200
 _TOL = 1e-13
 
@@ -86,17 +87,22 @@ def sparse_map(weighting: str, alpha: float | None) -> SparseMap | None:
 
 
 # ------------------------------------------------------------ the map itself
+def _powers(u: np.ndarray, pos: np.ndarray, alpha: float) -> tuple[np.ndarray, np.ndarray]:
+    """``p = u^(1/(alpha-1))`` and ``u^(1/(alpha-1) - 1)`` (0 outside ``pos``; ``u`` is 0 there)."""
+    if alpha == 2.0:
+        return u, pos.astype(np.float64)
+    if alpha == 1.5:
+        return u * u, u
+    e = 1.0 / (alpha - 1.0)
+    return u ** e, np.where(pos, u ** (e - 1.0), 0.0)
+
+
 def _f_fp(t: np.ndarray, tau: np.ndarray, alpha: float) -> tuple[np.ndarray, np.ndarray]:
     """sum_i p_i(tau) and -d/dtau of it, per row of ``t = (alpha-1) z``."""
     u = t - tau[:, None]
     pos = u > 0
-    u = np.where(pos, u, 0.0)
-    if alpha == 2.0:
-        return u.sum(axis=1), pos.sum(axis=1).astype(np.float64)
-    e = 1.0 / (alpha - 1.0)
-    f = (u ** e).sum(axis=1)
-    fp = np.where(pos, u ** (e - 1.0), 0.0).sum(axis=1) * e
-    return f, fp
+    p, dp = _powers(np.where(pos, u, 0.0), pos, alpha)
+    return p.sum(axis=1), dp.sum(axis=1) / (alpha - 1.0)
 
 
 def _weights(t: np.ndarray, tau: np.ndarray, alpha: float) -> np.ndarray:
@@ -227,7 +233,7 @@ def table_support(
         todo = todo[~ok]
         if kc >= cap:
             break
-        kc = min(cap, 2 * kc)
+        kc = min(cap, GROW * kc)
     width = max([g[1].shape[1] for g in got], default=0)
     z_all = np.full((b, width), -np.inf)
     p_all = np.full((b, width), -1, np.int64)
@@ -331,13 +337,9 @@ def table_sums(
             if not pos.any():
                 continue
             u[~pos] = 0.0
-            p = u if alpha == 2.0 else u ** (1.0 / (alpha - 1.0))
+            p, dp = _powers(u, pos, alpha)
             out.f += p.sum(axis=1)
-            if alpha == 2.0:
-                out.fp += pos.sum(axis=1)
-            else:
-                e = 1.0 / (alpha - 1.0)
-                out.fp += np.where(pos, u ** (e - 1.0), 0.0).sum(axis=1) * e
+            out.fp += dp.sum(axis=1) / (alpha - 1.0)
             if final:
                 out.count += pos.sum(axis=1)
                 out.pz += (p * np.where(pos, z, 0.0)).sum(axis=1)
@@ -416,7 +418,7 @@ def _from_support(sup: Support, alpha: float, k: int) -> Answer:
     p = np.divide(p, s, out=np.zeros_like(p), where=s > 0)
     states = None
     if sup.rows is not None:
-        states = np.einsum("bw,bwd->bd", p, sup.rows.astype(np.float64)).astype(np.float32)
+        states = np.einsum("bw,bwd->bd", p.astype(np.float32), sup.rows)  # float32, as the softmax paths
     zfin = np.where(p > 0, sup.z, 0.0)
     omega = _omega_star((p * zfin).sum(axis=1), (p ** alpha).sum(axis=1), alpha)
     top_w, top_ids = _first(p, sup.ids, k)
