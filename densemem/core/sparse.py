@@ -319,7 +319,7 @@ def table_sums(
             out.count, out.pz, out.palpha = np.zeros(m, np.int64), np.zeros(m), np.zeros(m)
             out.acc = np.zeros((m, d)) if need_acc else None
             out.top_z, out.top_ids = np.full((m, k), -np.inf), np.full((m, k), -1, np.int64)
-        step = max(1, tile_rows_for(m, tile_mib / 2))  # float64 copies of the tile sit beside it
+        step = max(1, tile_rows_for(m, tile_mib / 8))  # about six float64 copies of the tile sit beside it
         for start in range(0, n, step):
             rows = x[start:start + step]
             z32 = qb @ rows.T
