@@ -529,3 +529,26 @@ def check_finite_result(arr: np.ndarray, *, what: str, where: str) -> None:
             f"{where}: the {what} left the float range (NaN or infinity at index {tuple(int(i) for i in bad)}); "
             "the inputs are too large or beta too high for float32 scores -- rescale them or lower beta."
         )
+
+
+HALF_MAX = float(np.finfo(np.float16).max)  # 65504
+
+
+def to_half(x: np.ndarray, *, where: str, name: str) -> np.ndarray:
+    """``x`` rounded to float16; a value beyond the float16 range is refused with its row named.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from densemem._validation import to_half
+    >>> to_half(np.array([[1.0, 2.5]], np.float32), where="demo", name="patterns").dtype
+    dtype('float16')
+    """
+    big = np.abs(x) > HALF_MAX
+    if big.any():
+        row = int(np.flatnonzero(big.any(axis=1))[0])
+        raise InputValueError(
+            f"{where}: `{name}` holds {float(np.abs(x[row]).max()):.6g} at row {row}, beyond the float16 range "
+            f"(largest is {HALF_MAX:g}); keep this memory in float32 or scale the rows."
+        )
+    return np.ascontiguousarray(x, dtype=np.float16)

@@ -3,14 +3,14 @@
 from __future__ import annotations
 
 import warnings
+from dataclasses import dataclass
 from typing import Any, Literal
 
-import faiss
 import numpy as np
 
 from ._front import Retriever
 from .core.index import CandidateIndex, IndexSettings, default_settings
-from .core.rows import RowSource, TableRows
+from .core.rows import RowSource, TableRows, exact_knn
 from .core.table import PatternTable
 from .core.tiles import DEFAULT_TILE_MIB, n_threads_default
 from .options import Layout, RetrievalOptions
@@ -19,6 +19,45 @@ from .errors import DenseMemWarning, IndexStaleError, InputTypeError, InputValue
 from .store._folder import StoreContent, read_store, write_store
 
 __all__ = ["DenseMemory"]
+
+
+@dataclass(frozen=True, slots=True)
+class HalfRounding:
+    """How far rounding to float16 moved the rows of a memory (reported when it is built).
+
+    Attributes
+    ----------
+    max_distance, mean_distance : float
+        Largest and mean Euclidean distance between an input row (normalized
+        first under ``normalize=True``) and its stored float16 row.
+    max_cosine_change : float
+        Largest ``1 - cos`` between an input row and its stored row.
+    """
+
+    max_distance: float
+    mean_distance: float
+    max_cosine_change: float
+
+    @classmethod
+    def between(cls, given: np.ndarray, stored: np.ndarray, *, normalize: bool) -> "HalfRounding":
+        """Compare input rows with the stored ones, in float64, block by block."""
+        dist = np.empty(given.shape[0])
+        cos = np.empty(given.shape[0])
+        for a in range(0, given.shape[0], 65536):
+            g = np.asarray(given[a : a + 65536], np.float64)
+            if normalize:
+                g = g / np.maximum(np.linalg.norm(g, axis=1, keepdims=True), np.finfo(np.float64).tiny)
+            s = np.asarray(stored[a : a + 65536], np.float64)
+            dist[a : a + g.shape[0]] = np.linalg.norm(g - s, axis=1)
+            den = np.linalg.norm(g, axis=1) * np.linalg.norm(s, axis=1)
+            cos[a : a + g.shape[0]] = 1.0 - np.einsum("ij,ij->i", g, s) / np.where(den > 0, den, 1.0)
+        n = max(given.shape[0], 1)
+        return cls(float(dist.max(initial=0.0)), float(dist.sum() / n), float(max(cos.max(initial=0.0), 0.0)))
+
+    def to_dict(self) -> dict[str, float]:
+        """The three figures as a plain dict."""
+        return {"max_distance": self.max_distance, "mean_distance": self.mean_distance,
+                "max_cosine_change": self.max_cosine_change}
 
 
 class DenseMemory(Retriever):
@@ -36,6 +75,12 @@ class DenseMemory(Retriever):
         Working-memory budget (MiB) of one (query chunk x tile) score block.
     n_threads : int, optional
         Threads for retrieval (default: the cores available).
+    dtype : {"float32", "float16"}, default "float32"
+        How the rows are kept. "float16" takes half the bytes in memory and on
+        disk; retrieval is exact for the stored half values (each tile is
+        widened to float32 for the products, which accumulate in float32); a
+        value beyond the float16 range (65504) is refused with its row named.
+        :attr:`rounding` reports how far :meth:`from_array` moved the rows.
 
     See Also
     --------
@@ -84,9 +129,14 @@ class DenseMemory(Retriever):
         beta: float = 1.0,
         tile_mib: float = DEFAULT_TILE_MIB,
         n_threads: int | None = None,
+        dtype: str = "float32",
     ) -> None:
         where = "DenseMemory"
-        self._table = PatternTable(check_positive_int(dim, name="dim", where=where), normalize=bool(normalize))
+        if dtype not in ("float32", "float16") and np.dtype(dtype) not in (np.float32, np.float16):
+            raise InputValueError(f"{where}: `dtype` must be 'float32' or 'float16'; got {dtype!r}.")
+        self._table = PatternTable(check_positive_int(dim, name="dim", where=where), normalize=bool(normalize),
+                                   dtype=np.dtype(dtype))
+        self.rounding: HalfRounding | None = None  # float16: how far rounding moved the rows of from_array
         self._beta = check_beta(beta, where=where)
         self.tile_mib = check_nonneg_float(tile_mib, name="tile_mib", where=where, strict=True)
         self.n_threads = (
@@ -131,15 +181,23 @@ class DenseMemory(Retriever):
             raise InputValueError(f"{where}: `patterns` must have at least one column; got shape {arr.shape}.")
         if arr is patterns:  # the table keeps its own copy; never alias the caller's buffer
             arr = arr.copy()
-        allowed = {"tile_mib", "n_threads"}
+        allowed = {"tile_mib", "n_threads", "dtype"}
         unknown = sorted(set(options) - allowed)
         if unknown:
-            raise InputTypeError(f"{where}: unknown option(s) {unknown}; use normalize, beta, tile_mib or n_threads.")
+            raise InputTypeError(
+                f"{where}: unknown option(s) {unknown}; use normalize, beta, tile_mib, n_threads or dtype.")
         mem = cls(int(arr.shape[1]), normalize=normalize, beta=beta, **options)
         mem._add(arr, ids, where=where)
+        if mem._table.dtype == np.float16:
+            mem.rounding = HalfRounding.between(arr, mem.patterns, normalize=mem.normalize)
         return mem
 
     # ------------------------------------------------------------ properties
+    @property
+    def dtype(self) -> str:
+        """The stored rows' type: "float32", or "float16" (half the bytes; products in float32)."""
+        return str(self._table.dtype)
+
     @property
     def dim(self) -> int:
         """Number of features of the stored patterns."""
@@ -345,8 +403,7 @@ class DenseMemory(Retriever):
         if index:
             scores, pos = self._fresh_index(where=where).search(q, k)
         else:
-            fm = faiss.METRIC_INNER_PRODUCT if metric == "ip" else faiss.METRIC_L2
-            scores, pos = faiss.knn(q, self._table.x, k, metric=fm)
+            scores, pos = exact_knn(q, self._table.x, k, metric, tile_mib=self.tile_mib)
         return self._table.ids_at(pos), scores
 
     # ----------------------------------------------------------------- index

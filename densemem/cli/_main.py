@@ -99,6 +99,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--shards", type=int, help="split into this many shard folders (a sharded store)")
     p.add_argument("--shard-by", choices=["round_robin", "contiguous"], default="round_robin",
                    help="how rows go to shards (default round_robin)")
+    p.add_argument("--dtype", choices=["float32", "float16"], default="float32",
+                   help="keep the rows as float32 (default) or float16 (half the bytes; the rounding is reported)")
     p.set_defaults(run=_run_build)
 
     p = _sub(subs, "info", "describe a store folder and check its files", "densemem info archive-store --json")
@@ -164,16 +166,16 @@ def _run_build(a: argparse.Namespace) -> Result:
     if s.shards is not None and s.shards > emb.vectors.shape[0]:
         raise SpecError(f"--shards must be at most the number of rows ({emb.vectors.shape[0]} in "
                         f"{str(s.input)!r}) so that no shard is empty; got {s.shards}.")
-    if s.shards is not None and s.index:
-        raise SpecError("--index cannot be combined with --shards (shards use exact or certified retrieval).")
-    mem = DenseMemory.from_array(emb.vectors, emb.ids, normalize=s.normalize, beta=s.beta)
+    mem = DenseMemory.from_array(emb.vectors, emb.ids, normalize=s.normalize, beta=s.beta, dtype=s.dtype)
     hint = collapse_hint(mem, "build again with --normalize --overwrite (cosine geometry)")
     if s.shards is not None:
         from ..sharding._memory import shard_memory
 
-        shard_memory(mem, s.store, s.shards, by=s.shard_by, overwrite=s.overwrite)
+        sm = shard_memory(mem, s.store, s.shards, by=s.shard_by, overwrite=s.overwrite)
+        index = sm.build_index(s.index) if s.index else None
         data = {"store": str(s.store), "source": emb.to_dict(), "count": len(mem), "dim": mem.dim,
-                "normalize": mem.normalize, "beta": mem.beta, "shards": s.shards, "shard_by": s.shard_by}
+                "normalize": mem.normalize, "beta": mem.beta, "shards": s.shards, "shard_by": s.shard_by,
+                "index": index}
         text = out.table(["store", "patterns", "dim", "normalize", "beta", "shards"],
                          [[str(s.store), len(mem), mem.dim, mem.normalize, mem.beta, s.shards]],
                          title=f"built from {emb.source} ({emb.kind})")
@@ -185,6 +187,12 @@ def _run_build(a: argparse.Namespace) -> Result:
         text = out.table(["store", "patterns", "dim", "normalize", "beta", "index"],
                          [[str(s.store), len(mem), mem.dim, mem.normalize, mem.beta, s.index]],
                          title=f"built from {emb.source} ({emb.kind})")
+    data["dtype"] = mem.dtype
+    if mem.rounding is not None:
+        r = mem.rounding
+        data["rounding"] = r.to_dict()
+        text += (f"\n\nfloat16 rounding moved the rows by at most {r.max_distance:.3g} (mean {r.mean_distance:.3g}); "
+                 f"largest cosine change {r.max_cosine_change:.3g}.")
     data["warnings"] = [] if hint is None else [hint]
     return data, text if hint is None else f"{text}\n\n{hint}"
 

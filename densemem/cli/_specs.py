@@ -45,6 +45,7 @@ class BuildSpec(_Spec):
     overwrite: bool = False
     shards: int | None = Field(None, ge=1)
     shard_by: Literal["round_robin", "contiguous"] = "round_robin"
+    dtype: Literal["float32", "float16"] = "float32"
 
 
 class InfoSpec(_Spec):

@@ -24,7 +24,7 @@ import numpy as np
 
 from . import _fused
 from . import partial as P
-from .tiles import n_threads_default, search_top
+from .tiles import knn_tiles, n_threads_default, search_top
 
 __all__ = ["CertifiedOptions", "certified_reduce", "index_reduce", "bound_can_hold"]
 
@@ -51,7 +51,7 @@ def _gather_partial(
     per = max(1, int(tile_mib * 2**20 // (4 * kc * x.shape[1])))
     out = P.empty(b, x.shape[1], k)
     for s in range(0, b, per):
-        rows = x[safe[s : s + per]]  # (chunk, kc, d)
+        rows = x[safe[s : s + per]].astype(np.float32, copy=False)  # (chunk, kc, d); float16 -> float32 exactly
         sel = np.arange(s, min(b, s + per))
         _put(out, sel, P.gathered(z[sel], rows, pos[sel], k=k), np.arange(sel.size))
     return out
@@ -249,6 +249,8 @@ def _search(q: np.ndarray, x: np.ndarray, kc: int, tile_mib: float) -> tuple[np.
     """Exact top-kc by inner product, best first: the compiled tile kernel where it applies, else faiss."""
     if _fused.available(kc):
         return search_top(q, x, kc, tile_mib=tile_mib, n_threads=n_threads_default())
+    if x.dtype != np.float32:  # float16 rows: searched a tile at a time, never copied whole
+        return knn_tiles(q, x, kc, metric=faiss.METRIC_INNER_PRODUCT, tile_mib=tile_mib)
     return faiss.knn(q, x, kc, metric=faiss.METRIC_INNER_PRODUCT)
 
 

@@ -154,7 +154,8 @@ class CandidateIndex:
             index = make_index("ivf", d, nlist=settings.nlist, nprobe=settings.nprobe,
                                kmeans={"seed": settings.seed})
             train_ivf(index, x, 64 * settings.nlist, np.random.default_rng(settings.seed))
-        index.add(x)
+        for a in range(0, x.shape[0], 65536):  # float16 rows go in as float32 blocks (the index keeps its own copy)
+            index.add(np.ascontiguousarray(x[a : a + 65536], dtype=np.float32))
         return cls(settings, index, int(x.shape[0]), version)
 
     def _apply_search_params(self) -> None:
@@ -166,7 +167,7 @@ class CandidateIndex:
     def add(self, x: np.ndarray, version: int) -> None:
         """Append rows (their positions follow the existing ones)."""
         if not self.stale:
-            self.faiss_index.add(np.ascontiguousarray(x))
+            self.faiss_index.add(np.ascontiguousarray(x, dtype=np.float32))
             self.n_rows += int(x.shape[0])
             self.version = version
 

@@ -29,6 +29,7 @@ import numpy as np
 from . import partial as P
 from .candidates import CertifiedOptions, _put, bound_can_hold, certified_reduce, index_reduce
 from .exact import exact_reduce
+from .tiles import knn_tiles
 
 if TYPE_CHECKING:  # core/sparse.py builds on the id helpers below, so it is imported where used
     from . import sparse as SP
@@ -68,6 +69,14 @@ class RowSource(Protocol):
     def row_blocks(self) -> Iterator[np.ndarray]:
         """The source's rows in blocks (read only where the energy needs them at tiny beta)."""
         ...
+
+
+def exact_knn(q: np.ndarray, x: np.ndarray, k: int, metric: str, *, tile_mib: float = 16.0) -> tuple[np.ndarray, np.ndarray]:
+    """faiss exact top-k (inner product or squared L2) of float32 rows, or of float16 rows tile by tile."""
+    fm = faiss.METRIC_INNER_PRODUCT if metric == "ip" else faiss.METRIC_L2
+    if x.dtype == np.float32:
+        return faiss.knn(q, x, k, metric=fm)
+    return knn_tiles(q, x, k, metric=fm, tile_mib=tile_mib)
 
 
 def id_fill(dtype: np.dtype) -> Any:
@@ -181,7 +190,7 @@ class TableRows:
         kc = min(len(self), max(self.n_candidates, k))
         rng = np.random.default_rng(0)
         sel = np.sort(rng.choice(q.shape[0], min(n_sample, q.shape[0]), replace=False))
-        _, exact_pos = faiss.knn(q[sel], self.x, kc, metric=faiss.METRIC_INNER_PRODUCT)
+        _, exact_pos = exact_knn(q[sel], self.x, kc, "ip", tile_mib=self.tile_mib)
         _, got = self.index().search(q[sel], kc)  # type: ignore[misc]
         hits = [np.intersect1d(a, b[b >= 0]).size for a, b in zip(exact_pos, got)]
         return float(np.mean(hits) / kc)

@@ -22,7 +22,7 @@ from typing import Any, Iterator
 
 import numpy as np
 
-from .._validation import check_id_list, check_ids, check_patterns, unit_rows, unknown_id_error
+from .._validation import to_half, check_id_list, check_ids, check_patterns, unit_rows, unknown_id_error
 from ..errors import InputTypeError, InputValueError
 
 __all__ = ["PatternTable", "Snapshot"]
@@ -50,14 +50,15 @@ class Snapshot:
 
 
 class PatternTable:
-    """Float32 rows with unique int64 or str ids, and an id -> row lookup."""
+    """Float32 (or float16) rows with unique int64 or str ids, and an id -> row lookup."""
 
-    __slots__ = ("dim", "normalize", "_snap", "_pos", "_next_id", "_lock", "_pins")
+    __slots__ = ("dim", "normalize", "dtype", "_snap", "_pos", "_next_id", "_lock", "_pins")
 
-    def __init__(self, dim: int, *, normalize: bool) -> None:
+    def __init__(self, dim: int, *, normalize: bool, dtype: Any = np.float32) -> None:
         self.dim = dim
         self.normalize = normalize
-        self._snap = Snapshot(np.empty((0, dim), dtype=np.float32), np.empty(0, dtype=np.int64), 0)
+        self.dtype = np.dtype(dtype)  # float32, or float16 (half the bytes; products still in float32)
+        self._snap = Snapshot(np.empty((0, dim), dtype=self.dtype), np.empty(0, dtype=np.int64), 0)
         self._pos: tuple[int, dict[Any, int]] | None = (0, {})  # (version it matches, id -> row)
         self._next_id = 0
         self._lock = threading.RLock()  # serialises changes; readers never wait
@@ -70,7 +71,7 @@ class PatternTable:
 
         ``next_id`` (int ids): the next id to give, at least one above the largest held.
         """
-        t = cls(int(x.shape[1]), normalize=normalize)
+        t = cls(int(x.shape[1]), normalize=normalize, dtype=x.dtype)
         t._snap = Snapshot(x, ids, 0)
         t._pos = None  # built lazily
         t._next_id = max(int(ids.max()) + 1 if ids.dtype.kind == "i" and ids.size else 0, int(next_id))
@@ -151,7 +152,9 @@ class PatternTable:
             for v in new_ids.tolist():
                 if v in lookup:
                     raise InputValueError(f"{where}: id {v!r} is already stored; ids must be unique.")
-        return x.astype(np.float32, copy=False), new_ids
+        if self.dtype == np.float16:
+            x = to_half(x, where=where, name="patterns")
+        return x.astype(self.dtype, copy=False), new_ids
 
     def append(self, x: np.ndarray, new_ids: np.ndarray) -> None:
         """Append prepared rows (after :meth:`prepare`): new arrays, one swap."""
@@ -163,7 +166,7 @@ class PatternTable:
                 width = max(cur.dtype.itemsize, new_ids.dtype.itemsize) // 4
                 ids = new_ids.astype(f"<U{width}")
                 cur = cur.astype(f"<U{width}")
-            xs = np.concatenate([old.x, x]) if start else np.array(x, dtype=np.float32, order="C")
+            xs = np.concatenate([old.x, x]) if start else np.array(x, dtype=self.dtype, order="C")
             all_ids = np.concatenate([cur, ids]) if start else ids.copy()
             lookup = self._lookup(old)
             if ids.dtype.kind == "i" and ids.size:

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import os
 from concurrent.futures import ThreadPoolExecutor
-from typing import Callable, TypeVar
+from typing import Any, Callable, TypeVar
 
 import numpy as np
 from threadpoolctl import threadpool_limits
@@ -28,6 +28,50 @@ __all__ = ["tile_rows_for", "reduce_rows", "search_top", "map_query_chunks", "n_
 T = TypeVar("T")
 
 DEFAULT_TILE_MIB = 16.0
+
+
+def as_f32(rows: np.ndarray, buf: np.ndarray | None = None) -> np.ndarray:
+    """A tile in float32: itself, or a float32 copy of a float16 tile (exact: float16 -> float32 is lossless).
+
+    ``buf`` (float32, at least as many elements as the tile) is reused for the copy: a copy into a
+    warm buffer costs about half of a fresh ``astype``.
+    """
+    if rows.dtype == np.float32:
+        return rows
+    if buf is None or buf.size < rows.size:
+        return np.ascontiguousarray(rows, dtype=np.float32)
+    out = buf[: rows.size].reshape(rows.shape)
+    np.copyto(out, rows)
+    return out
+
+
+def _tile_buffer(patterns: np.ndarray, t: int) -> np.ndarray | None:
+    """A reusable float32 buffer for tiles of ``t`` rows when the rows are not float32 (else None)."""
+    return None if patterns.dtype == np.float32 else np.empty(t * patterns.shape[1], dtype=np.float32)
+
+
+def knn_tiles(q: np.ndarray, patterns: np.ndarray, k: int, *, metric: Any, tile_mib: float) -> tuple[np.ndarray, np.ndarray]:
+    """faiss exact top-k over ``patterns`` a tile at a time (for rows faiss cannot take whole: float16).
+
+    Each tile is converted to float32 and searched with ``faiss.knn``; the top lists are
+    merged by score, so the answer is the exact top-k of the stored values.
+    """
+    import faiss
+
+    n = patterns.shape[0]
+    k = min(k, n)
+    large = metric == faiss.METRIC_INNER_PRODUCT
+    best_s = np.full((q.shape[0], k), -np.inf if large else np.inf, np.float32)
+    best_i = np.full((q.shape[0], k), -1, np.int64)
+    t = max(k, tile_rows_for(1, tile_mib * 16) // 4)
+    for start in range(0, n, t):
+        rows = as_f32(patterns[start : start + t])
+        s, i = faiss.knn(q, rows, min(k, rows.shape[0]), metric=metric)
+        cat_s = np.concatenate([best_s, s], axis=1)
+        cat_i = np.concatenate([best_i, np.where(i >= 0, i + start, -1)], axis=1)
+        order = np.argsort(-cat_s if large else cat_s, axis=1, kind="stable")[:, :k]
+        best_s, best_i = np.take_along_axis(cat_s, order, 1), np.take_along_axis(cat_i, order, 1)
+    return best_s, best_i
 
 
 def n_threads_default() -> int:
@@ -78,9 +122,10 @@ def reduce_rows(
     if need_acc and not moments and _fused.available(k):
         return _reduce_fused(qz, patterns, run, t)
     buf = np.empty(b * t, dtype=np.float32)
+    wide = _tile_buffer(patterns, t)
     first = True
     for start in range(0, n, t):
-        rows = patterns[start : start + t]
+        rows = as_f32(patterns[start : start + t], wide)
         width = rows.shape[0]
         z = buf[: b * width].reshape(b, width)
         np.matmul(qz, rows.T, out=z)
@@ -95,8 +140,9 @@ def _reduce_fused(qz: np.ndarray, patterns: np.ndarray, run: P.Partial, t: int) 
     assert run.acc is not None
     b, n = qz.shape[0], patterns.shape[0]
     buf = np.empty(b * t, dtype=np.float32)
+    wide = _tile_buffer(patterns, t)
     for start in range(0, n, t):
-        rows = patterns[start : start + t]
+        rows = as_f32(patterns[start : start + t], wide)
         z = buf[: b * rows.shape[0]].reshape(b, rows.shape[0])
         np.matmul(qz, rows.T, out=z)
         scale = _fused.fold_tile(z, start, run.m, run.l, run.top_z, run.top_i)
@@ -125,8 +171,9 @@ def search_top(
         top_i = np.full((b, kc), -1, dtype=np.int64)
         m, l = np.full(b, -np.inf), np.zeros(b)
         buf = np.empty(b * t, dtype=np.float32)
+        wide = _tile_buffer(patterns, t)
         for start in range(0, n, t):
-            rows = patterns[start : start + t]
+            rows = as_f32(patterns[start : start + t], wide)
             z = buf[: b * rows.shape[0]].reshape(b, rows.shape[0])
             np.matmul(part, rows.T, out=z)
             _fused.fold_tile(z, start, m, l, top_z, top_i, weights=False)

@@ -44,12 +44,11 @@ import functools
 from dataclasses import dataclass
 from typing import Any, Iterator
 
-import faiss
 import numpy as np
 
 from ..core import sparse as SP
 from ..core.candidates import CertifiedOptions
-from ..core.rows import IdPartial, TableRows, id_fill, ids_of, tree_merge
+from ..core.rows import IdPartial, TableRows, exact_knn, id_fill, ids_of, tree_merge
 from ..core.rows import merge as merge_partials
 from ..core.rows import _common_ids
 
@@ -131,8 +130,7 @@ def shard_nearest(mem: Any, q: np.ndarray, k: int, metric: str) -> ShardNearest:
     out_ids = np.full((q.shape[0], k), id_fill(ids.dtype), dtype=ids.dtype)
     kk = min(k, x.shape[0])
     if kk:
-        fm = faiss.METRIC_INNER_PRODUCT if metric == "ip" else faiss.METRIC_L2
-        s, pos = faiss.knn(q, x, kk, metric=fm)
+        s, pos = exact_knn(q, x, kk, metric)
         scores[:, :kk] = s
         out_ids[:, :kk] = ids_of(ids, pos)
     return ShardNearest(scores, out_ids, metric)

@@ -6,7 +6,7 @@ Layout of a store folder::
                      default beta, id kind, the sha256 and size of every file, and
                      ``manifest_sha256``: the sha256 of its own content (every other
                      key, as canonical JSON), checked on every load
-    patterns.npy     float32 (count, dim), C order
+    patterns.npy     float32 or float16 (count, dim), C order (the manifest's "dtype")
     ids.npy          int64 (count,) or fixed-width unicode '<U..' (count,); never object
     index.faiss      optional: a candidate index written by ``faiss.write_index``
 
@@ -247,7 +247,7 @@ def _manifest(content: StoreContent, ids: np.ndarray) -> dict[str, Any]:
         "written_by": f"densemem {__version__}",
         "dim": int(content.x.shape[1]),
         "count": int(content.x.shape[0]),
-        "dtype": "float32",
+        "dtype": str(np.dtype(content.x.dtype)),
         "normalize": bool(content.normalize),
         "beta": float(content.beta),
         "id_kind": "int64" if ids.dtype.kind == "i" else "str",
@@ -259,7 +259,7 @@ def _manifest(content: StoreContent, ids: np.ndarray) -> dict[str, Any]:
 
 def _fill_folder(content: StoreContent, tmp: Path) -> None:
     """Step 2: every file of the store, fsynced, into the fresh folder ``tmp``."""
-    x = np.ascontiguousarray(content.x, dtype=np.float32)
+    x = np.ascontiguousarray(content.x, dtype=np.float16 if content.x.dtype == np.float16 else np.float32)
     ids = content.ids
     ids = ids.astype(np.int64) if ids.dtype.kind in "iu" else ids.astype(f"<U{max(ids.dtype.itemsize // 4, 1)}")
     man = _manifest(content, ids)
@@ -435,8 +435,9 @@ def _load_array(fpath: Path, mmap: bool, where: str) -> np.ndarray:
 
 def _check_arrays(x: np.ndarray, ids: np.ndarray, man: dict[str, Any], folder: Path, where: str) -> None:
     px, pi = str(folder / PATTERNS), str(folder / IDS)
-    if x.dtype != np.float32 or x.ndim != 2 or not x.flags.c_contiguous:
-        raise StoreFormatError(f"{where}: {px!r} must hold a C-ordered float32 matrix; got {x.dtype} {x.shape}.")
+    want = man.get("dtype", "float32")
+    if want not in ("float32", "float16") or x.dtype != np.dtype(want) or x.ndim != 2 or not x.flags.c_contiguous:
+        raise StoreFormatError(f"{where}: {px!r} must hold a C-ordered {want} matrix; got {x.dtype} {x.shape}.")
     if x.shape != (man["count"], man["dim"]):
         raise StoreFormatError(
             f"{where}: {px!r} has shape {x.shape} but the manifest says ({man['count']}, {man['dim']})."
