@@ -16,8 +16,9 @@ from typing import Any, Literal
 import numpy as np
 
 from .core import steps as S
+from .core.sparse import sparse_map
 from .core.rows import RowSource
-from .options import METHODS, Layout, Method, RetrievalOptions, prepare_queries, retrieval_options
+from .options import METHODS, Layout, Method, Weighting, RetrievalOptions, prepare_queries, retrieval_options
 from ._validation import check_k, check_nearest_range, check_positive_int, check_queries, max_row_norm
 from .errors import InputValueError
 from .results import Deferred, NearestResult, RetrievalResult, resolve
@@ -65,8 +66,10 @@ class Retriever:
         n_candidates: int | None = None,
         measure: bool | int = False,
         batch_size: int | None = None,
+        weighting: Weighting = "softmax",
+        alpha: float | None = None,
     ) -> RetrievalResult:
-        """Retrieve by the softmax update ``xi <- X.T softmax(beta X xi)``.
+        """Retrieve by the update ``xi <- X.T softmax(beta X xi)`` (or a sparse map in place of softmax).
 
         Parameters
         ----------
@@ -119,6 +122,22 @@ class Retriever:
         batch_size : int, optional
             Retrieve this many queries at a time (default: all at once); the
             result is the same, the working memory smaller.
+        weighting : {"softmax", "sparsemax", "entmax15", "entmax"}, default "softmax"
+            The normalising map. "sparsemax" (Martins & Astudillo 2016) and
+            alpha-entmax (Peters, Niculae & Martins 2019; "entmax15" is
+            alpha = 1.5, "entmax" takes ``alpha``) give exactly zero weight to
+            every row whose ``beta * score`` is at least ``1/(alpha-1)`` below
+            the best one: the result is one stored pattern or an exact short
+            blend, its size in ``support_size``. Sparse maps are always exact:
+            "auto"/"certified" take faiss's top rows, grown until the smallest
+            is provably outside the support (zero omitted mass), and answer a
+            query whose support would exceed ``k_max`` rows by the tiled exact
+            pass; "exact" uses the tiled pass for every query; "index" is not
+            available. Outside the support the weight is 0 and the id is -1
+            (int ids) or "" (str ids).
+        alpha : float, optional
+            With ``weighting="entmax"``: alpha in (1, 2] (2 is sparsemax; near
+            1 approaches softmax).
 
         Returns
         -------
@@ -128,7 +147,8 @@ class Retriever:
         ------
         InputValueError
             Empty memory, wrong query width, NaN/inf, beta <= 0, k out of range,
-            unknown method, "index" without ``build_index``.
+            unknown method, "index" without ``build_index``, unknown weighting,
+            alpha outside (1, 2] or given without weighting="entmax".
 
         Examples
         --------
@@ -145,7 +165,7 @@ class Retriever:
             opts = retrieval_options(
                 layout, q, where=where, methods=self._methods, beta=beta, steps=steps, tol=tol, k=k, method=method,
                 return_energy=return_energy, tol_mass=tol_mass, k_max=k_max, n_candidates=n_candidates,
-                measure=measure, batch_size=batch_size,
+                measure=measure, batch_size=batch_size, weighting=weighting, alpha=alpha,
             )
             return self._retrieve_checked(q, was_1d, opts, where=where)
 
@@ -158,7 +178,7 @@ class Retriever:
             S.iterate(
                 source, q[i:i + size], beta=opts.beta, steps=opts.steps, tol=opts.tol, k=opts.k, method=opts.method,
                 cert=opts.certified, return_energy=opts.return_energy, count=layout.count, max_norm=layout.max_norm,
-                lazy_energy=self._lazy_energy,
+                lazy_energy=self._lazy_energy, smap=sparse_map(opts.weighting, opts.alpha),
             )
             for i in range(0, q.shape[0], size)
         ]
@@ -168,16 +188,23 @@ class Retriever:
         return S.shape_result(was_1d, **fields)
 
     # -------------------------------------------------------------- energy
-    def energy(self, states: Any, beta: float | None = None) -> np.ndarray:
-        """Log-sum-exp energy of states (computed exactly, tile by tile).
+    def energy(self, states: Any, beta: float | None = None, *, weighting: Weighting = "softmax",
+               alpha: float | None = None) -> np.ndarray:
+        """Log-sum-exp energy of states (computed exactly, tile by tile), or a sparse map's energy.
 
         ``E(xi) = -lse(beta, X xi)/beta + xi.xi/2 + log(N)/beta + M^2/2``;
-        ``E >= 0`` and one update never raises it.
+        ``E >= 0`` and one update never raises it. With a sparse map the
+        log-sum-exp is replaced by ``Omega*``, the convex conjugate of the
+        Tsallis alpha-negentropy, and ``log(N)`` by the largest Tsallis
+        entropy ``(1 - N^(1-alpha)) / (alpha (alpha-1))`` (computed exactly
+        over the certified support).
 
         Parameters
         ----------
         states : array-like of shape (n_states, dim) or (dim,)
         beta : float, optional
+        weighting, alpha
+            The normalising map, as in :meth:`retrieve`.
 
         Returns
         -------
@@ -192,16 +219,17 @@ class Retriever:
         """
         where = f"{self._name}.energy"
         with self._pinned():
-            return self._energy(states, beta, where=where)
+            return self._energy(states, beta, where=where, weighting=weighting, alpha=alpha)
 
-    def _energy(self, states: Any, beta: float | None, *, where: str) -> Any:
+    def _energy(self, states: Any, beta: float | None, *, where: str, weighting: Any = "softmax",
+                alpha: Any = None) -> Any:
         layout = self._layout()
         if layout.count == 0:
             raise InputValueError(f"{where}: the memory is empty; add patterns first.")
         s, was_1d = check_queries(states, where=where, dim=layout.dim, name="states")
-        opts = retrieval_options(layout, s, where=where, beta=beta, method="exact")
+        opts = retrieval_options(layout, s, where=where, beta=beta, method="exact", weighting=weighting, alpha=alpha)
         e = S.energy(self._source(opts, where=where), s, opts.beta, cert=opts.certified, count=layout.count,
-                     max_norm=layout.max_norm)
+                     max_norm=layout.max_norm, smap=sparse_map(opts.weighting, opts.alpha), method="auto")
         return float(e[0]) if was_1d else e
 
     # ------------------------------------------------------------- nearest
@@ -283,7 +311,7 @@ def _join(batches: list[dict[str, Any]], count: int) -> dict[str, Any]:
         vals = [b.get(key) for b in batches]
         if key == "steps":
             out[key] = max(vals)
-        elif key == "beta":
+        elif key in ("beta", "weighting", "alpha"):
             out[key] = vals[0]
         elif key == "method":
             out[key] = "certified" if "certified" in vals else vals[0]

@@ -16,6 +16,7 @@ from typing import Any, Literal
 import numpy as np
 
 from .core.candidates import CertifiedOptions
+from .core.sparse import NAMED_ALPHA, WEIGHTINGS
 from ._validation import (
     check_beta,
     check_open_fraction,
@@ -29,10 +30,11 @@ from ._validation import (
 )
 from .errors import InputTypeError, InputValueError
 
-__all__ = ["Layout", "Method", "METHODS", "RetrievalOptions", "retrieval_options", "prepare_queries"]
+__all__ = ["Layout", "Method", "METHODS", "Weighting", "WEIGHTINGS", "check_weighting", "RetrievalOptions", "retrieval_options", "prepare_queries"]
 
 Method = Literal["auto", "exact", "certified", "index"]
 METHODS: tuple[str, ...] = ("auto", "exact", "certified", "index")
+Weighting = Literal["softmax", "sparsemax", "entmax15", "entmax"]
 MEASURE_SAMPLE = 256  # measure=True: candidate recall on up to this many queries
 
 
@@ -74,6 +76,10 @@ class RetrievalOptions:
         Also compute the energy of the returned states (one more pass).
     batch_size : int or None
         Queries per batch (None: all at once).
+    weighting : {"softmax", "sparsemax", "entmax15", "entmax"}
+        The normalising map of the update.
+    alpha : float or None
+        Its alpha in (1, 2] (2 for sparsemax, 1.5 for entmax15; None for softmax).
     """
 
     beta: float
@@ -86,6 +92,8 @@ class RetrievalOptions:
     measure: int
     return_energy: bool
     batch_size: int | None
+    weighting: str = "softmax"
+    alpha: float | None = None
 
 
 def prepare_queries(queries: Any, layout: Layout, *, where: str, name: str = "queries") -> tuple[np.ndarray, bool]:
@@ -110,6 +118,30 @@ def _check_measure(measure: Any, method: str, where: str) -> int:
     return check_positive_int(int(measure), name="measure", where=where)
 
 
+def check_weighting(weighting: Any, alpha: Any, *, where: str) -> tuple[str, float | None]:
+    """``(weighting, alpha)`` checked: a known map name, and alpha in (1, 2] for "entmax" only."""
+    if not isinstance(weighting, str):
+        raise InputTypeError(f"{where}: `weighting` must be one of {', '.join(map(repr, WEIGHTINGS))}; "
+                             f"got {type(weighting).__name__}.")
+    if weighting not in WEIGHTINGS:
+        raise InputValueError(f"{where}: unknown `weighting` {weighting!r}; use one of {', '.join(map(repr, WEIGHTINGS))}.")
+    if weighting != "entmax":
+        if alpha is not None:
+            raise InputValueError(f"{where}: `alpha` applies to weighting='entmax' only; got alpha={alpha!r} "
+                                  f"with weighting={weighting!r}.")
+        return weighting, NAMED_ALPHA.get(weighting)
+    if alpha is None:
+        raise InputValueError(f"{where}: weighting='entmax' needs `alpha`, a number in (1, 2]; got None.")
+    if isinstance(alpha, np.generic):
+        alpha = alpha.item()
+    if isinstance(alpha, bool) or not isinstance(alpha, (int, float)):
+        raise InputTypeError(f"{where}: `alpha` must be a number in (1, 2]; got {type(alpha).__name__}.")
+    a = float(alpha)
+    if not (np.isfinite(a) and 1.0 < a <= 2.0):
+        raise InputValueError(f"{where}: `alpha` must be a number in (1, 2]; got {alpha!r}.")
+    return weighting, a
+
+
 def retrieval_options(
     layout: Layout,
     q: np.ndarray,
@@ -127,6 +159,8 @@ def retrieval_options(
     n_candidates: Any = None,
     measure: Any = False,
     batch_size: Any = None,
+    weighting: Any = "softmax",
+    alpha: Any = None,
 ) -> RetrievalOptions:
     """Check every retrieval keyword once; ``q`` (already prepared) is checked against beta's score range."""
     if method not in methods:
@@ -138,6 +172,10 @@ def retrieval_options(
     b = layout.beta if beta is None else check_beta(beta, where=where)
     check_score_range(b, max_row_norm(q), layout.max_norm, where=where)
     kk = min(10, layout.count) if k is None else check_k(k, n=layout.count, where=where)
+    wname, a = check_weighting(weighting, alpha, where=where)
+    if wname != "softmax" and method == "index":
+        raise InputValueError(f"{where}: weighting={wname!r} needs an exact candidate search; method='index' "
+                              "gives approximate candidates. Use method='auto', 'certified' or 'exact'.")
     return RetrievalOptions(
         beta=b,
         steps=check_positive_int(steps, name="steps", where=where),
@@ -155,4 +193,6 @@ def retrieval_options(
         measure=_check_measure(measure, method, where),
         return_energy=bool(return_energy),
         batch_size=None if batch_size is None else check_positive_int(batch_size, name="batch_size", where=where),
+        weighting=wname,
+        alpha=a,
     )

@@ -70,7 +70,8 @@ class RetrievalResult(_ResultMixin):
         With ``method="index"`` an index may return fewer than k candidates:
         the missing entries have weight 0 and id -1 (int ids) or "" (str ids).
     top_weights : ndarray of shape (n_queries, k), float64
-        Their softmax weights.
+        Their weights under the normalising map (softmax, or a sparse map:
+        exactly 0 outside the support, where the id is -1 or "").
     energy : ndarray of shape (n_queries,) or None
         Log-sum-exp energy of ``states`` (None with ``return_energy=False``).
     steps : int
@@ -82,7 +83,8 @@ class RetrievalResult(_ResultMixin):
         The retrieval path used: "exact", "certified" or "index".
     mass_bound : ndarray of shape (n_queries,) or None
         Certified path: upper bound on the softmax mass outside the candidates
-        in the last update (0 where the query fell back to exact).
+        in the last update (0 where the query fell back to exact). Sparse
+        maps: 0 everywhere (the candidates provably hold the whole support).
     state_bound : ndarray of shape (n_queries,) or None
         Certified path: upper bound on the distance to the exact state,
         ``2 * M * mass_bound``.
@@ -96,6 +98,13 @@ class RetrievalResult(_ResultMixin):
         found, averaged over a sample of queries.
     beta : float or None
         The inverse temperature used (the memory's own when the call gave none).
+    support_size : ndarray of shape (n_queries,), int64, or None
+        Sparse maps: stored items with nonzero weight in the last update (1:
+        a stored pattern returned exactly). None for softmax.
+    weighting : str
+        The normalising map: "softmax", "sparsemax", "entmax15" or "entmax".
+    alpha : float or None
+        The map's alpha (None for softmax).
     """
 
     states: np.ndarray
@@ -111,6 +120,9 @@ class RetrievalResult(_ResultMixin):
     fell_back: np.ndarray | None = None
     candidate_recall: float | None = None
     beta: float | None = None
+    support_size: np.ndarray | None = None
+    weighting: str = "softmax"
+    alpha: float | None = None
 
     def __reduce__(self) -> Any:  # pickles with its energy computed (a Deferred holds the rows)
         values = [self.energy if f.name == "_energy" else getattr(self, f.name) for f in fields(self)]

@@ -125,6 +125,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--method", choices=["auto", "exact", "certified", "index"], default="auto",
                    help="retrieval path (default auto)")
     p.add_argument("--states-out", help="write the retrieved states to this new .npy file")
+    p.add_argument("--weighting", default="softmax",
+                   help="normalising map: softmax (default), sparsemax, entmax15, or a number alpha in (1, 2] "
+                        "for alpha-entmax; the sparse maps give exact zero weight outside a short support")
     p.set_defaults(run=_run_retrieve)
 
     p = _sub(subs, "nearest", "exact nearest stored patterns (faiss brute force, or the stored index)",
@@ -263,7 +266,8 @@ def _run_retrieve(a: argparse.Namespace) -> Result:
     if s.states_out is not None and (s.states_out.exists() or s.states_out.suffix != ".npy"):
         raise SpecError(f"--states-out must name a new .npy file; got {str(s.states_out)!r}.")
     with _opened(s) as (mem, q, names):
-        r = mem.retrieve(q, s.beta, steps=s.steps, tol=s.tol, k=s.k, method=s.method, batch_size=s.chunk)
+        r = mem.retrieve(q, s.beta, steps=s.steps, tol=s.tol, k=s.k, method=s.method, batch_size=s.chunk,
+                         **_weighting(s.weighting))
     if s.states_out is not None:
         np.save(s.states_out, r.states, allow_pickle=False)
     rows, recs = [], []
@@ -271,12 +275,22 @@ def _run_retrieve(a: argparse.Namespace) -> Result:
         energy = None if r.energy is None else float(r.energy[j])
         recs.append({"query": name, "top_ids": r.top_ids[j], "top_weights": r.top_weights[j],
                      "energy": energy, "converged": bool(r.converged[j]), "steps": r.steps})
+        if r.support_size is not None:
+            recs[-1]["support_size"] = int(r.support_size[j])
         rows.append([name, _tops(r.top_ids[j], r.top_weights[j]), energy, bool(r.converged[j])])
     data = {"store": str(s.store), "beta": r.beta, "method": r.method, "queries": recs,
             "states_out": None if s.states_out is None else str(s.states_out)}
     text = out.table(["query", "top ids (weight)", "energy", "converged"], rows,
                      title=f"retrieve: beta={r.beta:g}, steps<={s.steps}, method={r.method}")
     return data, text
+
+
+def _weighting(value: str) -> dict[str, object]:
+    """--weighting: a map name, or a number (alpha of alpha-entmax); the library checks both."""
+    try:
+        return {"weighting": "entmax", "alpha": float(value)}
+    except ValueError:
+        return {"weighting": value}
 
 
 def _tops(ids: np.ndarray, weights: np.ndarray, show: int = 3) -> str:

@@ -91,6 +91,7 @@ class RetrieveSpec(_QuerySpec):
     tol: float = Field(1e-6, ge=0, allow_inf_nan=False)
     method: Literal["auto", "exact", "certified", "index"] = "auto"
     states_out: Path | None = None
+    weighting: str = "softmax"  # softmax, sparsemax, entmax15, or alpha-entmax given by its alpha in (1, 2]
 
     @field_validator("states_out")
     @classmethod

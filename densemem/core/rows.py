@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import dataclasses
 from dataclasses import dataclass
-from typing import Any, Callable, Iterator, Protocol, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Iterator, Protocol, Sequence
 
 import faiss
 import numpy as np
@@ -30,6 +30,9 @@ from . import partial as P
 from .candidates import CertifiedOptions, _put, bound_can_hold, certified_reduce, index_reduce
 from .exact import exact_reduce
 from .tiles import knn_tiles
+
+if TYPE_CHECKING:  # core/sparse.py builds on the id helpers below, so it is imported where used
+    from . import sparse as SP
 
 __all__ = ["IdPartial", "RowSource", "TableRows", "merge", "tree_merge", "finish", "id_fill", "ids_of"]
 
@@ -143,6 +146,24 @@ class TableRows:
                 return self._labelled(part, info)
         part, info = certified_reduce(self.x, states, beta, k=k, need_acc=need_acc, opts=cert, exact=exact)
         return self._labelled(part, info)
+
+    # ------------------------------------------------- sparse maps (core/sparse.py)
+    def sparse_support(self, states: np.ndarray, beta: float, smap: SP.SparseMap, *, k_start: int, cap: int,
+                       need_rows: bool) -> SP.Support:
+        """The certified support of ``states`` over this table (faiss candidates, grown)."""
+        from . import sparse as SP
+
+        return SP.table_support(self.x, self.ids, states, beta, smap, k_start=k_start, cap=cap, need_rows=need_rows)
+
+    def sparse_sums(self, states: np.ndarray, beta: float, alpha: float, tau: np.ndarray, *, k: int, final: bool,
+                    need_acc: bool) -> SP.Sums:
+        """One tiled pass over this table at the given tau (the sparse maps' exact fallback)."""
+        from . import sparse as SP
+
+        if self.x.shape[0] == 0:
+            return SP.empty_sums(states.shape[0], self.x.shape[1], k, self.ids.dtype, final=final, need_acc=need_acc)
+        return SP.table_sums(self.x, self.ids, states, beta, alpha, tau, k=k, final=final, need_acc=need_acc,
+                             tile_mib=self.tile_mib, n_threads=self.n_threads)
 
     def _labelled(self, part: P.Partial, info: dict[str, Any] | None) -> IdPartial:
         ids = ids_of(self.ids, part.top_i)

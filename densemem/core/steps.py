@@ -14,6 +14,7 @@ from typing import Any, Callable
 
 import numpy as np
 
+from . import sparse as SP
 from .candidates import CertifiedOptions
 from .._validation import check_finite_result
 from .lse import lse_energy
@@ -90,8 +91,17 @@ def iterate(
     count: int,
     max_norm: float,
     lazy_energy: bool = False,
+    smap: SP.SparseMap | None = None,
 ) -> dict[str, Any]:
-    """The fields of a :class:`RetrievalResult` for 2-D queries ``q`` (see :func:`shape_result`)."""
+    """The fields of a :class:`RetrievalResult` for 2-D queries ``q`` (see :func:`shape_result`).
+
+    ``smap``: a sparse map (sparsemax, alpha-entmax) instead of softmax; see
+    :func:`sparse_iterate`.
+    """
+    if smap is not None:
+        return sparse_iterate(source, q, beta=beta, steps=steps, tol=tol, k=k, method=method, cert=cert,
+                              return_energy=return_energy, count=count, max_norm=max_norm,
+                              lazy_energy=lazy_energy, smap=smap)
     certified = False
 
     def one_pass(states: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, dict[str, Any]]:
@@ -122,15 +132,57 @@ def iterate(
     )
 
 
+def _sparse_args(method: str, k: int, cert: CertifiedOptions, count: int) -> dict[str, Any]:
+    return dict(exact=method == "exact", k_start=min(count, max(k, SP.K_START)), cap=max(cert.k_max, k))
+
+
+def sparse_iterate(source: Any, q: np.ndarray, *, beta: float, steps: int, tol: float, k: int, method: str,
+                   cert: CertifiedOptions, return_energy: bool, count: int, max_norm: float, lazy_energy: bool,
+                   smap: SP.SparseMap) -> dict[str, Any]:
+    """The step loop with a sparse map: every pass exact (certified supports, tiled where they exceed the cap)."""
+    args = _sparse_args(method, k, cert, count)
+    answered_by_candidates = False
+
+    def one_pass(states: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, dict[str, Any]]:
+        nonlocal answered_by_candidates
+        ans = SP.sparse_pass(source, states, beta, smap, k=k, need_acc=True, n_rows=count, **args)
+        answered_by_candidates = answered_by_candidates or bool((~ans.fell_back).any())
+        assert ans.states is not None
+        info = {"support_size": ans.support, "k_used": ans.k_used, "fell_back": ans.fell_back,
+                "mass_bound": np.zeros(states.shape[0])}
+        return ans.states, ans.top_ids, ans.top_w, info
+
+    run = run_steps(one_pass, q, steps=steps, tol=tol, max_norm=max_norm, k=k)
+    info = run.info
+    info["state_bound"] = np.zeros(q.shape[0])
+    used = method if method != "auto" else ("certified" if answered_by_candidates else "exact")
+    e: Any = None
+    if return_energy:
+        states = run.states
+        e = Deferred(lambda: SP.sparse_energy(source, states, beta, smap, count=count, max_norm=max_norm, **args))
+        if not lazy_energy:
+            e = e()
+    return dict(
+        states=run.states, top_ids=run.ids, top_weights=run.weights, _energy=e, steps=run.done,
+        converged=run.converged, method=used, beta=beta, weighting=smap.name, alpha=smap.alpha, **info,
+    )
+
+
 def energy(
-    source: RowSource, states: np.ndarray, beta: float, *, cert: CertifiedOptions, count: int, max_norm: float
+    source: RowSource, states: np.ndarray, beta: float, *, cert: CertifiedOptions, count: int, max_norm: float,
+    smap: SP.SparseMap | None = None, method: str = "exact",
 ) -> np.ndarray:
     """``-(lse - log N)/beta + |xi|^2/2 + M^2/2`` from one pass without weighted sums.
 
     Certified searches of this pass start at >= 16 candidates. Where ``beta``
     times the score spread is small, :func:`densemem.core.lse.lse_energy`
-    recomputes the difference from the source's rows in float64.
+    recomputes the difference from the source's rows in float64. With a sparse
+    map ``smap``: ``-Omega*/beta + |xi|^2/2 + H_max/beta + M^2/2``
+    (:func:`densemem.core.sparse.sparse_energy`).
     """
+    if smap is not None:
+        return SP.sparse_energy(source, states, beta, smap, count=count, max_norm=max_norm,
+                                **_sparse_args(method, 0, cert, count))
     sp = source.reduce(states, beta, k=0, need_acc=False, cert=dataclasses.replace(
         cert, k_start=max(cert.k_start, AUTO_K_START)))
     with np.errstate(divide="ignore"):

@@ -81,6 +81,7 @@ Examples
 
 from __future__ import annotations
 
+import functools
 import threading
 import time
 import uuid
@@ -91,6 +92,7 @@ import numpy as np
 
 from . import _ops as S
 from .._front import Retriever
+from ..core import sparse as SP
 from ..core.candidates import CertifiedOptions
 from ..core.rows import IdPartial
 from ..core.rows import merge as merge_partials
@@ -155,6 +157,18 @@ def _partial_task(
     n_candidates: int = 32,
 ) -> IdPartial:
     return S.shard_rows(_shard(*shard), method, n_candidates).reduce(states, beta, k=k, need_acc=need_acc, cert=cert)
+
+
+def _support_task(shard: tuple[str, str, int, bool, str], states: np.ndarray, beta: float, smap: Any,
+                  k_start: int, cap: int, need_rows: bool) -> Any:
+    return S.shard_rows(_shard(*shard), "auto").sparse_support(states, beta, smap, k_start=k_start, cap=cap,
+                                                             need_rows=need_rows)
+
+
+def _sums_task(shard: tuple[str, str, int, bool, str], states: np.ndarray, beta: float, alpha: float,
+               tau: np.ndarray, k: int, final: bool, need_acc: bool) -> Any:
+    return S.shard_rows(_shard(*shard), "auto").sparse_sums(states, beta, alpha, tau, k=k, final=final,
+                                                          need_acc=need_acc)
 
 
 def _index_task(shard: tuple[str, str, int, bool, str], settings: dict[str, Any]) -> dict[str, Any]:
@@ -289,6 +303,18 @@ class _DaskShards:
     def reduce(self, states: np.ndarray, beta: float, *, k: int, need_acc: bool, cert: CertifiedOptions) -> IdPartial:
         return self.session.run(_partial_task, self.shards, states,
                                 (beta, k, self.method, need_acc, cert, self.n_candidates), merge_partials)
+
+    def sparse_support(self, states: np.ndarray, beta: float, smap: Any, *, k_start: int, cap: int,
+                       need_rows: bool) -> Any:
+        """Every shard's certified support on its worker, merged by union on the workers."""
+        return self.session.run(_support_task, self.shards, states, (beta, smap, k_start, cap, need_rows),
+                                functools.partial(SP.merge_support, alpha=smap.alpha))
+
+    def sparse_sums(self, states: np.ndarray, beta: float, alpha: float, tau: np.ndarray, *, k: int, final: bool,
+                    need_acc: bool) -> Any:
+        """Every shard's tiled sums at tau on its worker, added up on the workers."""
+        return self.session.run(_sums_task, self.shards, states, (beta, alpha, tau, k, final, need_acc),
+                                SP.merge_sums)
 
 
 class ClusterShards(Retriever):

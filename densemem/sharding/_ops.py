@@ -40,11 +40,13 @@ mean ``t``, both of norm <= M, so it is within ``O / (L + O) * 2M <= 2M eps``.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 from typing import Any, Iterator
 
 import numpy as np
 
+from ..core import sparse as SP
 from ..core.candidates import CertifiedOptions
 from ..core.rows import IdPartial, TableRows, exact_knn, id_fill, ids_of, tree_merge
 from ..core.rows import merge as merge_partials
@@ -73,6 +75,20 @@ class LocalShards:
         parts = [shard_rows(m, self.method, self.n_candidates).reduce(states, beta, k=k, need_acc=need_acc, cert=cert)
                  for m in self.memories]
         return tree_merge(parts, merge_partials)
+
+    def sparse_support(self, states: np.ndarray, beta: float, smap: SP.SparseMap, *, k_start: int, cap: int,
+                       need_rows: bool) -> SP.Support:
+        """Every shard's certified support, merged by union (one tau, zeros dropped)."""
+        parts = [shard_rows(m, self.method).sparse_support(states, beta, smap, k_start=k_start, cap=cap,
+                                                           need_rows=need_rows) for m in self.memories]
+        return tree_merge(parts, functools.partial(SP.merge_support, alpha=smap.alpha))
+
+    def sparse_sums(self, states: np.ndarray, beta: float, alpha: float, tau: np.ndarray, *, k: int, final: bool,
+                    need_acc: bool) -> SP.Sums:
+        """Every shard's tiled sums at tau, added up."""
+        parts = [shard_rows(m, self.method).sparse_sums(states, beta, alpha, tau, k=k, final=final, need_acc=need_acc)
+                 for m in self.memories]
+        return tree_merge(parts, SP.merge_sums)
 
     def row_blocks(self) -> Iterator[np.ndarray]:
         """Every shard's rows in blocks, shard after shard."""

@@ -193,6 +193,7 @@ class TuneReport(_Report):
     prediction: BetaPrediction
     sweep: SweepReport | None
     choice: BetaChoice | None
+    exact_recall: Any = None  # ExactRecallReport (densemem.tuning._sparse) when a sparse map was asked for
 
 
 # ------------------------------------------------------------------ tables
@@ -340,8 +341,13 @@ def format_report(report: Any) -> str:
         return _kv(f"chosen beta ({report.target})", {"beta": report.beta, "reached": str(report.reached),
                    "value": report.value, "goal": report.goal, "lo": report.bracket[0], "hi": report.bracket[1],
                    "evaluations": len(report.evaluations), "note": report.note})
+    if type(report).__name__ == "ExactRecallReport":
+        rows = {"weighting": report.weighting, "alpha": report.alpha, "fraction": report.fraction,
+                "beta": report.beta, "fraction_exact": report.fraction_exact, "checked": report.n_checked}
+        rows.update({f"support at beta={_g(b)}": s for b, s in zip(report.dial_betas, report.dial_support)})
+        return _kv("exact single-item recall (Fenchel-Young margin)", rows)
     if isinstance(report, TuneReport):
-        parts = [report.separation, report.prediction, report.choice]
+        parts = [report.separation, report.prediction, report.choice, report.exact_recall]
         return tune_text(report) + "\n\ndetails\n\n" + "\n\n".join(format_report(p) for p in parts if p is not None)
     raise InputTypeError(
         f"format_report: `report` must be a densemem.tuning report; got {type(report).__name__}."

@@ -26,6 +26,7 @@ from pydantic import BaseModel, ConfigDict, Field, PositiveFloat
 from ._reports import (
     TuneReport,
 )
+from ._sparse import exact_recall_beta
 from ._sweep import TICK, choose_beta, sweep_beta
 from ._theory import _check_memory, predict_beta, separation
 from ..dense import DenseMemory
@@ -70,6 +71,9 @@ class TuneSpec(BaseModel):
     beta_min: PositiveFloat | None = None
     beta_max: PositiveFloat | None = None
     rtol: PositiveFloat = 0.01
+    # sparse map: the beta of exact single-item recall (the Fenchel-Young margin)
+    weighting: Literal["sparsemax", "entmax15", "entmax"] | None = None
+    alpha: float | None = Field(None, gt=1, le=2, description="alpha of weighting='entmax'")
 
 
 def _bar(total: int, progress: bool | None) -> Any:
@@ -115,6 +119,8 @@ def tune_beta(
     -------
     TuneReport
         The sweep marks ``prediction.beta_target_separated`` as its predicted beta.
+        With ``spec.weighting`` set, ``exact_recall`` holds
+        :func:`densemem.tuning.exact_recall_beta` for ``spec.target_fraction``.
 
     Examples
     --------
@@ -158,4 +164,8 @@ def _tune(memory: DenseMemory, spec: TuneSpec, queries: Any, sources: Any, bar: 
         choice = choose_beta(memory, queries, target=spec.target, fraction=spec.fraction,
                              blend_size=spec.blend_size, beta_min=spec.beta_min, beta_max=spec.beta_max,
                              rtol=spec.rtol, **common)
-    return TuneReport(separation=sep, prediction=pred, sweep=sweep, choice=choice)
+    exact = None
+    if spec.weighting is not None:
+        exact = exact_recall_beta(memory, weighting=spec.weighting, alpha=spec.alpha,
+                                  fraction=spec.target_fraction, queries=queries, separation_report=sep)
+    return TuneReport(separation=sep, prediction=pred, sweep=sweep, choice=choice, exact_recall=exact)
