@@ -29,6 +29,8 @@ import numpy as np
 from . import partial as P
 from .candidates import CertifiedOptions, _put, bound_can_hold, certified_reduce, index_reduce
 from .exact import exact_reduce
+from .ids import common_ids as _common_ids
+from .ids import id_fill, ids_of
 from .tiles import knn_tiles
 
 if TYPE_CHECKING:  # core/sparse.py builds on the id helpers below, so it is imported where used
@@ -77,19 +79,6 @@ def exact_knn(q: np.ndarray, x: np.ndarray, k: int, metric: str, *, tile_mib: fl
     if x.dtype == np.float32:
         return faiss.knn(q, x, k, metric=fm)
     return knn_tiles(q, x, k, metric=fm, tile_mib=tile_mib)
-
-
-def id_fill(dtype: np.dtype) -> Any:
-    """Padding id of an id dtype (-1 for integers, '' for strings)."""
-    return -1 if dtype.kind in "iu" else ""
-
-
-def ids_of(table_ids: np.ndarray, top_i: np.ndarray) -> np.ndarray:
-    """Ids of row numbers (padding -1 -> the id dtype's fill)."""
-    if table_ids.size == 0:
-        return np.full(top_i.shape, id_fill(table_ids.dtype), dtype=table_ids.dtype)
-    out = table_ids[np.maximum(top_i, 0)]
-    return np.where(top_i >= 0, out, np.asarray(id_fill(table_ids.dtype), dtype=table_ids.dtype))
 
 
 # ------------------------------------------------------------------ one table
@@ -216,16 +205,6 @@ def auto_split(rows: TableRows, states, beta, k, need_acc, cert, can, exact):  #
 
 
 # ----------------------------------------------------------------------- merge
-def _common_ids(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Two id tables in one dtype (str widths may differ between shards)."""
-    if a.dtype == b.dtype:
-        return a, b
-    if a.dtype.kind == "U" and b.dtype.kind == "U":
-        width = max(a.dtype.itemsize, b.dtype.itemsize) // 4
-        return a.astype(f"<U{width}"), b.astype(f"<U{width}")
-    return a.astype(np.result_type(a.dtype, b.dtype)), b.astype(np.result_type(a.dtype, b.dtype))
-
-
 def _as_columns(p: P.Partial, start: int) -> P.Partial:
     """``p`` with top_i replaced by column numbers start.. (-1 kept for padding)."""
     cols = np.arange(start, start + p.top_i.shape[1], dtype=np.int64)[None, :]

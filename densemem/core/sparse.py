@@ -48,9 +48,9 @@ from typing import Any, Protocol
 import faiss
 import numpy as np
 
-from .rows import _common_ids as _common
-from .rows import id_fill as _id_fill
-from .rows import ids_of as _ids_of
+from .ids import common_ids as _common
+from .ids import id_fill as _id_fill
+from .ids import ids_of as _ids_of
 from .tiles import map_query_chunks, tile_rows_for
 
 __all__ = [
