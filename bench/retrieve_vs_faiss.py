@@ -53,7 +53,7 @@ def main(argv: list[str] | None = None) -> dict:
     def row(name: str, beta: float, base_fn, base_name: str, **kw) -> None:
         call = lambda e: mem.retrieve(q, beta, k=k, return_energy=e, **kw)  # noqa: E731
         t, base = C.paired_times(lambda: call(False), base_fn, args.repeats)
-        t_e = C.median_time(lambda: call(True), max(1, args.repeats // 2))
+        t_e = C.median_time(lambda: call(True).energy, max(1, args.repeats // 2))  # read: the energy is lazy
         peak = C.peak_python_mib(lambda: call(False))
         res = call(False)
         ref = mem.retrieve(q, beta, k=k, method="exact", return_energy=False)
