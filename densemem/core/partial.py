@@ -187,7 +187,7 @@ def block(
         l = z.sum(axis=1).astype(np.float64)  # float32 pairwise sum: ~1e-7 relative
         acc = z @ rows
     else:
-        l = _energy_sum(z)
+        l = l64 if l64 is not None else _energy_sum(z)  # with moments the float64 sum is already there
         acc = None
     if l64 is not None:
         l = l64  # the normaliser the moments were summed with, so H = ln l - s / l is float64-exact
