@@ -125,6 +125,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--method", choices=["auto", "exact", "certified", "index"], default="auto",
                    help="retrieval path (default auto)")
     p.add_argument("--states-out", help="write the retrieved states to this new .npy file")
+    p.add_argument("--measure", action="store_true",
+                   help="with --method index: also report the candidate recall against exact search")
     p.add_argument("--weighting", default="softmax",
                    help="normalising map: softmax (default), sparsemax, entmax15, or a number alpha in (1, 2] "
                         "for alpha-entmax; the sparse maps give exact zero weight outside a short support")
@@ -267,7 +269,7 @@ def _run_retrieve(a: argparse.Namespace) -> Result:
         raise SpecError(f"--states-out must name a new .npy file; got {str(s.states_out)!r}.")
     with _opened(s) as (mem, q, names):
         r = mem.retrieve(q, s.beta, steps=s.steps, tol=s.tol, k=s.k, method=s.method, batch_size=s.chunk,
-                         **_weighting(s.weighting))
+                         measure=bool(s.measure), **_weighting(s.weighting))
     if s.states_out is not None:
         np.save(s.states_out, r.states, allow_pickle=False)
     rows, recs = [], []
@@ -277,9 +279,16 @@ def _run_retrieve(a: argparse.Namespace) -> Result:
                      "energy": energy, "converged": bool(r.converged[j]), "steps": r.steps})
         if r.support_size is not None:
             recs[-1]["support_size"] = int(r.support_size[j])
+        for key in ("mass_bound", "state_bound", "fell_back", "k_used"):  # certified / auto / index facts
+            val = getattr(r, key)
+            if val is not None:
+                recs[-1][key] = val[j].item()
         rows.append([name, _tops(r.top_ids[j], r.top_weights[j]), energy, bool(r.converged[j])])
     data = {"store": str(s.store), "beta": r.beta, "method": r.method, "queries": recs,
             "states_out": None if s.states_out is None else str(s.states_out)}
+    if r.method == "index":
+        data["weights_over"] = "the index's candidates (renormalized over them; rows it missed carry no weight)"
+        data["candidate_recall"] = r.candidate_recall
     text = out.table(["query", "top ids (weight)", "energy", "converged"], rows,
                      title=f"retrieve: beta={r.beta:g}, steps<={s.steps}, method={r.method}")
     return data, text

@@ -92,6 +92,7 @@ class RetrieveSpec(_QuerySpec):
     method: Literal["auto", "exact", "certified", "index"] = "auto"
     states_out: Path | None = None
     weighting: str = "softmax"  # softmax, sparsemax, entmax15, or alpha-entmax given by its alpha in (1, 2]
+    measure: bool = False
 
     @field_validator("states_out")
     @classmethod

@@ -116,3 +116,22 @@ def test_sharded_build_with_an_index_per_shard(data: Path, tmp_path: Path) -> No
     qn = q / np.linalg.norm(q, axis=1, keepdims=True)
     _, top = faiss.knn(qn, xn, 1, metric=faiss.METRIC_INNER_PRODUCT)
     assert [rec["top_ids"][0] for rec in got["queries"]] == top[:, 0].tolist()
+
+
+def test_retrieve_json_reports_bounds_and_candidate_recall(data: Path, tmp_path: Path) -> None:
+    # The certified bound (mass_bound, state_bound = 2 M mass_bound, fell_back, k_used) and the
+    # index's candidate recall reach --json, as the library reports them (faiss exact search is the
+    # recall's reference inside the library).
+    cert = json.loads(_cli("retrieve", "one", "q.npy", "-k", "3", "--method", "certified", "--json", cwd=data).stdout)
+    rec = cert["queries"][0]
+    assert {"mass_bound", "state_bound", "fell_back", "k_used"} <= rec.keys()
+    assert rec["state_bound"] == pytest.approx(2.0 * rec["mass_bound"], abs=1e-12)  # normalized rows: M = 1
+    import shutil
+
+    shutil.copy(data / "x.npy", tmp_path / "x.npy")
+    shutil.copy(data / "q.npy", tmp_path / "q.npy")
+    assert _cli("build", "x.npy", "ix", "--normalize", "--beta", "25", "--index", "hnsw", cwd=tmp_path).returncode == 0
+    idx = json.loads(_cli("retrieve", "ix", "q.npy", "-k", "3", "--method", "index", "--measure", "--json",
+                          cwd=tmp_path).stdout)
+    assert 0.9 <= idx["candidate_recall"] <= 1.0 and "renormalized" in idx["weights_over"]
+    assert all("k_used" in r for r in idx["queries"])
