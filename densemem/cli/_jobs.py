@@ -56,6 +56,9 @@ def add_tune(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
     p.add_argument("--plot", help="write the sweep as a new .png file here (needs matplotlib)")
     p.add_argument("--write-beta", action="store_true",
                    help="store the chosen beta as the store's default (retrieve then uses it)")
+    p.add_argument("--weighting", choices=["sparsemax", "entmax15", "entmax"],
+                   help="also report the beta from which a sparse map returns each stored item exactly")
+    p.add_argument("--alpha", type=float, help="alpha of --weighting entmax, in (1, 2]")
     _html_option(p)
     p.set_defaults(run=_run_tune)
 

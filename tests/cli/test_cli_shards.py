@@ -135,3 +135,14 @@ def test_retrieve_json_reports_bounds_and_candidate_recall(data: Path, tmp_path:
                           cwd=tmp_path).stdout)
     assert 0.9 <= idx["candidate_recall"] <= 1.0 and "renormalized" in idx["weights_over"]
     assert all("k_used" in r for r in idx["queries"])
+
+
+def test_tune_reports_the_sparse_exact_recall_beta(data: Path) -> None:
+    # The Fenchel-Young margin (Blondel, Martins & Niculae, JMLR 2020): sparsemax returns a stored
+    # pattern exactly once beta * Delta_i >= 1; the library checks its beta by retrieval.
+    r = _cli("tune", "one", "--weighting", "sparsemax", "--json", "-q", cwd=data)
+    assert r.returncode == 0, r.stderr
+    ex = json.loads(r.stdout)["exact_recall"]
+    assert ex["weighting"] == "sparsemax" and ex["beta"] > 0
+    bad = _cli("tune", "one", "--weighting", "entmax", "--alpha", "3", cwd=data)
+    assert bad.returncode == 2 and "alpha" in bad.stderr
