@@ -79,9 +79,9 @@ from ..core.rows import tree_merge
 from ..core.table import PatternTable
 from ..core.tiles import DEFAULT_TILE_MIB
 from ..options import Layout, RetrievalOptions
-from .._validation import check_ids, check_patterns, check_positive_int, unknown_id_error
+from .._validation import check_ids, check_index_params, check_patterns, check_positive_int, unknown_id_error
 from ..errors import InputTypeError, InputValueError, StoreFormatError
-from ..store._folder import MANIFEST, _as_path, _sha256
+from ..store._folder import MANIFEST, _as_path, _sha256, read_store
 
 __all__ = [
     "SHARDS_FORMAT_NAME",
@@ -353,6 +353,8 @@ class ShardedMemory(Retriever):
         """
         where = "ShardedMemory.remove"
         wanted = _id_list(ids, self._man["id_kind"], where)
+        if not wanted:
+            return 0  # nothing to remove: nothing is written
         mems = self._memories(where)
         holders: dict[Any, int] = {}
         for i, mem in enumerate(mems):
@@ -399,7 +401,7 @@ class ShardedMemory(Retriever):
         'hnsw'
         """
         where = "ShardedMemory.build_index"
-        settings = {"kind": kind, **params}
+        settings = {"kind": kind, **check_index_params(kind, params, where=where)}  # named here, before any shard
         mems = self._memories(where)
         for i, mem in enumerate(mems):
             if len(mem):
@@ -765,4 +767,4 @@ def open_store(path: Any, *, mmap: bool = False, verify: bool = True) -> Any:
     """
     if is_sharded_store(path):
         return open_sharded(path, verify=verify)
-    return DenseMemory.load(path, mmap=mmap, verify=verify)
+    return DenseMemory._from_content(read_store(path, mmap=mmap, verify=verify, where="open_store"), where="open_store")

@@ -215,3 +215,16 @@ def test_kill_9_at_20_random_points_leaves_old_or_new(tmp_path, op):
     assert all(t["state"] in ("old", "new") for t in trials), [t["state"] for t in trials]
     assert all(not t["stray"] for t in trials)
     assert sum(t["killed"] for t in trials) >= 8  # kills land at random times across the measured span
+
+
+def test_bad_input_names_the_sharded_call_and_writes_nothing(tmp_path):
+    from densemem.sharding import open_store
+
+    sm = shard_memory(DenseMemory.from_array(np.eye(4)), tmp_path / "s", 2)
+    listing = _stored(sm.path)
+    assert sm.remove([]) == 0 and _stored(sm.path) == listing  # an empty removal writes nothing
+    with pytest.raises(InputValueError, match=r"ShardedMemory.build_index: `M` must be an integer >= 2"):
+        sm.build_index("hnsw", M=1)
+    assert _stored(sm.path) == listing
+    with pytest.raises(StoreFormatError, match=r"open_store: there is no store folder"):
+        open_store(tmp_path / "nope")
