@@ -32,7 +32,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["fold_tile", "available", "set_enabled"]
+__all__ = ["fold_tile", "widen", "available", "set_enabled"]
 
 _GROUP = 16
 _MAX_K = 4096  # top lists longer than this use the NumPy kernel (the kernel keeps a heap)
@@ -53,8 +53,8 @@ def set_enabled(flag: bool) -> bool:
     For measurements and tests that compare both kernels in one process; the
     environment variable ``DENSEMEM_KERNEL=numpy`` sets the default.
     """
-    global _kernel, _tried
-    _tried, _kernel = False, None
+    global _kernel, _tried, _widen
+    _tried, _kernel, _widen = False, None, None
     if flag:
         _load(force=True)
     else:
@@ -64,6 +64,7 @@ def set_enabled(flag: bool) -> bool:
 
 def _load(force: bool = False) -> Any:
     global _kernel, _tried
+    global _widen
     if _tried:
         return _kernel
     with _lock:
@@ -71,12 +72,31 @@ def _load(force: bool = False) -> Any:
             return _kernel
         if force or os.environ.get("DENSEMEM_KERNEL", "").lower() != "numpy":
             try:
-                from ._fused_numba import kernel
+                from ._fused_numba import kernel, widen
             except ImportError:
-                kernel = None
-            _kernel = kernel
+                kernel = widen = None
+            _kernel, _widen = kernel, widen
         _tried = True
     return _kernel
+
+
+_widen: Any = None
+
+
+def widen(rows: np.ndarray, out: np.ndarray) -> None:
+    """Copy float16 ``rows`` into the float32 array ``out`` of the same shape, exactly.
+
+    The compiled loop moves each half's bits into float32 position and rescales by
+    2^112 (exact for normal and subnormal halves alike; inf and NaN kept), which runs
+    at memory speed; NumPy's own float16 cast is a scalar loop about 8x slower on
+    this kind of machine (``bench/wide_and_half.py`` measures both). Without the
+    compiled kernel, or for a non-contiguous tile, ``np.copyto`` does the copy.
+    """
+    _load()
+    if _widen is None or rows.dtype != np.float16 or not rows.flags.c_contiguous or not out.flags.c_contiguous:
+        np.copyto(out, rows)
+        return
+    _widen(rows.reshape(-1).view(np.uint16), out.reshape(-1))
 
 
 def fold_tile(

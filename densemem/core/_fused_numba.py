@@ -16,6 +16,7 @@ LOG2E = np.float32(1.4426950408889634)
 LN2_HI = np.float32(0.693359375)  # ln 2 split in two for the range reduction (Cephes)
 LN2_LO = np.float32(-2.12194440e-4)
 LOWEST = np.float32(-87.0)  # exp below this is 0 (float32 underflow)
+TWO112 = np.float32(2.0**112)  # 2^(127 - 15): float32 exponent bias over float16's
 
 
 @intrinsic
@@ -42,6 +43,19 @@ def exp32(x: Any) -> Any:
     p = p * r * r + r + np.float32(1.0)
     return p * as_f32(np.int32((n + 127) << 23))
 
+
+
+@njit(nogil=True, boundscheck=False, cache=True)
+def widen(src: Any, dst: Any) -> None:
+    """float16 bits ``src`` (uint16, flat) to float32 ``dst`` (flat), exactly; see :func:`densemem.core._fused.widen`."""
+    for i in range(src.shape[0]):
+        h = np.int32(src[i])
+        a = h & 0x7FFF
+        if a >= 0x7C00:  # inf and NaN keep their class (stores hold neither; arrays passed in may)
+            v = as_f32(np.int32(0x7F800000 | ((a & 0x3FF) << 13)))
+        else:  # normal and subnormal halves alike: the bits moved up, times 2^112
+            v = as_f32(np.int32(a << 13)) * TWO112
+        dst[i] = -v if h & 0x8000 else v
 
 
 @njit(inline="always", boundscheck=False)

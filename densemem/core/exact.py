@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
+
 import numpy as np
 
 from . import partial as P
@@ -31,10 +33,17 @@ def exact_reduce(
     """
     qz = np.ascontiguousarray(queries * np.float32(beta), dtype=np.float32)
     n_q = qz.shape[0]
+    dim = patterns.shape[1]
+    if n_threads > 1 and n_q <= chunk:
+        # One chunk: the products run on BLAS's own threads and the tile's element-wise
+        # work (float16 widening, the compiled kernel) is split over the same cores.
+        with ThreadPoolExecutor(max_workers=n_threads - 1) as helpers:
+            return reduce_rows(qz, patterns, k=k, tile_rows=tile_rows_for(n_q, tile_mib, dim),
+                               need_acc=need_acc, moments=moments, helpers=helpers)
 
     def run(sl: slice) -> P.Partial:
         part = qz[sl]
-        rows = tile_rows_for(part.shape[0], tile_mib)
+        rows = tile_rows_for(part.shape[0], tile_mib, dim)
         return reduce_rows(part, patterns, k=k, tile_rows=rows, need_acc=need_acc, moments=moments)
 
     parts = map_query_chunks(run, n_q, n_threads=n_threads, chunk=chunk)

@@ -39,9 +39,9 @@ def as_f32(rows: np.ndarray, buf: np.ndarray | None = None) -> np.ndarray:
     if rows.dtype == np.float32:
         return rows
     if buf is None or buf.size < rows.size:
-        return np.ascontiguousarray(rows, dtype=np.float32)
+        buf = np.empty(rows.size, dtype=np.float32)
     out = buf[: rows.size].reshape(rows.shape)
-    np.copyto(out, rows)
+    _fused.widen(rows, out)
     return out
 
 
@@ -82,9 +82,17 @@ def n_threads_default() -> int:
         return max(1, os.cpu_count() or 1)
 
 
-def tile_rows_for(n_queries: int, tile_mib: float) -> int:
-    """Rows per tile so that an (n_queries x rows) float32 block fits ``tile_mib``."""
+def tile_rows_for(n_queries: int, tile_mib: float, dim: int | None = None) -> int:
+    """Rows per tile so that an (n_queries x rows) float32 block fits ``tile_mib``.
+
+    With ``dim``, also so that the tile's rows in float32 (``rows x dim``) fit the same
+    budget: both products read the tile, and a few queries over wide rows would
+    otherwise make it too large to stay in cache between them (at 100 queries and
+    d = 768 the score budget alone gives 42k rows, 129 MB).
+    """
     rows = int(tile_mib * 2**20 / (4 * max(n_queries, 1)))
+    if dim:
+        rows = min(rows, int(tile_mib * 2**20 / (4 * dim)))
     return max(rows, 1)
 
 
@@ -96,6 +104,7 @@ def reduce_rows(
     tile_rows: int,
     need_acc: bool = True,
     moments: bool = False,
+    helpers: ThreadPoolExecutor | None = None,
 ) -> P.Partial:
     """Fold all stored rows, tile by tile, into one partial.
 
@@ -112,6 +121,10 @@ def reduce_rows(
         Whether the weighted sum (second GEMM) is needed.
     moments : bool
         Whether to carry the entropy / participation sums (see :mod:`.partial`).
+    helpers : ThreadPoolExecutor, optional
+        Threads that share each tile's element-wise work (the float16 widening and the
+        compiled kernel) while the products use BLAS's own threads: for a batch too
+        small to split by queries (see :func:`densemem.core.exact.exact_reduce`).
     """
     n, dim = patterns.shape
     b = qz.shape[0]
@@ -120,7 +133,7 @@ def reduce_rows(
         return run
     t = min(tile_rows, n)
     if need_acc and not moments and _fused.available(k):
-        return _reduce_fused(qz, patterns, run, t)
+        return _reduce_fused(qz, patterns, run, t, helpers=helpers)
     buf = np.empty(b * t, dtype=np.float32)
     wide = _tile_buffer(patterns, t)
     first = True
@@ -135,20 +148,51 @@ def reduce_rows(
     return run
 
 
-def _reduce_fused(qz: np.ndarray, patterns: np.ndarray, run: P.Partial, t: int) -> P.Partial:
-    """:func:`reduce_rows` with the compiled tile kernel (:mod:`._fused`): one visit per tile row."""
+def _reduce_fused(
+    qz: np.ndarray, patterns: np.ndarray, run: P.Partial, t: int, *, helpers: ThreadPoolExecutor | None = None
+) -> P.Partial:
+    """:func:`reduce_rows` with the compiled tile kernel (:mod:`._fused`): one visit per tile row.
+
+    With ``helpers`` the widening of a float16 tile is split by stored rows and the
+    kernel by queries (both release the GIL), the calling thread taking one part.
+    """
     assert run.acc is not None
     b, n = qz.shape[0], patterns.shape[0]
     buf = np.empty(b * t, dtype=np.float32)
     wide = _tile_buffer(patterns, t)
+    parts = 1 if helpers is None else helpers._max_workers + 1  # noqa: SLF001 - our own pool
+    scale = np.empty(b, dtype=np.float64)
     for start in range(0, n, t):
-        rows = as_f32(patterns[start : start + t], wide)
-        z = buf[: b * rows.shape[0]].reshape(b, rows.shape[0])
+        tile = patterns[start : start + t]
+        width = tile.shape[0]
+        if wide is not None and parts > 1:
+            rows = wide[: tile.size].reshape(tile.shape)
+            _split(helpers, parts, width, lambda sl: _fused.widen(tile[sl], rows[sl]))
+        else:
+            rows = as_f32(tile, wide)
+        z = buf[: b * width].reshape(b, width)
         np.matmul(qz, rows.T, out=z)
-        scale = _fused.fold_tile(z, start, run.m, run.l, run.top_z, run.top_i)
+        if parts > 1:
+            def fold(sl: slice) -> None:
+                scale[sl] = _fused.fold_tile(z[sl], start, run.m[sl], run.l[sl], run.top_z[sl], run.top_i[sl])
+            _split(helpers, parts, b, fold)
+        else:
+            scale[:] = _fused.fold_tile(z, start, run.m, run.l, run.top_z, run.top_i)
         run.acc *= scale.astype(np.float32)[:, None]
         run.acc += z @ rows
     return run
+
+
+def _split(pool: ThreadPoolExecutor | None, parts: int, n: int, fn: Callable[[slice], None]) -> None:
+    """``fn`` over ``parts`` contiguous slices of ``range(n)``: one on this thread, the rest on ``pool``."""
+    bounds = [n * i // parts for i in range(parts + 1)]
+    slices = [slice(a, b) for a, b in zip(bounds[:-1], bounds[1:]) if b > a]
+    assert pool is not None
+    futures = [pool.submit(fn, sl) for sl in slices[1:]]
+    if slices:
+        fn(slices[0])
+    for f in futures:
+        f.result()
 
 
 def search_top(

@@ -81,3 +81,31 @@ def test_compiled_exp_is_float32_accurate() -> None:
     assert m[0] == 0.0 and scale[0] == 0.0 and top_i[0, 0] == 0
     assert l[0] == pytest.approx(z[0].astype(np.float64).sum(), rel=1e-12)  # summed in float64
     assert l[0] == pytest.approx(ref.sum(), rel=1e-7)
+
+
+def test_widen_matches_ieee_cast_on_every_half(kernel: str) -> None:
+    # Reference: NumPy's float16 -> float32 cast (IEEE 754-2008 binary16 to binary32, exact for
+    # every value), over all 65,536 bit patterns: zeros, subnormals, normals, inf and NaN.
+    bits = np.arange(2**16, dtype=np.uint32).astype(np.uint16)
+    half = bits.view(np.float16).reshape(256, 256)
+    out = np.full(half.shape, 7.0, np.float32)
+    _fused.widen(half, out)
+    ref = half.astype(np.float32)
+    finite = np.isfinite(ref)
+    assert np.array_equal(out[finite].view(np.uint32), ref[finite].view(np.uint32))
+    assert np.array_equal(np.isnan(out), np.isnan(ref)) and np.array_equal(out[np.isinf(ref)], ref[np.isinf(ref)])
+
+
+def test_float16_exact_pass_split_over_threads_equals_one_thread(kernel: str) -> None:
+    # Reference: scipy.special.softmax in float64 over the float16 rows widened by NumPy.
+    rng = np.random.default_rng(3)
+    x = (rng.standard_normal((5000, 96)) / np.sqrt(96)).astype(np.float16)
+    q = np.ascontiguousarray(x[:40].astype(np.float32) + np.float32(0.02))
+    one = exact_reduce(q, x, 8.0, k=5, tile_mib=0.05, n_threads=1)
+    two = exact_reduce(q, x, 8.0, k=5, tile_mib=0.05, n_threads=2)  # one chunk: tile work split
+    f1, f2 = P.finish(one), P.finish(two)
+    w = softmax(8.0 * q.astype(np.float64) @ x.astype(np.float64).T, axis=1)
+    ref = w @ x.astype(np.float64)
+    assert np.abs(f1.states - ref).max() < 1e-5 and np.abs(f2.states - ref).max() < 1e-5
+    assert np.array_equal(f1.top_i, f2.top_i)
+    np.testing.assert_allclose(f1.lse, f2.lse, rtol=1e-12)
