@@ -171,17 +171,20 @@ def certified_reduce(
     todo = np.arange(b)
     n_sample = min(AUTO_SAMPLE, b // 16)  # at most 1/16 of the batch
     if n_sample >= 8:
+        # the sample runs its first search only; the searches it would grow to are priced by the
+        # counts its scores predict (a second and third round on the sample cost more than the
+        # pricing saves where the answer is "exact")
         sample = np.unique(np.linspace(0, b - 1, n_sample).round().astype(np.int64))
-        s_exact, searches = _certify(x, q, sample, beta, k, need_acc, opts, state)
-        cost = (searches + s_exact.size) / sample.size
+        s_exact, searches, s_grow, s_more = _certify(x, q, sample, beta, k, need_acc, opts, state, rounds=1)
+        cost = (searches + s_more + s_exact.size) / sample.size
         rest = np.setdiff1d(todo, sample)
         if cost >= 1.0:
-            to_exact = np.concatenate([s_exact, rest])
+            to_exact = np.concatenate([s_exact, s_grow, rest])
         else:
-            r_exact, _ = _certify(x, q, rest, beta, k, need_acc, opts, state)
+            r_exact, _, _, _ = _certify(x, q, np.sort(np.concatenate([s_grow, rest])), beta, k, need_acc, opts, state)
             to_exact = np.concatenate([s_exact, r_exact])
     else:
-        to_exact, _ = _certify(x, q, todo, beta, k, need_acc, opts, state)
+        to_exact, _, _, _ = _certify(x, q, todo, beta, k, need_acc, opts, state)
     to_exact = np.sort(to_exact)
     if to_exact.size:
         fell_back[to_exact] = True
@@ -193,12 +196,14 @@ def certified_reduce(
 
 def _certify(
     x: np.ndarray, q: np.ndarray, todo: np.ndarray, beta: float, k: int, need_acc: bool,
-    opts: CertifiedOptions, state: tuple[P.Partial, np.ndarray, np.ndarray],
-) -> tuple[np.ndarray, float]:
+    opts: CertifiedOptions, state: tuple[P.Partial, np.ndarray, np.ndarray], *, rounds: int | None = None,
+) -> tuple[np.ndarray, float, np.ndarray, float]:
     """Search candidates for queries ``todo``; certified answers go into ``state``.
 
-    Returns the queries left for the exact path and the cost of the searches run (in exact
-    passes, :func:`search_cost` per query and search).
+    Returns the queries left for the exact path, the cost of the searches run (in exact
+    passes, :func:`search_cost` per query and search), and, where ``rounds`` stopped the
+    growth early, the queries that would have grown and the predicted cost of their next
+    searches.
     """
     out, bound, k_used = state
     n = x.shape[0]
@@ -207,7 +212,8 @@ def _certify(
     give_up = math.isfinite(opts.give_up)
     k_affordable = int((1.0 - SEARCH_COST) / SEARCH_COST_PER_CANDIDATE)
     left: list[np.ndarray] = []
-    searches = 0.0
+    stopped: list[np.ndarray] = []
+    searches = more = 0.0
     # (queries, kc) groups still to search, and the round each is in
     groups: list[tuple[np.ndarray, int, int]] = [(todo, kc0, 0)] if todo.size else []
     while groups:
@@ -236,13 +242,20 @@ def _certify(
             hopeless |= bad & (eps > opts.tol_mass * opts.give_up)
         left.append(idx[hopeless])
         grow = bad & ~hopeless
+        if grow.any() and rounds is not None and rnd + 1 >= rounds:
+            rung = np.ceil(np.log2(np.maximum(need[grow], 2 * kc) / kc0))
+            want = np.minimum(k_cap, kc0 * 2**rung)
+            stopped.append(idx[grow])
+            more += float(sum(search_cost(int(w)) for w in want))
+            continue
         if grow.any():
             # the next rung of the doubling ladder kc0 * 2^j that reaches the predicted count
             rung = np.ceil(np.log2(np.maximum(need[grow], 2 * kc) / kc0))
             want = np.minimum(k_cap, kc0 * 2**rung).astype(np.int64)
             for kk in np.unique(want):
                 groups.append((idx[grow][want == kk], int(kk), rnd + (kc >= MIN_PREDICT)))
-    return (np.concatenate(left) if left else np.empty(0, np.int64)), searches
+    empty = np.empty(0, np.int64)
+    return (np.concatenate(left) if left else empty), searches, (np.concatenate(stopped) if stopped else empty), more
 
 
 def _search(q: np.ndarray, x: np.ndarray, kc: int, tile_mib: float) -> tuple[np.ndarray, np.ndarray]:
