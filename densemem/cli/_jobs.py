@@ -168,8 +168,9 @@ def add_dedup(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
     p.add_argument("--grouping", choices=["star", "complete", "chain"], default="star",
                    help="star (default): every dropped item meets the threshold against the item kept "
                         "for it; complete: every pair in a group does; chain: connected components")
-    p.add_argument("--candidates", choices=["auto", "exact", "ivf", "hnsw"], default="auto",
-                   help="how pairs are found: exact search, or an IVF / HNSW index (default auto: by size)")
+    p.add_argument("--candidates", choices=["auto", "exact", "ivf", "join", "hnsw"], default="auto",
+                   help="how pairs are found: exact search, an IVF range search, a blocked self-join on an IVF "
+                        "partition, or an HNSW index (default auto: by size)")
     p.add_argument("--k", type=int, default=32, help="candidate neighbours per item (default 32)")
     p.add_argument("--representative", choices=["medoid", "first"], default="medoid",
                    help="the item kept per group: the most central (medoid) or the first in input order")

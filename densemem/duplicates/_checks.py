@@ -16,7 +16,7 @@ __all__ = ["Options", "batch_matrix", "check_options", "check_score", "input_mat
 
 WHERE = "plan_duplicates"
 METHODS = ("graph", "attractor")
-SOURCES = ("auto", "exact", "ivf", "hnsw")
+SOURCES = ("auto", "exact", "ivf", "join", "hnsw")
 GROUPINGS = ("star", "complete", "chain")
 RETRIEVALS = ("exact", "auto", "certified")
 

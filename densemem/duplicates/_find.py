@@ -47,7 +47,7 @@ def plan_duplicates(
     method: Literal["graph", "attractor"] = "graph",
     grouping: Literal["star", "complete", "chain"] = "star",
     stored: Any = None,
-    candidates: Literal["auto", "exact", "ivf", "hnsw"] = "auto",
+    candidates: Literal["auto", "exact", "ivf", "join", "hnsw"] = "auto",
     k: int = 32,
     representative: Any = "medoid",
     ids: Any = None,
@@ -97,14 +97,20 @@ def plan_duplicates(
         similar stored item; the other new items are grouped among themselves
         as without ``stored``. Stored items are never planned for dropping.
         Graph method, candidates "auto", "exact" or "ivf".
-    candidates : {"auto", "exact", "ivf", "hnsw"}, default "auto"
+    candidates : {"auto", "exact", "ivf", "join", "hnsw"}, default "auto"
         Where candidate pairs come from. "exact" is a faiss flat range search
         (every pair); "ivf" a range search in a faiss inverted file (``nlist``
         lists, ``nprobe`` probed, doubled until the pair recall on
         ``check_sample`` rows reaches ``target_recall``; a pair counts when
-        found from either end); "hnsw" the ``k`` approximate nearest
-        neighbours of each item. "auto" picks exact while ``n * n * d <=
-        2**38``, IVF above; the plan reports the choice.
+        found from either end); "join" a blocked self-join on the same kind
+        of partition (default ``nlist`` about 1.6 * sqrt(n)): each list's
+        members and the rows probing it are scored against its members by
+        float32 matrix products, and ``nprobe`` is the smallest count from 2
+        whose pair recall on ``check_sample`` rows reaches ``target_recall``
+        (``nprobe`` itself is used when no rows are checked); "hnsw" the
+        ``k`` approximate nearest neighbours of each item. "auto" picks exact
+        while ``n * n * d <= 2**38``, the join above; the plan reports the
+        choice.
     k : int, default 32
         Neighbours per item for "hnsw".
     representative : "medoid", "first" or array of shape (n_items,)
@@ -172,8 +178,9 @@ def plan_duplicates(
 
     Cost of the candidate search: exact search is ``n * n * d``; IVF is one
     coarse assignment (``n * nlist * d``, shared by adding and searching) plus
-    ``n * nprobe * n / nlist * d`` for the range search; candidate pairs are
-    re-scored in float64. Group statistics cost ``size**2 * d`` per group.
+    ``n * nprobe * n / nlist * d`` for the range search; the join has the
+    same two terms, the second as matrix products (about 3x faster than the
+    range search here); candidate pairs are re-scored in float64. Group statistics cost ``size**2 * d`` per group.
     Against a stored memory: a faiss index holds a normalized float32 copy of
     the stored patterns; the batch is read in chunks and only the new items
     that match no stored item are kept in memory for the within-batch search.
@@ -204,7 +211,7 @@ def plan_duplicates(
         from ._against import plan_against
 
         check_stored(stored)
-        if opt.method != "graph" or opt.candidates == "hnsw":
+        if opt.method != "graph" or opt.candidates in ("hnsw", "join"):
             raise InputValueError(
                 f"{WHERE}: `stored` works with method='graph' and candidates 'auto', 'exact' or 'ivf'; "
                 f"got method={opt.method!r}, candidates={opt.candidates!r}."
@@ -283,7 +290,7 @@ class DedupSpec(BaseModel):
     threshold: float = Field(0.98, gt=-1.0, le=1.0, allow_inf_nan=False)
     method: Literal["graph", "attractor"] = "graph"
     grouping: Literal["star", "complete", "chain"] = "star"
-    candidates: Literal["auto", "exact", "ivf", "hnsw"] = "auto"
+    candidates: Literal["auto", "exact", "ivf", "join", "hnsw"] = "auto"
     k: int = Field(32, ge=1)
     representative: Literal["medoid", "first", "quality"] = "medoid"
     quality_column: str | None = None

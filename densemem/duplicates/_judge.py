@@ -55,6 +55,11 @@ def find_pairs(xn: np.ndarray, opt: Options, rng: np.random.Generator, chunk: in
             xn, opt.threshold, nlist=opt.nlist, nprobe=opt.nprobe, chunk=chunk, rng=rng, sample=sample,
             target_recall=opt.target_recall, progress=bar,
         )
+    elif source == "join":
+        pairs = C.join_pairs(
+            xn, opt.threshold, nlist=opt.nlist, nprobe=opt.nprobe, chunk=chunk, tile_mib=opt.tile_mib, rng=rng,
+            sample=sample, target_recall=opt.target_recall, progress=bar,
+        )
     else:
         pairs = C.hnsw_pairs(xn, opt.threshold, k=opt.k, m=32, ef_search=None, chunk=chunk, sample=sample,
                              progress=bar)

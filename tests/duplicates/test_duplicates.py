@@ -160,7 +160,7 @@ def test_threshold_one_finds_exact_copies_only(digits):
 
 
 # ------------------------------------------------------------------ planted duplicates
-@pytest.mark.parametrize("candidates", ["exact", "ivf", "hnsw"])
+@pytest.mark.parametrize("candidates", ["exact", "ivf", "join", "hnsw"])
 def test_planted_digits_precision_recall(planted_digits, candidates):
     x, fam = planted_digits
     t = 0.98
@@ -203,6 +203,66 @@ def test_ivf_pairs_against_faiss_flat_on_clustered_data(rng):
     assert len(found & exact) / len(exact) >= 0.995
     p = plan.candidate_params
     assert p["nprobe"] >= 1 and p["nlist"] >= 1 and 0.99 <= p["sample_pair_recall"] <= 1.0
+
+
+def _faiss_exact_pairs(x: np.ndarray, t: float) -> set[tuple[int, int]]:
+    """Pairs i < j by faiss IndexFlatIP.range_search (exact) at a radius below t, then the float64 rule."""
+    u = unit64(x).astype(np.float32)
+    lims, _, lab = _faiss_range(u, t - 1e-4)  # reference: faiss exact range search
+    q = np.repeat(np.arange(len(u)), np.diff(lims.astype(np.int64)))
+    u64 = unit64(x)
+    ok = (q < lab) & (np.einsum("ij,ij->i", u64[q], u64[lab]) >= t - RULE)
+    return set(zip(q[ok].tolist(), lab[ok].tolist()))
+
+
+def test_join_with_every_list_probed_finds_every_faiss_exact_pair_on_digits(digits):
+    t = gap_threshold(digits, 0.995)
+    exact = _faiss_exact_pairs(digits, t)  # reference: faiss IndexFlatIP.range_search + float64 rule
+    assert len(exact) > 1000
+    # every list probed: the join is then a complete (blocked) brute force; small tiles cross list edges
+    with pytest.warns(DenseMemWarning):
+        plan = plan_duplicates(digits, t, candidates="join", grouping="chain", nlist=16, nprobe=16,
+                               check_sample=0, tile_mib=0.01, return_pairs=True)
+    assert plan.candidates == "join"
+    assert plan_pairs(plan) == exact
+    assert plan.n_pairs == len(exact)  # each unordered pair produced once
+
+
+def test_join_tuned_on_digits_finds_the_faiss_exact_pairs_it_promises(digits):
+    t = gap_threshold(digits, 0.995)
+    exact = _faiss_exact_pairs(digits, t)  # reference: faiss IndexFlatIP.range_search + float64 rule
+    with pytest.warns(DenseMemWarning):
+        plan = plan_duplicates(digits, t, candidates="join", grouping="chain", check_sample=400,
+                               return_pairs=True, seed=2)
+    found = plan_pairs(plan)
+    p = plan.candidate_params
+    assert found <= exact and plan.n_pairs == len(found)  # re-scored, each pair once
+    assert p["nprobe_tuning"][-1]["one_sided_recall"] >= 0.995 or p["nprobe"] == min(32, p["nlist"])
+    assert p["sample_pair_recall"] >= 0.995
+    assert len(found) / len(exact) >= 0.99  # the sample's recall holds on all of digits
+
+
+def test_join_finds_every_planted_copy_faiss_finds(rng):
+    centres = rng.standard_normal((40, 32))
+    x = centres[rng.integers(0, 40, 6000)] + 0.8 * rng.standard_normal((6000, 32)) / np.sqrt(32) * np.linalg.norm(
+        centres, axis=1
+    ).mean()
+    src = rng.integers(0, 6000, 600)
+    x = np.concatenate([x, x[src] + 0.02 * rng.standard_normal((600, 32)), x[src[:100]]]).astype(np.float32)
+    t = 0.99
+    exact = _faiss_exact_pairs(x, t)  # reference: faiss IndexFlatIP.range_search + float64 rule
+    assert len(exact) > 700
+    full = plan_duplicates(x, t, candidates="join", nlist=8, nprobe=8, check_sample=0, return_pairs=True)
+    assert plan_pairs(full) == exact and full.n_pairs == len(exact)
+    one = C.join_pairs(unit64(x).astype(np.float32), t, nlist=64, nprobe=3, chunk=1024, tile_mib=0.05,
+                       rng=np.random.default_rng(0), n_threads=1)
+    two = C.join_pairs(unit64(x).astype(np.float32), t, nlist=64, nprobe=3, chunk=1024, tile_mib=0.05,
+                       rng=np.random.default_rng(0), n_threads=2)
+    assert np.array_equal(np.sort(one.lo * len(x) + one.hi), np.sort(two.lo * len(x) + two.hi))
+    tuned = plan_duplicates(x, t, candidates="join", return_pairs=True, check_sample=500)
+    found = plan_pairs(tuned)
+    assert found <= exact and len(found & exact) / len(exact) >= 0.995
+    assert tuned.candidate_params["nprobe"] >= C.JOIN_MIN_PROBES
 
 
 # ------------------------------------------------------------------ chaining
@@ -399,7 +459,7 @@ def test_progress_bar_on_stderr(capsys):
 def test_auto_choice_is_reported():
     assert C.choose_source(1797, 64, "auto")[0] == "exact"
     name, why = C.choose_source(1_000_000, 128, "auto")
-    assert name == "ivf" and "inverted-file" in why
+    assert name == "join" and "inverted-file" in why
     plan = plan_duplicates(np.eye(3), 0.9)
     assert plan.candidates == "exact" and "brute force" in plan.candidate_params["chosen_because"]
 
