@@ -21,6 +21,7 @@ from ._data import BenchData, packed, sign_codes
 from ._measure import median, memory_peaks, paired_times, recall_at_k, time_calls
 from ._spec import BenchRecord, BenchSpec
 from ..core.index import CandidateIndex, IndexSettings, binary_flat, default_settings, make_index
+from ..core.sparse import NAMED_ALPHA
 from ..errors import InputValueError
 
 __all__ = ["count_rows", "run_rows"]
@@ -125,6 +126,8 @@ class _Run:
              "state_error_mean": float(err.mean()), "state_reference": ref_name}
         if out[2] is not None and out[2].size:
             q["fell_back"] = float(np.mean(out[2]))
+        if len(out) > 3 and out[3].size:
+            q["support_size_mean"] = float(np.mean(out[3]))
         return q
 
     def memory(self) -> tuple[Any, float, float]:
@@ -134,21 +137,26 @@ class _Run:
             self._mem = _build(lambda: DenseMemory.from_array(self.x, normalize=False))
         return self._mem
 
-    def retrieve_fn(self, beta: float, method: str) -> Callable[[np.ndarray], tuple[np.ndarray, ...]]:
+    def retrieve_fn(self, beta: float, method: str, weighting: str = "softmax") -> Callable[[np.ndarray], tuple[np.ndarray, ...]]:
         mem = self.memory()[0]
         nc = max(self.spec.n_candidates, self.kmax)
+        sparse: dict[str, Any] = {}
+        if weighting != "softmax":
+            sparse = {"weighting": weighting, "alpha": self.spec.alpha if weighting == "entmax" else None}
 
         def fn(qb: np.ndarray) -> tuple[np.ndarray, ...]:
-            r = mem.retrieve(qb, beta, k=self.kmax, method=method, return_energy=False, n_candidates=nc)
+            r = mem.retrieve(qb, beta, k=self.kmax, method=method, return_energy=False, n_candidates=nc, **sparse)
             fb = np.zeros(0, dtype=bool) if r.fell_back is None else r.fell_back
-            return r.top_ids, r.states, fb
+            support = np.zeros(0, dtype=np.int64) if r.support_size is None else np.asarray(r.support_size)
+            return r.top_ids, r.states, fb, support
 
         return fn
 
-    def exact_ref(self, beta: float) -> np.ndarray:
-        if beta not in self.refs:
-            self.refs[beta] = self.batched(self.retrieve_fn(beta, "exact"))()[1].astype(np.float64)
-        return self.refs[beta]
+    def exact_ref(self, beta: float, weighting: str = "softmax") -> np.ndarray:
+        key = beta if weighting == "softmax" else (beta, weighting)
+        if key not in self.refs:
+            self.refs[key] = self.batched(self.retrieve_fn(beta, "exact", weighting))()[1].astype(np.float64)
+        return self.refs[key]
 
 
 # ------------------------------------------------------------------ rows
@@ -176,22 +184,54 @@ def _flat_index(x: np.ndarray) -> Any:
 
 def _dense(run: _Run, method: str, extra_build: tuple[float, float] = (0.0, 0.0),
            label: str = "", params: dict[str, Any] | None = None, baseline: str = "faiss-flat",
-           index_mib: float = 0.0) -> None:
+           index_mib: float = 0.0, weighting: str = "softmax") -> None:
     mem, mb, mrss = run.memory()
     held = float(np.asarray(mem.patterns).nbytes) / 2.0**20 + index_mib
     sample = slice(0, min(_FLOAT64_SAMPLE, run.nq))
+    alpha = run.spec.alpha if weighting == "entmax" else NAMED_ALPHA.get(weighting)
     for beta in run.spec.betas:
-        if method == "exact":
+        if method == "exact" and weighting == "softmax":
             ref = float64_states(run.x, run.q[sample], beta)
             ref_name, rows = f"float64 NumPy softmax ({ref.shape[0]} queries)", sample
+        elif method == "exact":
+            assert alpha is not None
+            ref = float64_entmax_states(run.x, run.q[sample], beta, alpha)
+            ref_name, rows = f"float64 NumPy {weighting} by bisection ({ref.shape[0]} queries)", sample
         else:
-            ref, ref_name, rows = run.exact_ref(beta), "densemem exact", slice(None)
-        call = run.batched(run.retrieve_fn(beta, "index" if method.startswith("index") else method))
-        run.add(library="densemem", method=method, label=(label + f" beta={beta:g}").strip(),
-                params={**(params or {}), "beta": beta}, beta=beta, call=call,
-                build=(mb + extra_build[0], max(mrss, extra_build[1])), baseline=baseline, held=held,
-                quality=lambda out, ref=ref, beta=beta, ref_name=ref_name, rows=rows: run.state_quality(
-                    out, beta, ref, ref_name, rows, keep=method == "exact"))
+            ref, ref_name, rows = run.exact_ref(beta, weighting), f"densemem exact{_map_tag(weighting)}", slice(None)
+        call = run.batched(run.retrieve_fn(beta, "index" if method.startswith("index") else method, weighting))
+        extra = {} if weighting == "softmax" else {"weighting": weighting, "alpha": alpha}
+        run.add(library="densemem", method=method, label=(label + f"{_map_tag(weighting)} beta={beta:g}").strip(),
+                params={**(params or {}), "beta": beta, **({"weighting": weighting} if extra else {})}, beta=beta,
+                call=call, build=(mb + extra_build[0], max(mrss, extra_build[1])), baseline=baseline, held=held,
+                quality=lambda out, ref=ref, beta=beta, ref_name=ref_name, rows=rows, extra=extra: {
+                    **run.state_quality(out, beta, ref, ref_name, rows,
+                                        keep=method == "exact" and weighting == "softmax"), **extra})
+
+
+def _map_tag(weighting: str) -> str:
+    return "" if weighting == "softmax" else f" {weighting}"
+
+
+def float64_entmax_states(x: np.ndarray, q: np.ndarray, beta: float, alpha: float) -> np.ndarray:
+    """States ``x^T alpha-entmax(beta x q)`` in float64 for a few queries (the sparse rows' reference).
+
+    alpha-entmax by bisection on its threshold tau (Peters, Niculae & Martins, "Sparse
+    Sequence-to-Sequence Models", ACL 2019, Algorithm 1): p_i = [(alpha - 1) z_i - tau]_+ ^
+    (1 / (alpha - 1)), with tau in [max (alpha-1) z - 1, max (alpha-1) z - (1/N)^(alpha-1)]
+    and sum p = 1. Independent of densemem's own sparse kernel.
+    """
+    xd = x.astype(np.float64)
+    z = (alpha - 1.0) * beta * (q.astype(np.float64) @ xd.T)
+    top = z.max(axis=1, keepdims=True)
+    lo, hi = top - 1.0, top - (1.0 / z.shape[1]) ** (alpha - 1.0)
+    for _ in range(80):
+        tau = (lo + hi) / 2
+        mass = (np.maximum(z - tau, 0.0) ** (1.0 / (alpha - 1.0))).sum(axis=1, keepdims=True)
+        lo, hi = np.where(mass >= 1.0, tau, lo), np.where(mass >= 1.0, hi, tau)
+    p = np.maximum(z - (lo + hi) / 2, 0.0) ** (1.0 / (alpha - 1.0))
+    p /= p.sum(axis=1, keepdims=True)
+    return p @ xd
 
 
 def _hnsw(run: _Run, planned: list[str]) -> None:
@@ -294,7 +334,7 @@ def count_rows(spec: BenchSpec, n: int) -> int:
     nlist = spec.nlist or default_settings("ivf", n).nlist
     n_probe = len({min(p, nlist) for p in spec.nprobe})
     nb, ne = len(spec.betas), len(spec.ef_search)
-    rows = 1 + nb * sum(m in planned for m in ("exact", "certified", "auto"))
+    rows = 1 + nb * len(spec.weightings) * sum(m in planned for m in ("exact", "certified", "auto"))
     rows += ne * (("faiss-hnsw" in planned) + nb * ("index-hnsw" in planned))
     rows += n_probe * (("faiss-ivf" in planned) + nb * ("index-ivf" in planned))
     return rows + ((1 + len(spec.binary_models)) if spec.include_binary else 0)
@@ -305,9 +345,10 @@ def run_rows(spec: BenchSpec, data: BenchData, tick: Callable[[str], None]) -> l
     run = _Run(spec, data, tick)
     planned = spec.planned_methods()
     _flat(run)
-    for method in ("exact", "certified", "auto"):
-        if method in planned:
-            _dense(run, method)
+    for weighting in spec.weightings:
+        for method in ("exact", "certified", "auto"):
+            if method in planned:
+                _dense(run, method, weighting=weighting)
     if "faiss-hnsw" in planned:
         _hnsw(run, planned)
     if "faiss-ivf" in planned:

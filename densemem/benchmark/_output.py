@@ -30,6 +30,8 @@ LEGEND = (
                  "patterns plus any index)"),
     ("py MiB, RSS MiB", "what one search call adds (Python heap / resident set); faiss allocates in C++ and "
                         "reuses pages, so its rows are near 0"),
+    ("support", "sparse maps only: mean number of stored rows with non-zero weight per query; a sparse row "
+                "returns only its support, so recall@k for k above it counts the missing ids as misses"),
 )
 
 
@@ -45,6 +47,10 @@ def table_rows(records: Sequence[BenchRecord], ks: Sequence[int]) -> tuple[list[
             _f(r.state_error_max, ".2e"), _f(r.fell_back, ".2f"), f"{r.time_s * 1e3:.3g}", f"{r.queries_per_s:,.0f}",
             r.baseline or "-", _f(base_ms, ".3g"), _f(r.time_ratio, ".2f"), f"{r.build_s:.2f}",
             _f(r.held_mib, ".2f"), f"{r.peak_python_mib:.1f}", f"{r.peak_rss_mib:.1f}"])
+    if any(r.support_size_mean is not None for r in records):  # sparse maps were run
+        heads.append("support")
+        for r, row in zip(records, rows):
+            row.append(_f(r.support_size_mean, ".1f"))
     return heads, rows
 
 

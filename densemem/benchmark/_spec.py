@@ -81,7 +81,10 @@ class BenchSpec(_Model):
     "faiss-ivf" per ``nprobe``) and densemem retrieval ("exact", "certified",
     "auto" (the default path of ``retrieve``), "index-hnsw", "index-ivf", each
     per ``betas``). A densemem method brings
-    its faiss baseline along. ``include_binary`` adds sign-quantised data (signs
+    its faiss baseline along. ``weightings`` lists the normalising maps of the
+    densemem rows: "softmax" (the default), and the sparse maps "sparsemax",
+    "entmax15" and "entmax" (with ``alpha`` in (1, 2]); exact, certified and auto
+    rows run once per map, and sparse rows report their mean support size. ``include_binary`` adds sign-quantised data (signs
     of the rows minus their mean) with
     faiss ``IndexBinaryFlat`` and the ``binary_models``.
 
@@ -111,6 +114,8 @@ class BenchSpec(_Model):
     nlist: int | None = Field(None, ge=1)
     n_candidates: int = Field(32, ge=1)
     methods: list[Literal[DENSE_METHODS]] = list(DENSE_METHODS)  # type: ignore[valid-type]
+    weightings: list[str] = ["softmax"]
+    alpha: float | None = Field(None, validate_default=True)
     include_binary: bool = False
     binary_models: list[Literal[BINARY_MODELS]] = ["hebbian", "exponential"]  # type: ignore[valid-type]
     binary_sweeps: int = Field(10, ge=1)
@@ -129,6 +134,33 @@ class BenchSpec(_Model):
         if info.field_name == "methods":
             return [m for m in DENSE_METHODS if m in out]  # canonical order
         return out
+
+    @field_validator("weightings")
+    @classmethod
+    def _weightings(cls, v: list[str]) -> list[str]:
+        from ..options import WEIGHTINGS
+
+        if not v:
+            raise ValueError("`weightings` must name at least one map")
+        bad = [w for w in v if w not in WEIGHTINGS]
+        if bad:
+            raise ValueError(f"unknown `weightings` {bad}; use {', '.join(map(repr, WEIGHTINGS))}")
+        return [w for w in WEIGHTINGS if w in v]  # canonical order, each once
+
+    @field_validator("alpha", mode="after")
+    @classmethod
+    def _alpha(cls, v: float | None, info: Any) -> float | None:
+        from ..options import check_weighting
+
+        maps = info.data.get("weightings") or ["softmax"]
+        if v is not None and "entmax" not in maps:
+            raise ValueError(f"`alpha` applies to the 'entmax' weighting only; got alpha={v!r} with weightings={maps}")
+        if "entmax" in maps:
+            try:
+                check_weighting("entmax", v, where="BenchSpec")
+            except Exception as exc:  # the library's message, as a validation error of this field
+                raise ValueError(str(exc)) from None
+        return v
 
     @field_validator("sizes")
     @classmethod
@@ -212,6 +244,9 @@ class BenchRecord(_Model):
     state_error_mean: NonNeg | None = None
     state_reference: str | None = None
     fell_back: Fraction | None = None
+    weighting: str = "softmax"
+    alpha: Positive | None = None
+    support_size_mean: NonNeg | None = None
     time_s: Positive
     times_s: list[Positive]
     queries_per_s: Positive

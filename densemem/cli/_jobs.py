@@ -295,7 +295,7 @@ def capacity_table(rows: list[dict[str, Any]]) -> str:
 _BENCH_QUICK = {"n": 2000, "n_queries": 100, "dim": 64, "repeats": 1, "warmup": 0,
                 "ef_search": [16, 64], "nprobe": [4, 16]}
 _BENCH_FLAGS = {"--n-queries": "--queries", "--ks": "--k", "--queries": "--query-file",
-                "--include-binary": "--binary", "--column": "--column"}
+                "--include-binary": "--binary", "--column": "--column", "--weightings": "--weighting"}
 
 
 def add_bench(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
@@ -317,6 +317,9 @@ def add_bench(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
     p.add_argument("--nprobe", nargs="+", type=int, help="IVF nprobe values (default 4 16 64)")
     p.add_argument("--methods", nargs="+", help="subset of faiss-flat faiss-hnsw faiss-ivf exact certified "
                    "auto index-hnsw index-ivf (default all)")
+    p.add_argument("--weighting", nargs="+", choices=["softmax", "sparsemax", "entmax15", "entmax"],
+                   help="normalising maps of the densemem rows (default softmax); sparse rows report their support")
+    p.add_argument("--alpha", type=float, help="alpha of --weighting entmax, in (1, 2]")
     p.add_argument("--binary", action="store_true", help="add sign-quantised data and the binary memories")
     p.add_argument("--binary-models", nargs="+", help="binary memories (default hebbian exponential)")
     p.add_argument("--repeats", type=int, help="timed calls per row, median kept (default 5)")
@@ -338,7 +341,8 @@ def add_bench(subs: Any, sub: Callable[..., argparse.ArgumentParser]) -> None:
 
 def _run_bench(a: argparse.Namespace) -> tuple[Any, str]:
     from .. import benchmark
-    names = {"queries": "n_queries", "query_file": "queries", "k": "ks", "binary": "include_binary"}
+    names = {"queries": "n_queries", "query_file": "queries", "k": "ks", "binary": "include_binary",
+             "weighting": "weightings"}
     html = _html_target(a, overwrite=a.overwrite)
     values = {names.get(k, k): v for k, v in vars(a).items() if v is not None and k != "html"}
     if a.quick:
