@@ -142,7 +142,11 @@ def test_batched_update_equals_dense_memory_retrieve(digits):
     for g, rows in enumerate(comps):
         mem = densemem.DenseMemory.from_array(u[rows], normalize=False, beta=beta)
         res = mem.retrieve(u[rows], beta, steps=200, tol=1e-6, method="exact")
-        np.testing.assert_allclose(got[g], res.states, atol=1e-5)
+        # float64 batched steps against float32 retrieval, both stopped at a step change below
+        # tol = 1e-6: near a slowly contracting fixed point the two stop a few steps apart, so the
+        # states agree to a few times tol (the compiled kernel's blocked float32 sums moved the
+        # worst of the 40 pairs to 1.2e-5)
+        np.testing.assert_allclose(got[g], res.states, atol=3e-5)
 
 
 @settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
