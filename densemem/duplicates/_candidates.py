@@ -93,6 +93,19 @@ class _Clock:
         self._t, self._c = now, cpu
 
 
+def _finish(lo: np.ndarray, hi: np.ndarray, sims: np.ndarray, kind: str, params: dict[str, Any],
+            clock: _Clock, sample: np.ndarray | None, exact: dict[int, set[int]] | None) -> PairSet:
+    """The pair set of an index-backed search, with its phase times and, when an exact
+    sample was scored, the pair recall on it recorded in ``params``."""
+    params["phase_seconds"] = clock.laps
+    params["phase_cpu_seconds"] = clock.cpu
+    pairs = PairSet(lo, hi, sims, kind, params)
+    if exact is not None and sample is not None:
+        params["sample_rows"] = int(sample.size)
+        params["sample_pair_recall"] = sample_recall(pairs, sample, exact)
+    return pairs
+
+
 def _chunks(n: int, size: int) -> Iterator[tuple[int, int]]:
     for start in range(0, n, size):
         yield start, min(n, start + size)
@@ -272,13 +285,7 @@ def ivf_pairs(
     lo, hi = _unique_pairs(*_collect(parts), n)
     lo, hi, sims = rescore(xn, lo, hi, threshold)
     clock.lap("rescore")
-    params["phase_seconds"] = clock.laps
-    params["phase_cpu_seconds"] = clock.cpu
-    pairs = PairSet(lo, hi, sims, "ivf", params)
-    if exact is not None:
-        params["sample_rows"] = int(sample.size)
-        params["sample_pair_recall"] = sample_recall(pairs, sample, exact)
-    return pairs
+    return _finish(lo, hi, sims, "ivf", params, clock, sample, exact)
 
 
 # ------------------------------------------------------------ blocked self-join
@@ -463,13 +470,7 @@ def join_pairs(
     clock.lap("rescore")
     params["list_size_max"] = int(sizes.max(initial=0))
     params["pairs_scored"] = int(work.sum())
-    params["phase_seconds"] = clock.laps
-    params["phase_cpu_seconds"] = clock.cpu
-    pairs = PairSet(lo, hi, sims, "join", params)
-    if exact is not None:
-        params["sample_rows"] = int(sample.size)
-        params["sample_pair_recall"] = sample_recall(pairs, sample, exact)
-    return pairs
+    return _finish(lo, hi, sims, "join", params, clock, sample, exact)
 
 
 def hnsw_pairs(
