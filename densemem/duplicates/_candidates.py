@@ -8,6 +8,7 @@ whichever source found it. The edge rule is ``cosine >= threshold - SLACK``.
 from __future__ import annotations
 
 import math
+import threading
 import time
 from collections.abc import Callable, Iterator
 from concurrent.futures import ThreadPoolExecutor
@@ -296,6 +297,9 @@ pairs at 0.98); the sample then decides whether two are enough."""
 
 JOIN_MAX_PROBES = 32
 
+JOIN_TILE_MIB = 8.0
+"""Budget of one product block of the self-join (at most the user's ``tile_mib``)."""
+
 
 def join_nlist(n: int) -> int:
     """About ``1.6 sqrt(n)`` lists, a power of two, at most ``n // 32``.
@@ -363,6 +367,26 @@ def _list_order(keys: np.ndarray, nlist: int) -> tuple[np.ndarray, np.ndarray]:
     return order, offsets
 
 
+_SCRATCH = threading.local()
+
+
+def _scratch(name: str, shape: tuple[int, int]) -> np.ndarray:
+    """A float32 C-contiguous array of ``shape`` in this thread's buffer ``name``, grown when too small.
+
+    The join's product blocks and gathered rows are reused from tile to tile and list to
+    list: a fresh array per tile is a fresh mapping from the kernel above malloc's mmap
+    threshold, and at 10M rows that cost more system time (page faults) than the products.
+    """
+    size = shape[0] * shape[1]
+    bufs = getattr(_SCRATCH, "bufs", None)
+    if bufs is None:
+        bufs = _SCRATCH.bufs = {}
+    buf = bufs.get(name)
+    if buf is None or buf.size < size:
+        buf = bufs[name] = np.empty(max(size, 1 << 16), dtype=np.float32)
+    return buf[:size].reshape(shape)
+
+
 def _join_list(xn: np.ndarray, top: np.ndarray, base: np.ndarray, others: np.ndarray, radius: float,
                tile_rows: int) -> tuple[np.ndarray, np.ndarray]:
     """Candidate pairs of one list: (its members + the rows probing it) x its members.
@@ -373,11 +397,12 @@ def _join_list(xn: np.ndarray, top: np.ndarray, base: np.ndarray, others: np.nda
     j's probed lists, and then only the production with ``i < j`` is kept.
     """
     s = base.size
-    xb = xn[base]
+    xb = np.take(xn, base, axis=0, out=_scratch("members", (s, xn.shape[1])))
     queries = np.concatenate([base, others])
     out_q, out_j = [], []
     for a, b in _chunks(queries.size, tile_rows):
-        block = xn[queries[a:b]] @ xb.T
+        xq = np.take(xn, queries[a:b], axis=0, out=_scratch("queries", (b - a, xn.shape[1])))
+        block = np.matmul(xq, xb.T, out=_scratch("block", (b - a, s)))
         if a < s:  # a member against itself is not a pair
             own = np.arange(a, min(b, s))
             block[own - a, own] = -np.inf
@@ -451,7 +476,7 @@ def join_pairs(
     def one(c: int) -> tuple[np.ndarray, np.ndarray]:
         base = base_order[base_off[c]:base_off[c + 1]]
         others = probe_order[probe_off[c]:probe_off[c + 1]]
-        rows = max(64, int(tile_mib * 2**20 / (4.0 * max(base.size, 1))))
+        rows = max(64, int(min(tile_mib, JOIN_TILE_MIB) * 2**20 / (4.0 * max(base.size, 1))))
         out = _join_list(xn, top, base, others, radius, rows)
         _tick(bar, base.size)
         return out
@@ -462,6 +487,7 @@ def join_pairs(
             parts = list(pool.map(one, lists))
     else:
         parts = [one(c) for c in lists]
+        _SCRATCH.__dict__.pop("bufs", None)  # the pool's threads take theirs with them
     _close(bar)
     del top, base_order, probe_order
     clock.lap("join")
@@ -516,10 +542,11 @@ def exact_sample_pairs(xn: np.ndarray, sample: np.ndarray, threshold: float) -> 
     """
     xs = np.ascontiguousarray(xn[sample])
     radius = _radius(threshold)
-    step = max(1024, int(64 * 2**20 / (4 * max(1, sample.size))))
+    step = max(1024, int(16 * 2**20 / (4 * max(1, sample.size))))
+    buf = np.empty(sample.size * step, dtype=np.float32)  # one block, reused (see _scratch)
     qs, js = [], []
     for a, b in _chunks(xn.shape[0], step):
-        block = xs @ xn[a:b].T
+        block = np.matmul(xs, xn[a:b].T, out=buf[: sample.size * (b - a)].reshape(sample.size, b - a))
         cols = np.flatnonzero(block.max(axis=0) >= radius)  # few rows have a pair: scan only those
         qi, ji = np.nonzero(block[:, cols] >= radius)
         qs.append(sample[qi])

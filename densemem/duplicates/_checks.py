@@ -171,7 +171,7 @@ def normalized_copy(x: np.ndarray, ids: np.ndarray, chunk: int) -> tuple[np.ndar
         )
     xn = np.empty((valid.size, d), dtype=np.float32)
     for a in range(0, valid.size, chunk):
-        rows = valid[a : a + chunk]
+        rows = valid[a : a + chunk] if zero.size else slice(a, a + chunk)  # a slice reads without a gather
         xn[a : a + chunk] = x[rows].astype(np.float64) / norms[rows, None]
     return xn, valid, zero
 

@@ -122,6 +122,28 @@ def _split_one(sub: csr_matrix, mode: str, rule: str, score: np.ndarray | None) 
     return out
 
 
+def _subgraph(adj: csr_matrix, rows: np.ndarray) -> csr_matrix:
+    """``adj[rows][:, rows]`` for sorted ``rows``, in time proportional to their edges.
+
+    SciPy's column selection builds an index map over all ``n`` columns per call,
+    which over the 10^5-10^6 groups of a 10M-row plan made grouping quadratic
+    (minutes); here the rows' edges are gathered and their columns mapped to local
+    numbers by a binary search in ``rows``.
+    """
+    s = rows.size
+    starts, ends = adj.indptr[rows], adj.indptr[rows + 1]
+    lens = (ends - starts).astype(np.int64)
+    first = np.cumsum(lens) - lens
+    pos = np.arange(int(lens.sum()), dtype=np.int64) - np.repeat(first - starts, lens)
+    cols = adj.indices[pos]
+    local = np.minimum(np.searchsorted(rows, cols), s - 1)
+    keep = rows[local] == cols
+    owner = np.repeat(np.arange(s), lens)[keep]
+    indptr = np.zeros(s + 1, dtype=np.int64)
+    np.cumsum(np.bincount(owner, minlength=s), out=indptr[1:])
+    return csr_matrix((adj.data[pos][keep], local[keep], indptr), shape=(s, s))
+
+
 def split_groups(
     groups: Packed, adj: csr_matrix, mode: str, rule: str, score: np.ndarray | None
 ) -> tuple[Packed, np.ndarray]:
@@ -142,7 +164,7 @@ def split_groups(
             parts.append(rows)
             reps.append(int(rows[0]) if rule != "quality" else int(rows[np.argmax(score[rows])]))  # type: ignore[index]
             continue
-        sub = adj[rows][:, rows].tocsr()
+        sub = _subgraph(adj, rows)
         local_score = None if score is None else score[rows]
         for seed, piece in _split_one(sub, mode, rule, local_score):
             if piece.size >= 2:
