@@ -339,6 +339,7 @@ class DenseMemory(Retriever):
             x=self._table.x, ids=self._table.ids, normalize=self.normalize, beta=self._beta,
             next_id=self._table.next_id,
             index_meta=None if payload is None else payload[0], index=None if payload is None else payload[1],
+            max_norm=self.max_norm,
         )
         write_store(content, path, overwrite=overwrite, where="DenseMemory.save")
 
@@ -372,6 +373,8 @@ class DenseMemory(Retriever):
         """A memory from what a store folder holds (arrays checked by the reader)."""
         table = PatternTable.trusted(content.x, content.ids, normalize=content.normalize, next_id=content.next_id)
         mem = cls._from_table(table, beta=content.beta)
+        if content.max_norm is not None:  # recorded by save: a mapped store needs no pass over its rows for it
+            mem._max_norm_cache = (table.snapshot().version, content.max_norm)
         if content.index is not None:
             mem._restore_index(content.index_meta or {}, content.index, where=where)
         return mem

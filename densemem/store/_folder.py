@@ -3,7 +3,8 @@
 Layout of a store folder::
 
     manifest.json    format name and version, dim, count, dtype, normalization,
-                     default beta, id kind, the sha256 and size of every file, and
+                     default beta, id kind, the largest row norm (float64), the
+                     sha256 and size of every file, and
                      ``manifest_sha256``: the sha256 of its own content (every other
                      key, as canonical JSON), checked on every load
     patterns.npy     float32 or float16 (count, dim), C order (the manifest's "dtype")
@@ -60,6 +61,8 @@ Examples
 """
 
 from __future__ import annotations
+
+import math
 
 import contextlib
 import hashlib
@@ -236,6 +239,7 @@ class StoreContent:
     next_id: int = 0
     index_meta: dict[str, Any] | None = None
     index: Any = None  # a faiss index, or None
+    max_norm: float | None = None  # largest row norm (float64), recorded so a mapped store needs no pass for it
 
 
 def _manifest(content: StoreContent, ids: np.ndarray) -> dict[str, Any]:
@@ -252,6 +256,7 @@ def _manifest(content: StoreContent, ids: np.ndarray) -> dict[str, Any]:
         "beta": float(content.beta),
         "id_kind": "int64" if ids.dtype.kind == "i" else "str",
         "next_id": int(content.next_id),
+        **({} if content.max_norm is None else {"max_norm": float(content.max_norm)}),
         "files": {},
         "index": None,
     }
@@ -515,9 +520,15 @@ def _build(man: dict[str, Any], x: np.ndarray, ids: np.ndarray, folder: Path, wh
             raise StoreFormatError(f"{where}: {str(fpath)!r} is not a readable faiss index ({exc}).") from None
         meta = index_entry.get("meta", {})
     next_id = man.get("next_id")
+    max_norm = man.get("max_norm")  # absent in stores written before it was recorded
+    if max_norm is not None and (isinstance(max_norm, bool) or not isinstance(max_norm, (int, float))
+                                 or not math.isfinite(max_norm) or max_norm < 0):
+        raise StoreFormatError(f"{where}: {str(folder / MANIFEST)!r} has a bad 'max_norm' {max_norm!r} "
+                               "(expected a finite number >= 0).")
     return StoreContent(
         x=x, ids=ids, normalize=bool(man["normalize"]), beta=float(man["beta"]),
         next_id=next_id if isinstance(next_id, int) else 0, index_meta=meta, index=index,
+        max_norm=None if max_norm is None else float(max_norm),
     )
 
 

@@ -398,3 +398,38 @@ def test_save_refusals(tmp_path, rng):
     with pytest.raises(InputValueError, match="a store already exists at .* overwrite=False"):
         mem.save(tmp_path / "s", overwrite=False)
     assert densemem.DenseMemory.load(tmp_path / "s").dim == 8
+
+
+# ---------------------------------------------------------------- the recorded max norm
+def test_max_norm_recorded_and_read_without_a_pass(tmp_path, rng, monkeypatch):
+    x = (rng.standard_normal((300, 16)) * 3).astype(np.float16)
+    mem = DenseMemory.from_array(x, normalize=False, dtype="float16")
+    path = tmp_path / "s"
+    save_memory(mem, path)
+    man = json.loads((path / "manifest.json").read_text())
+    # reference: float64 norms by NumPy of the stored values (every half is exact in float64)
+    want = float(np.sqrt((np.asarray(mem.patterns, np.float64) ** 2).sum(axis=1)).max())
+    assert man["max_norm"] == want
+    import densemem.dense as dense_module
+
+    def no_pass(_x):
+        raise AssertionError("the max norm was recomputed over the rows")
+
+    monkeypatch.setattr(dense_module, "max_row_norm", no_pass)
+    mapped = load_memory(path, mmap=True)
+    assert mapped.max_norm == want
+    mapped.retrieve(np.asarray(mem.patterns[:3], np.float32), beta=2.0)  # the stop rule reads it
+
+
+def test_store_without_max_norm_still_loads(store):
+    man = json.loads((store / "manifest.json").read_text())
+    want = man.pop("max_norm")
+    (store / "manifest.json").write_text(storage.manifest_text(man))
+    assert load_memory(store, mmap=True).max_norm == want  # computed from the rows, as before
+
+
+@pytest.mark.parametrize("bad", [-1.0, "2", True, [1.0]])
+def test_bad_max_norm_refused(store, bad):
+    _rewrite_manifest(store, max_norm=bad)
+    with pytest.raises(StoreFormatError, match="max_norm"):
+        load_memory(store)
