@@ -224,7 +224,10 @@ def search_top(
         order = np.argsort(-top_z, axis=1, kind="stable")
         return np.take_along_axis(top_z, order, 1), np.take_along_axis(top_i, order, 1)
 
-    parts = map_query_chunks(run, qf.shape[0], n_threads=n_threads, chunk=512)
+    # one chunk per thread even for a few queries (auto's sample of 32): BLAS's own threads
+    # spin after a call, and the exact pass that often follows ran 8 % slower beside them
+    chunk = min(512, max(1, -(-qf.shape[0] // max(n_threads, 1))))
+    parts = map_query_chunks(run, qf.shape[0], n_threads=n_threads, chunk=chunk)
     return np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts])
 
 
