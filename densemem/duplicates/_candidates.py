@@ -139,11 +139,14 @@ def _from_lists(start: int, lims: np.ndarray, labels: np.ndarray) -> tuple[np.nd
 def rescore(xn: np.ndarray, lo: np.ndarray, hi: np.ndarray, threshold: float) -> tuple[np.ndarray, ...]:
     """Float64 cosine of each pair; keep those meeting the edge rule."""
     sims = np.empty(lo.shape[0], dtype=np.float64)
-    step = 1 << 18
+    d = xn.shape[1]
+    step = max(64, (4 << 20) // (8 * max(d, 1)))  # about 4 MB per float64 block, reused (the old fixed
+    u, v = np.empty((step, d)), np.empty((step, d))  # 2^18 pairs made 1.6 GB fresh blocks at d = 768)
     for a, b in _chunks(lo.shape[0], step):
-        u = xn[lo[a:b]].astype(np.float64)
-        v = xn[hi[a:b]].astype(np.float64)
-        sims[a:b] = np.einsum("ij,ij->i", u, v)
+        uu, vv = u[: b - a], v[: b - a]
+        np.copyto(uu, xn[lo[a:b]])
+        np.copyto(vv, xn[hi[a:b]])
+        sims[a:b] = np.einsum("ij,ij->i", uu, vv)
     keep = sims >= threshold - SLACK
     return lo[keep], hi[keep], sims[keep]
 
