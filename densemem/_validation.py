@@ -354,7 +354,7 @@ def check_positive_fraction(x: Any, *, name: str, where: str) -> float:
     return _check_interval(x, name=name, where=where, low_open=True, high_open=False)
 
 
-_NORM_CHUNK = 1 << 16  # rows per float64 block: bounded extra memory for large tables
+_NORM_BLOCK_BYTES = 4 << 20  # one reused float64 block: bounded extra memory for large tables
 
 
 def row_norms(x: np.ndarray) -> np.ndarray:
@@ -366,12 +366,12 @@ def row_norms(x: np.ndarray) -> np.ndarray:
     """
     n, d = x.shape
     out = np.empty(n, dtype=np.float64)
-    step = max(1, min(n, (4 << 20) // (8 * max(d, 1))))
+    step = max(1, min(n, _NORM_BLOCK_BYTES // (8 * max(d, 1))))
     wide = np.empty((step, d), dtype=np.float64)
     for a in range(0, n, step):
         rows = x[a : a + step]
         block = wide[: rows.shape[0]]
-        np.copyto(block, rows, casting="unsafe" if rows.dtype.kind not in "fiub" else "same_kind")
+        np.copyto(block, rows, casting="unsafe")  # as np.asarray(rows, float64) would
         out[a : a + block.shape[0]] = np.sqrt(np.einsum("ij,ij->i", block, block))
     return out
 

@@ -62,11 +62,10 @@ Examples
 
 from __future__ import annotations
 
-import math
-
 import contextlib
 import hashlib
 import json
+import math
 import os
 import secrets
 import shutil
