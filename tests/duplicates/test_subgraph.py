@@ -29,7 +29,8 @@ def test_subgraph_equals_scipy_fancy_indexing(n: int, m: int, pick: float, seed:
 
 
 def test_subgraph_of_a_component_keeps_every_edge() -> None:
-    # A path 0-1-2 and a separate edge 3-4: the component {0, 1, 2} keeps its two edges (four entries).
+    # Derived by hand: a path 0-1-2 and a separate edge 3-4; the component {0, 1, 2} keeps its two
+    # edges (four entries of the symmetric matrix) with their weights.
     adj = adjacency(5, np.array([0, 1, 3]), np.array([1, 2, 4]), np.array([0.9, 0.8, 0.99]))
     sub = _subgraph(adj, np.array([0, 1, 2]))
     assert sub.nnz == 4
