@@ -89,6 +89,8 @@ def _put(out: P.Partial, where: np.ndarray, part: P.Partial, sel: np.ndarray) ->
     out.l[where] = part.l[sel]
     if out.acc is not None and part.acc is not None:
         out.acc[where] = part.acc[sel]
+    if out.top_z.dtype != part.top_z.dtype:  # the compiled kernel's float64 scores: keep them
+        out.top_z = out.top_z.astype(np.result_type(out.top_z, part.top_z))
     out.top_z[where] = part.top_z[sel]
     out.top_i[where] = part.top_i[sel]
 

@@ -46,7 +46,7 @@ class Partial:
     m: np.ndarray  # (B,) float64 reference (max of z seen), -inf when no rows
     l: np.ndarray  # (B,) float64
     acc: np.ndarray | None  # (B, d) float32, None when not asked for
-    top_z: np.ndarray  # (B, k) float32, -inf padded, unsorted
+    top_z: np.ndarray  # (B, k) float32 (float64 from the compiled kernel), -inf padded, unsorted
     top_i: np.ndarray  # (B, k) int64 global row numbers, -1 padded
     s: np.ndarray | None = None  # (B,) float64 sum e^(z-m) (z-m), None when not asked for
     q: np.ndarray | None = None  # (B,) float64 sum e^(2(z-m)), None when not asked for

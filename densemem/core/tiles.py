@@ -158,6 +158,7 @@ def _reduce_fused(
     """
     assert run.acc is not None
     b, n = qz.shape[0], patterns.shape[0]
+    qz = qz * np.float32(_fused.LOG2E)  # the kernel works in base 2 (see :mod:`._fused`)
     buf = np.empty(b * t, dtype=np.float32)
     wide = _tile_buffer(patterns, t)
     parts = 1 if helpers is None else helpers._max_workers + 1  # noqa: SLF001 - our own pool
@@ -180,6 +181,7 @@ def _reduce_fused(
             scale[:] = _fused.fold_tile(z, start, run.m, run.l, run.top_z, run.top_i)
         run.acc *= scale.astype(np.float32)[:, None]
         run.acc += z @ rows
+    _fused.to_natural(run)
     return run
 
 
