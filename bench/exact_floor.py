@@ -120,7 +120,7 @@ def main(argv: list[str] | None = None) -> dict:
     ap.add_argument("--n", type=int, default=200_000)
     ap.add_argument("--dim", type=int, default=128)
     ap.add_argument("--queries", type=int, default=1000)
-    ap.add_argument("--repeats", type=int, default=5)
+    ap.add_argument("--repeats", type=int, default=9)
     ap.add_argument("--grid-repeats", type=int, default=5)
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--out", default=None, help="JSON path (default bench/results/exact_floor.json)")

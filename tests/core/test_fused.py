@@ -133,3 +133,30 @@ def test_float16_exact_pass_split_over_threads_equals_one_thread(kernel: str) ->
     assert np.abs(f1.states - ref).max() < 1e-5 and np.abs(f2.states - ref).max() < 1e-5
     assert np.array_equal(f1.top_i, f2.top_i)
     np.testing.assert_allclose(f1.lse, f2.lse, rtol=1e-12)
+
+
+@pytest.mark.parametrize("order", ["rising", "falling"])
+def test_lazy_reference_rises_over_a_far_larger_tile(kernel: str, order: str) -> None:
+    # The compiled kernel keeps a reference that rises only where a block's max is more than 2^60
+    # above it (rescaling the row's earlier blocks). Stored rows c_j q0 + noise with c_j rising
+    # from 0 to 6 under beta = 200: the scores climb by about 70 (base 2) per block of 256 rows,
+    # so in "rising" order nearly every block raises the reference (a missed rescale of the
+    # earlier blocks fails this test); in "falling" order the first block holds the max.
+    # Reference: scipy.special.softmax / logsumexp in float64; faiss.knn for the top list.
+    rng = np.random.default_rng(11)
+    n, d, beta = 6000, 16, 200.0
+    q0 = rng.standard_normal(d)
+    q0 /= np.linalg.norm(q0)
+    c = np.linspace(0.0, 6.0, n) if order == "rising" else np.linspace(6.0, 0.0, n)
+    x = (c[:, None] * q0 + 0.1 * rng.standard_normal((n, d))).astype(np.float32)
+    q = q0 + 0.05 * rng.standard_normal((9, d))
+    q = np.ascontiguousarray(q / np.linalg.norm(q, axis=1, keepdims=True), dtype=np.float32)
+    fin = P.finish(exact_reduce(q, x, beta, k=4, tile_mib=0.2, n_threads=1))  # 3,276-row tiles
+    z = beta * (q.astype(np.float64) @ x.T.astype(np.float64))
+    np.testing.assert_allclose(fin.lse, logsumexp(z, axis=1), rtol=0, atol=1e-5 * np.abs(z).max())
+    p = softmax(z, axis=1)
+    np.testing.assert_allclose(fin.states, p @ x.astype(np.float64), rtol=0, atol=1e-4)
+    _, truth = faiss.knn(q, x, 4, metric=faiss.METRIC_INNER_PRODUCT)
+    assert np.array_equal(fin.top_i[:, 0], truth[:, 0])
+    np.testing.assert_allclose(fin.top_w[:, 0], p[np.arange(9), fin.top_i[:, 0]], rtol=1e-3)
+    assert np.all(np.isfinite(fin.states)) and np.all(fin.top_w.sum(axis=1) <= 1 + 1e-5)
