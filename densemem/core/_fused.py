@@ -8,18 +8,26 @@ float32 rounding. The matrix products stay with NumPy's BLAS.
 The kernel works in base 2: the caller multiplies the (beta-scaled) queries by
 log2(e), so each stored-row tile ``z = qz @ rows.T`` (float32, one row per query)
 holds ``log2(e) beta q.x``, and ``2^(z - m) = e^(beta q.x - m ln 2)``. The kernel
-folds the tile into a running partial *in place*, per query row:
+folds the tile into a running partial *in place*, per query row, in one visit of
+blocks of 256 entries (each block in L1 between its two loops):
 
-1. group maxima: ``gmax[g] = max_c z[c*G + g]`` over the 16 strided column
-   slices (an element-wise max, vectorised), and the row max from them;
-2. top-k: only groups whose max beats the running k-th best are scanned (a
-   group holding a top-k entry has a max at least that large); the top list is
-   a min-heap whose root is that k-th best;
-3. ``m' = max(m, row max)``, ``e = 2^(z - m')`` written over ``z`` (for the
-   second product), ``l' = l 2^(m-m') + sum e`` summed in float64; the factor
-   ``2^(m-m')`` is returned to rescale the weighted sum.
+1. the block max (a vectorised reduction), and a scan of the block for the top
+   list only where that max beats the running k-th best (the top list is a
+   min-heap whose root is that k-th best; once it has filled, scans are rare);
+2. ``e = 2^(z - ref)`` written over ``z`` (for the second product) and summed
+   (float32 per block, the blocks in float64). ``ref`` is the running ``m``: a
+   reference, not the max. It rises to a block's max only where that max is more
+   than 2^60 above it (the first block seen; rarely after), and then the row's
+   earlier blocks and its sums are rescaled, so weights stay below 2^60 and no
+   separate max pass precedes the exponentials;
+3. ``l' = l 2^(m - m') + sum e``; the factor ``2^(m - m')`` is returned to rescale
+   the weighted sum. ``lse = m + log l`` is the same for any reference.
 
-:func:`to_natural` turns the running maximum and the top scores back into natural
+Without weights (a candidate search) the kernel keeps the row max and the top
+list only: group maxima over 16 strided column slices, then a scan of the groups
+whose max beats the running k-th best.
+
+:func:`to_natural` turns the running reference and the top scores back into natural
 units at the end of a pass. Base 2 makes the range reduction exact and free of
 multiplies: ``2^x = 2^n 2^r`` with ``n = round(x)`` (by adding 1.5 * 2^23) and
 ``r = x - n``, then a degree-5 polynomial for ``2^r`` on ``|r| <= 1/2``; a natural
@@ -43,7 +51,6 @@ import numpy as np
 
 __all__ = ["fold_tile", "to_natural", "widen", "available", "set_enabled", "LOG2E"]
 
-_GROUP = 16
 LOG2E = 1.4426950408889634  # log2(e): the kernel's scores are log2(e) times the natural ones
 _LN2 = 0.6931471805599453
 _MAX_K = 4096  # top lists longer than this use the NumPy kernel (the kernel keeps a heap)

@@ -22,7 +22,6 @@ E2_2 = np.float32(0.24022242426872253)
 E2_3 = np.float32(0.05550733581185341)
 E2_4 = np.float32(0.009671458974480629)
 E2_5 = np.float32(0.0013264568988233805)
-LN2 = math.log(2.0)
 F32_LOWEST = np.float32(-np.finfo(np.float32).max)
 F32_MAX = np.float32(np.finfo(np.float32).max)
 RAISE = np.float32(60.0)  # weights (base 2) stay below 2^60: sums of a tile row far from float32's 2^128
@@ -67,7 +66,7 @@ def as_i32(typingctx: Any, x: Any) -> Any:
 
 @njit(fastmath=_EXP_FLAGS, cache=True)
 def exp2_32(x: Any) -> Any:
-    """float32 2^x for x <= 0: 2^n 2^r with n = round(x), r = x - n in [-1/2, 1/2].
+    """float32 2^x for -126 <= x <= 127 (clamped below): 2^n 2^r, n = round(x), r = x - n in [-1/2, 1/2].
 
     n comes from adding 1.5 * 2^23 (the sum's last bit is the units digit, so the add
     rounds x to an integer, and the sum's low bits are n itself); r is then exact, and
@@ -147,7 +146,7 @@ def max_top(z: Any, offset: Any, m: Any, top_z: Any, top_i: Any) -> None:
             for g in range(g_n):
                 mx = max32(mx, gm[g])
         # the top list is a min-heap: its root top_z[i, 0] is the running k-th best
-        thr = top_z[i, 0] if k > 0 else np.float32(np.inf)
+        thr = top_z[i, 0] if k > 0 else F32_MAX  # finite, as above
         for g in range(g_n):
             if gm[g] > thr:
                 for c in range(_GROUP):
