@@ -17,8 +17,8 @@ blocks of 256 entries (each block in L1 between its two loops):
 2. ``e = 2^(z - ref)`` written over ``z`` (for the second product) and summed
    (float32 per block, the blocks in float64). ``ref`` is the running ``m``: a
    reference, not the max. It rises to a block's max only where that max is more
-   than 2^60 above it (the first block seen; rarely after), and then the row's
-   earlier blocks and its sums are rescaled, so weights stay below 2^60 and no
+   than 1 above it (the first blocks of a pass; rarely after), and then the row's
+   earlier blocks and its sums are rescaled, so weights stay below 2 and no
    separate max pass precedes the exponentials;
 3. ``l' = l 2^(m - m') + sum e``; the factor ``2^(m - m')`` is returned to rescale
    the weighted sum. ``lse = m + log l`` is the same for any reference.

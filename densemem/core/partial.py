@@ -43,7 +43,7 @@ _NEG = -np.inf
 class Partial:
     """Softmax statistics of one query batch over one set of stored rows."""
 
-    m: np.ndarray  # (B,) float64 reference (max of z seen, or within 60 ln 2 below it: compiled kernel), -inf when no rows
+    m: np.ndarray  # (B,) float64 reference (max of z seen, or up to ln 2 below it: compiled kernel), -inf when no rows
     l: np.ndarray  # (B,) float64
     acc: np.ndarray | None  # (B, d) float32, None when not asked for
     top_z: np.ndarray  # (B, k) float32 (float64 from the compiled kernel), -inf padded, unsorted

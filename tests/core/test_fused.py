@@ -137,7 +137,7 @@ def test_float16_exact_pass_split_over_threads_equals_one_thread(kernel: str) ->
 
 @pytest.mark.parametrize("order", ["rising", "falling"])
 def test_lazy_reference_rises_over_a_far_larger_tile(kernel: str, order: str) -> None:
-    # The compiled kernel keeps a reference that rises only where a block's max is more than 2^60
+    # The compiled kernel keeps a reference that rises only where a block's max is more than 1
     # above it (rescaling the row's earlier blocks). Stored rows c_j q0 + noise with c_j rising
     # from 0 to 6 under beta = 200: the scores climb by about 70 (base 2) per block of 256 rows,
     # so in "rising" order nearly every block raises the reference (a missed rescale of the
