@@ -13,6 +13,7 @@ import numpy as np
 import pytest
 from scipy.special import logsumexp, softmax
 
+from densemem.core import exact as exact_module
 from densemem.core import partial as P
 from densemem.core.exact import exact_reduce
 
@@ -247,10 +248,18 @@ def test_merge_of_far_apart_scales_stays_finite() -> None:
     np.testing.assert_allclose(fin.states, [[1.0, 0.0]])
 
 
-@pytest.mark.parametrize("n_threads,chunk", [(1, 512), (1, 4), (2, 4), (2, 7), (2, 512)])
-def test_exact_reduce_chunks_and_threads_match_scipy(n_threads: int, chunk: int) -> None:
+@pytest.mark.parametrize(
+    "n_threads,chunk,split_rows",
+    [(1, 512, 4096), (1, 4, 4096), (2, 4, 4096), (2, 7, 4096), (2, 512, 4096), (2, 512, 1), (2, 5, 1), (3, 4, 1)],
+)
+def test_exact_reduce_chunks_and_threads_match_scipy(
+    n_threads: int, chunk: int, split_rows: int, monkeypatch: pytest.MonkeyPatch
+) -> None:
     # Reference: scipy.special.softmax / logsumexp in float64, for
-    # several query-chunk sizes and thread counts, with tiles of a few rows (uneven).
+    # several query-chunk sizes and thread counts, with tiles of a few rows (uneven). With
+    # split_rows = 1 the threads split the 41 stored rows (14/13/14 over 3 threads) and their
+    # partials are merged, in query groups of chunk * n_threads (uneven too).
+    monkeypatch.setattr(exact_module, "SPLIT_ROWS", split_rows)
     rng = np.random.default_rng(chunk + n_threads)
     x = rng.standard_normal((41, 5)).astype(np.float32)
     q = rng.standard_normal((23, 5)).astype(np.float32)

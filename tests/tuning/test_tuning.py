@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 import re
@@ -17,6 +18,7 @@ from scipy.stats import entropy as scipy_entropy
 
 import densemem
 import densemem.tuning as tu
+from densemem.core import exact as exact_module
 from densemem.core import partial as P
 from densemem.core.exact import exact_reduce
 from densemem._synthetic import corrupt
@@ -205,16 +207,18 @@ def test_partial_moments_match_scipy_on_uneven_tiles(rng: np.random.Generator) -
     # Reference: scipy.special.softmax and scipy.stats.entropy (Shannon entropy -sum p ln p);
     # participation ratio 1 / sum p^2 from the same scipy weights. Tiles of a few rows and
     # query chunks of 7 over 2 threads make every tile, merge and chunk boundary uneven.
+    # With split_rows 1 the two threads split the stored rows and their moments are merged.
     x = rng.standard_normal((1003, 10)).astype(np.float32)
     q = rng.standard_normal((37, 10)).astype(np.float32)
-    for beta in (1e-9, 0.2, 3.0):
-        for need_acc in (True, False):
+    for beta, need_acc, split_rows in itertools.product((1e-9, 0.2, 3.0), (True, False), (4096, 1)):
+        with pytest.MonkeyPatch.context() as mp:
+            mp.setattr(exact_module, "SPLIT_ROWS", split_rows)
             part = exact_reduce(q, x, beta, k=3, tile_mib=0.002, n_threads=2, chunk=7, need_acc=need_acc,
                                 moments=True)
-            fin = P.finish(part)
-            p = softmax(beta * (q.astype(np.float64) @ x.T.astype(np.float64)), axis=1)
-            np.testing.assert_allclose(fin.entropy, scipy_entropy(p, axis=1), atol=2e-6)
-            np.testing.assert_allclose(fin.participation, 1.0 / np.sum(p * p, axis=1), rtol=1e-5)
+        fin = P.finish(part)
+        p = softmax(beta * (q.astype(np.float64) @ x.T.astype(np.float64)), axis=1)
+        np.testing.assert_allclose(fin.entropy, scipy_entropy(p, axis=1), atol=2e-6)
+        np.testing.assert_allclose(fin.participation, 1.0 / np.sum(p * p, axis=1), rtol=1e-5)
     plain = P.finish(exact_reduce(q, x, 3.0, k=3, tile_mib=0.002, n_threads=2, chunk=7))
     assert plain.entropy is None and plain.participation is None  # only when asked
 
