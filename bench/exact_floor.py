@@ -4,7 +4,8 @@
     python bench/exact_floor.py --n 20000    # quick check
 
 Rows (median of --repeats after one warm-up, both cores; the calls of a row are
-timed back to back in each repeat, so they see the same load):
+timed in turn in each repeat, so they see the same load, each after a short rest so
+that no library's idle threads still spin from the call before):
   floor      exact one-step retrieval (beta=8, k=10, no energy) against two float32
              matrix products of the same shapes (Q X^T, then W X) over stored-row
              tiles; the fastest of four arrangements (whole batch with threaded BLAS,
@@ -41,24 +42,34 @@ import _common as C  # noqa: E402
 import densemem  # noqa: E402
 from densemem.core import _fused  # noqa: E402
 from densemem.core.exact import FUSED_TILE_MIB  # noqa: E402
-from densemem.core.tiles import DEFAULT_TILE_MIB, map_query_chunks, n_threads_default, tile_rows_for  # noqa: E402
+from densemem.core.tiles import (  # noqa: E402
+    DEFAULT_TILE_MIB, map_query_chunks, map_row_ranges, n_threads_default, tile_rows_for,
+)
 
 BETAS = (1.0, 2.0, 4.0, 8.0, 16.0, 20.0, 30.0, 40.0, 60.0, 100.0)
 
 
-_RAW: dict[str, np.ndarray] = {}
+_RAW: dict[str, Any] = {}
+
+
+SETTLE = 0.25  # seconds of rest before each timed call
 
 
 def timed(fns: list[Callable[[], Any]], repeats: int) -> list[float]:
-    """Medians of each function, the functions called back to back in every repeat (one warm-up).
+    """Medians of each function, the functions called in turn in every repeat (one warm-up).
 
-    The per-repeat times stay in ``_RAW["last"]`` (repeats x functions) for :func:`paired`.
+    Each call starts after ``SETTLE`` seconds of rest: OpenBLAS and OpenMP keep their
+    threads spinning for a while after a threaded call, and a call that starts beside
+    them runs slower (on 2 cores, exact retrieval right after the whole-batch products
+    took 0.387 s, after a rest 0.363 s). The per-repeat times stay in ``_RAW["last"]``
+    (repeats x functions) for :func:`paired`.
     """
     for fn in fns:
         fn()
     times = np.zeros((repeats, len(fns)))
     for r in range(repeats):
         for i, fn in enumerate(fns):
+            time.sleep(SETTLE)
             t0 = time.perf_counter()
             fn()
             times[r, i] = time.perf_counter() - t0
@@ -90,29 +101,34 @@ def blas_by_library() -> list[dict[str, Any]]:
 def two_products(q: np.ndarray, x: np.ndarray, n_threads: int) -> Callable[[], Any]:
     """The floor: Q X^T then W X over stored-row tiles, nothing between them; the fastest arrangement.
 
-    Tried: the whole batch on BLAS's threads or one query chunk per core, each with the
-    default tile and with the compiled kernel's smaller tile (``FUSED_TILE_MIB``).
+    Tried: the whole batch on BLAS's threads, one query chunk per core, or one range of
+    stored rows per core (as densemem runs), each with the default tile, the compiled
+    kernel's tile (``FUSED_TILE_MIB``) and 2 MiB. The chosen one is recorded.
     """
     d = x.shape[1]
 
-    def over_tiles(qq: np.ndarray, tile_mib: float) -> np.ndarray:
-        t = min(tile_rows_for(qq.shape[0], tile_mib), x.shape[0])
+    def over_tiles(qq: np.ndarray, tile_mib: float, lo: int = 0, hi: int = x.shape[0]) -> np.ndarray:
+        t = min(tile_rows_for(qq.shape[0], tile_mib), hi - lo)
         buf = np.empty((qq.shape[0], t), np.float32)
         acc = np.zeros((qq.shape[0], d), np.float32)
-        for s in range(0, x.shape[0], t):
-            rows = x[s : s + t]
+        for s in range(lo, hi, t):
+            rows = x[s : min(s + t, hi)]
             z = buf[:, : rows.shape[0]]
             np.matmul(qq, rows.T, out=z)
             acc += z @ rows
         return acc
 
-    options: list[Callable[[], Any]] = []
-    for tm in (DEFAULT_TILE_MIB, FUSED_TILE_MIB):
-        options.append(lambda tm=tm: over_tiles(q, tm))
-        options.append(lambda tm=tm: map_query_chunks(lambda sl: over_tiles(q[sl], tm), q.shape[0],
-                                                      n_threads=n_threads, chunk=512))
-    times = timed(options, 3)
-    return options[int(np.argmin(times))]
+    options: dict[str, Callable[[], Any]] = {}
+    for tm in sorted({DEFAULT_TILE_MIB, FUSED_TILE_MIB, 2.0}):
+        options[f"whole batch, {tm:g} MiB"] = lambda tm=tm: over_tiles(q, tm)
+        options[f"query chunks, {tm:g} MiB"] = lambda tm=tm: map_query_chunks(
+            lambda sl: over_tiles(q[sl], tm), q.shape[0], n_threads=n_threads, chunk=512)
+        options[f"row ranges, {tm:g} MiB"] = lambda tm=tm: map_row_ranges(
+            lambda lo, hi: over_tiles(q, tm, lo, hi), x.shape[0], n_threads=n_threads)
+    times = timed(list(options.values()), 3)
+    best = list(options)[int(np.argmin(times))]
+    _RAW["floor"] = best
+    return options[best]
 
 
 def main(argv: list[str] | None = None) -> dict:
@@ -146,7 +162,8 @@ def main(argv: list[str] | None = None) -> dict:
     # exact against the two-product floor, with the compiled kernel and without it
     floor = two_products(q, x, threads)
     t_ex, t_floor = timed([lambda: retrieve(8.0, "exact"), floor], args.repeats)
-    add("floor", t_ex, "two float32 products", t_floor, 1.15, kernel="compiled" if compiled else "numpy")
+    add("floor", t_ex, "two float32 products", t_floor, 1.15, kernel="compiled" if compiled else "numpy",
+        arrangement=_RAW["floor"])
     if compiled:
         _fused.set_enabled(False)
         t_np, t_floor2 = timed([lambda: retrieve(8.0, "exact"), floor], args.repeats)

@@ -96,11 +96,13 @@ def _put(out: P.Partial, where: np.ndarray, part: P.Partial, sel: np.ndarray) ->
 
 
 # Cost of one exact top-kc search per query, in units of one exact pass (two products and the
-# rest): about 0.6 + 0.0014 kc, measured by bench/exact_floor.py's machine (2 cores, N = 1e5,
-# d = 128, 1000 queries) for both the compiled search and faiss.knn. A search that costs more
-# than the exact pass is never started.
-SEARCH_COST = 0.6
-SEARCH_COST_PER_CANDIDATE = 0.0014
+# rest), 2 cores, N = 1e5, d = 128, 1000 random unit queries. On a 2-core Intel Xeon with
+# AVX-512, the compiled search over row ranges: 0.54, 0.67, 1.28 and 3.69 at kc = 16, 64, 256
+# and 1024, about 0.5 + 0.0031 kc (on the first machine, an older Intel one, 0.6 + 0.0014 kc
+# for both the compiled search and faiss.knn). A search that costs more than the exact pass
+# is never started.
+SEARCH_COST = 0.5
+SEARCH_COST_PER_CANDIDATE = 0.0031
 
 
 def search_cost(kc: int) -> float:
