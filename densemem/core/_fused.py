@@ -49,7 +49,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["fold_tile", "to_natural", "widen", "available", "set_enabled", "LOG2E"]
+__all__ = ["fold_tile", "top_rows", "to_natural", "widen", "available", "set_enabled", "LOG2E"]
 
 LOG2E = 1.4426950408889634  # log2(e): the kernel's scores are log2(e) times the natural ones
 _LN2 = 0.6931471805599453
@@ -71,8 +71,8 @@ def set_enabled(flag: bool) -> bool:
     For measurements and tests that compare both kernels in one process; the
     environment variable ``DENSEMEM_KERNEL=numpy`` sets the default.
     """
-    global _kernel, _tried, _widen
-    _tried, _kernel, _widen = False, None, None
+    global _kernel, _tried, _widen, _top_rows
+    _tried, _kernel, _widen, _top_rows = False, None, None, None
     if flag:
         _load(force=True)
     else:
@@ -82,7 +82,7 @@ def set_enabled(flag: bool) -> bool:
 
 def _load(force: bool = False) -> Any:
     global _kernel, _tried
-    global _widen
+    global _widen, _top_rows
     if _tried:
         return _kernel
     with _lock:
@@ -90,15 +90,16 @@ def _load(force: bool = False) -> Any:
             return _kernel
         if force or os.environ.get("DENSEMEM_KERNEL", "").lower() != "numpy":
             try:
-                from ._fused_numba import kernel, widen
+                from ._fused_numba import kernel, top_rows, widen
             except ImportError:
-                kernel = widen = None
-            _kernel, _widen = kernel, widen
+                kernel = widen = top_rows = None
+            _kernel, _widen, _top_rows = kernel, widen, top_rows
         _tried = True
     return _kernel
 
 
 _widen: Any = None
+_top_rows: Any = None
 
 
 def widen(rows: np.ndarray, out: np.ndarray) -> None:
@@ -134,6 +135,16 @@ def fold_tile(
     scale = np.empty(z.shape[0], dtype=np.float64)
     kern(z, offset, m, l, top_z, top_i, scale, weights)
     return scale
+
+
+def top_rows(zt: np.ndarray, offset: int, top_z: np.ndarray, top_i: np.ndarray) -> None:
+    """Fold a tile laid out (stored rows x queries) into the running top lists, in place.
+
+    ``top_z`` / ``top_i`` are min-heaps per query (root: the running k-th best), as in
+    :func:`fold_tile` without weights; the row numbers are ``offset + j``.
+    """
+    _load()
+    _top_rows(zt, offset, top_z, top_i)
 
 
 def to_natural(run: Any) -> None:

@@ -162,22 +162,27 @@ def test_lazy_reference_rises_over_a_far_larger_tile(kernel: str, order: str) ->
     assert np.all(np.isfinite(fin.states)) and np.all(fin.top_w.sum(axis=1) <= 1 + 1e-5)
 
 
-@pytest.mark.parametrize("n_threads,small_batch", [(1, 512), (2, 0), (2, 512), (3, 512)])
-def test_search_top_matches_faiss_on_digits(n_threads: int, small_batch: int, digits_unit: np.ndarray,
-                                            monkeypatch: pytest.MonkeyPatch) -> None:
+@pytest.mark.parametrize(
+    "n_threads,small_batch,rows_first", [(1, 512, 0), (1, 512, 512), (2, 0, 0), (2, 512, 0), (2, 512, 512), (3, 512, 512)]
+)
+def test_search_top_matches_faiss_on_digits(n_threads: int, small_batch: int, rows_first: int,
+                                            digits_unit: np.ndarray, monkeypatch: pytest.MonkeyPatch) -> None:
     # Reference: faiss.knn (brute-force inner product) on the UCI optdigits rows bundled with
     # scikit-learn. small_batch 0: the threads split the queries; 512: they split the stored
-    # rows (1,797 over 2 or 3 threads, uneven) and the top lists are merged. Duplicate digit
-    # images tie, so the lists must agree as score sets, and as ids wherever scores differ.
+    # rows (1,797 over 2 or 3 threads, uneven) and the top lists are merged. rows_first 512:
+    # the product is rows @ q.T and the top lists are kept from the (rows x queries) tile.
+    # Duplicate digit images tie, so the lists must agree as score sets, and as ids wherever
+    # scores differ.
     pytest.importorskip("numba")
     from densemem.core import tiles
 
     assert _fused.set_enabled(True)
     monkeypatch.setattr(tiles, "SMALL_BATCH", small_batch)
+    monkeypatch.setattr(tiles, "ROWS_FIRST_BATCH", rows_first)
     x = np.ascontiguousarray(digits_unit)
     q = np.ascontiguousarray(x[::7] + 0.05 * np.random.default_rng(3).standard_normal((257, 64)).astype(np.float32))
     kc = 24
-    got_s, got_i = tiles.search_top(q, x, kc, tile_mib=0.05, n_threads=n_threads)  # 204-row tiles
+    got_s, got_i = tiles.search_top(q, x, kc, tile_mib=0.05, n_threads=n_threads)  # tiles of 50-200 rows
     ref_s, ref_i = faiss.knn(q, x, kc, metric=faiss.METRIC_INNER_PRODUCT)
     np.testing.assert_allclose(got_s, ref_s, rtol=0, atol=2e-6)
     assert np.all(np.diff(got_s, axis=1) <= 0)  # best first
