@@ -19,10 +19,9 @@ import faiss
 import numpy as np
 from faiss.contrib.ivf_tools import add_preassigned, range_search_preassigned
 
-from threadpoolctl import threadpool_limits
 
 from ..core.index import make_index, train_ivf
-from ..core.tiles import n_threads_default
+from ..core.tiles import blas_single_thread, n_threads_default
 
 __all__ = [
     "SLACK",
@@ -486,7 +485,7 @@ def join_pairs(
 
     threads = n_threads_default() if n_threads is None else n_threads
     if threads > 1 and len(lists) > 1:
-        with threadpool_limits(limits=1, user_api="blas"), ThreadPoolExecutor(max_workers=threads) as pool:
+        with blas_single_thread(), ThreadPoolExecutor(max_workers=threads) as pool:
             parts = list(pool.map(one, lists))
     else:
         parts = [one(c) for c in lists]
