@@ -168,7 +168,9 @@ def top_rows(zt: Any, offset: Any, top_z: Any, top_i: Any) -> None:
     For a few queries the product ``rows @ q.T`` runs faster than ``q @ rows.T`` (BLAS
     packs the small side). Each stored row is one vector of the queries' scores; its
     largest margin over the queries' k-th bests (a vectorised reduction) says whether
-    any query's list changes, and only then are the queries scanned.
+    any query's list changes, and only then are the queries scanned. Scores must be
+    finite (the fast-math flags promise it; the public boundary rejects non-finite input):
+    a NaN in one query's scores would hide the row from every query.
     """
     w, b = zt.shape
     k = top_z.shape[1]

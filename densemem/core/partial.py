@@ -105,8 +105,8 @@ def _block_top(z: np.ndarray, k: int, offset: int) -> tuple[np.ndarray, np.ndarr
     n_groups = width // _GROUP
     if n_groups <= k:
         idx = np.broadcast_to(np.arange(width, dtype=np.int64), z.shape)
-        vals, top_i = _select_top(z, idx, k)
-        return vals, top_i + offset, z.max(axis=1).astype(np.float64)
+        vals, top_i = _select_top(z, idx, k)  # padded with -1 where k > width: stays -1
+        return vals, np.where(top_i >= 0, top_i + offset, -1), z.max(axis=1).astype(np.float64)
     main = n_groups * _GROUP
     gmax = z[:, :n_groups].copy()  # (B, G): element-wise max of 16 column slices
     for c in range(1, _GROUP):

@@ -5,10 +5,12 @@ stored rows in tiles of ``tile_rows`` and folds each tile's partial into a
 running one. Tile size comes from a budget in MiB for the (query chunk x tile)
 score block.
 
-Threads: NumPy's element-wise passes (subtract, exp, sum) are single-threaded,
-so splitting the queries over one Python thread per core with single-threaded
-BLAS keeps both cores busy through the whole pipeline. ``bench/retrieve_vs_faiss.py``
-measures this against one thread with multi-threaded BLAS.
+Threads: NumPy's element-wise passes (subtract, exp, sum) and the compiled kernel
+are single-threaded, so one Python thread per core runs with single-threaded BLAS.
+Each takes a contiguous range of the stored rows for a group of queries
+(:func:`map_row_ranges`; the callers merge the ranges' partials or top lists), or,
+for few rows or many queries, a chunk of the queries (:func:`map_query_chunks`).
+``bench/exact_floor.py`` measures the arrangements against the two products alone.
 """
 
 from __future__ import annotations
@@ -218,6 +220,8 @@ def search_top(
     n = patterns.shape[0]
     qf = np.ascontiguousarray(q, dtype=np.float32)
     b_all = qf.shape[0]
+    if b_all == 0:
+        return np.empty((0, kc), np.float32), np.empty((0, kc), np.int64)
 
     def run(qs: slice, rs: slice) -> tuple[np.ndarray, np.ndarray]:
         part = qf[qs]
@@ -259,27 +263,54 @@ def search_top(
         parts = map_query_chunks(lambda qs: run(qs, slice(0, n)), b_all, n_threads=n_threads, chunk=chunk)
         top_z = np.concatenate([p[0] for p in parts])
         top_i = np.concatenate([p[1] for p in parts])
-    # best first; among equal scores the lower row number first (as one pass over the rows)
+    # best first, equal scores by row number (which of several tied rows at the k-th place is
+    # kept depends on the tiling and the split)
     order = np.lexsort((top_i, -top_z), axis=1)[:, :kc]
     return np.take_along_axis(top_z, order, 1), np.take_along_axis(top_i, order, 1)
 
 
-_controller: ThreadpoolController | None = None
-_controller_lock = threading.Lock()
+class _SingleThreadBlas:
+    """Process-wide single-threaded BLAS while any worker pool of densemem runs.
 
-
-def blas_single_thread() -> Any:
-    """A context in which the loaded BLAS libraries run on one thread (worker threads use it).
-
-    The library scan behind it (reading the process's memory map) runs once per process:
-    it cost 0.7 ms per call, a tenth of a one-query retrieval over 200k rows.
+    Entries are counted under a lock: the first limits, the last restores. Pools whose
+    lives overlap (calls from several user threads) would otherwise restore each other's
+    limit in the wrong order and leave BLAS on one thread for good. (threadpoolctl lets
+    only one live thread change a pthreads OpenBLAS's limit; from the others the limit is
+    a no-op and the products may share the cores with BLAS's own threads.) The library scan behind the
+    limit (reading the process's memory map) runs once per process: it cost 0.7 ms per call,
+    a tenth of a one-query retrieval over 200k rows. It covers the BLAS libraries loaded by
+    then (NumPy's and faiss's, both loaded by ``import densemem``); the worker threads call
+    only NumPy's products.
     """
-    global _controller
-    with _controller_lock:
-        if _controller is None:
-            _controller = ThreadpoolController()
-        ctl = _controller
-    return ctl.limit(limits=1, user_api="blas")
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._count = 0
+        self._controller: ThreadpoolController | None = None
+        self._limiter: Any = None
+
+    def __enter__(self) -> None:
+        with self._lock:
+            if self._count == 0:
+                if self._controller is None:
+                    self._controller = ThreadpoolController()
+                self._limiter = self._controller.limit(limits=1, user_api="blas")
+            self._count += 1
+
+    def __exit__(self, *exc: object) -> None:
+        with self._lock:
+            self._count -= 1
+            if self._count == 0 and self._limiter is not None:
+                self._limiter.restore_original_limits()
+                self._limiter = None
+
+
+_SINGLE_BLAS = _SingleThreadBlas()
+
+
+def blas_single_thread() -> _SingleThreadBlas:
+    """A context in which BLAS runs on one thread (worker pools use it; see :class:`_SingleThreadBlas`)."""
+    return _SINGLE_BLAS
 
 
 def map_row_ranges(fn: Callable[[int, int], T], n_rows: int, *, n_threads: int) -> list[T]:

@@ -273,3 +273,19 @@ def test_exact_reduce_chunks_and_threads_match_scipy(
     order = np.argsort(-z, axis=1)[:, :6]
     np.testing.assert_array_equal(fin.top_i, order)
     np.testing.assert_allclose(fin.top_w, np.take_along_axis(p, order, 1), rtol=RTOL)
+
+
+@pytest.mark.parametrize("need_acc,moments", [(False, False), (True, True)])
+def test_top_list_longer_than_the_rows_is_padded_with_minus_one(need_acc: bool, moments: bool) -> None:
+    # Common practice (the -1 / -inf padding of faiss search results): with k larger than the
+    # stored rows the extra places hold row -1 and score -inf, never a real-looking row number.
+    # The NumPy kernel runs here (no weighted sum, or moments), with tiles of 3 rows.
+    rng = np.random.default_rng(4)
+    x = rng.standard_normal((7, 4)).astype(np.float32)
+    q = rng.standard_normal((5, 4)).astype(np.float32)
+    fin = P.finish(exact_reduce(q, x, 2.0, k=10, tile_mib=3 * 5 * 4 / 2**20, n_threads=1,
+                                need_acc=need_acc, moments=moments))
+    z = 2.0 * q.astype(np.float64) @ x.astype(np.float64).T
+    np.testing.assert_array_equal(fin.top_i[:, :7], np.argsort(-z, axis=1))
+    np.testing.assert_array_equal(fin.top_i[:, 7:], -1)
+    assert np.all(fin.top_w[:, 7:] == 0)
