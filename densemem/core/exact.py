@@ -61,7 +61,7 @@ def exact_reduce(
     merged (exactly: :func:`densemem.core.partial.merge`). Otherwise each thread takes
     contiguous query chunks of at most ``chunk`` and walks all stored rows. Tiles are
     sized so that one (queries x tile) block fits ``tile_mib`` (at most
-    :data:`FUSED_TILE_MIB` where the compiled kernel runs). With ``moments`` the
+    :data:`FUSED_TILE_MIB` where the compiled kernel runs on a thread's own tiles). With ``moments`` the
     partial also carries the sums behind the entropy and participation ratio of each
     query's full weight vector (same pass).
 
@@ -74,13 +74,14 @@ def exact_reduce(
     qz = np.ascontiguousarray(queries * np.float32(beta), dtype=np.float32)
     n_q = qz.shape[0]
     n, dim = patterns.shape
-    if need_acc and not moments and _fused.available(k):
-        tile_mib = min(tile_mib, FUSED_TILE_MIB)
+    # the compiled kernel's tile where each thread walks its own tiles (not on the single-chunk
+    # path below, which hands each tile to helper threads: more tiles meant more hand-offs)
+    own_tile = min(tile_mib, FUSED_TILE_MIB) if need_acc and not moments and _fused.available(k) else tile_mib
     if n_threads > 1 and n >= SPLIT_ROWS * n_threads and n_q > 0:
         group = max(chunk, 1) * n_threads
 
         def over_rows(qs: np.ndarray, lo: int, hi: int) -> P.Partial:
-            rows = tile_rows_for(qs.shape[0], tile_mib, dim)
+            rows = tile_rows_for(qs.shape[0], own_tile, dim)
             part = reduce_rows(qs, patterns[lo:hi], k=k, tile_rows=rows, need_acc=need_acc, moments=moments)
             part.top_i = np.where(part.top_i >= 0, part.top_i + lo, -1)
             return part
@@ -104,7 +105,7 @@ def exact_reduce(
 
     def run(sl: slice) -> P.Partial:
         part = qz[sl]
-        rows = tile_rows_for(part.shape[0], tile_mib, dim)
+        rows = tile_rows_for(part.shape[0], own_tile, dim)
         return reduce_rows(part, patterns, k=k, tile_rows=rows, need_acc=need_acc, moments=moments)
 
     parts = map_query_chunks(run, n_q, n_threads=n_threads, chunk=chunk)

@@ -249,8 +249,8 @@ def search_top(
         return top_z, top_i
 
     if n_threads > 1 and b_all <= SMALL_BATCH * n_threads and n >= 2 * n_threads * kc:
-        # one stored-row range per thread, then the top lists merged: every thread reads half
-        # the rows, not all, and a product with few query rows costs about as much as reading
+        # one stored-row range per thread, then the top lists merged: every thread reads its
+        # share of the rows, not all, and a product with few query rows costs about as much as reading
         # its tile (BLAS packs it). Over 200k x 128 on 2 cores: 32 queries (auto's sample)
         # 23 ms split by queries, 16 ms by rows; 1,024 queries 191 ms and 180 ms
         parts = map_row_ranges(lambda lo, hi: run(slice(0, b_all), slice(lo, hi)), n, n_threads=n_threads)
@@ -276,11 +276,12 @@ class _SingleThreadBlas:
     lives overlap (calls from several user threads) would otherwise restore each other's
     limit in the wrong order and leave BLAS on one thread for good. (threadpoolctl lets
     only one live thread change a pthreads OpenBLAS's limit; from the others the limit is
-    a no-op and the products may share the cores with BLAS's own threads.) The library scan behind the
-    limit (reading the process's memory map) runs once per process: it cost 0.7 ms per call,
-    a tenth of a one-query retrieval over 200k rows. It covers the BLAS libraries loaded by
-    then (NumPy's and faiss's, both loaded by ``import densemem``); the worker threads call
-    only NumPy's products.
+    a no-op and the products may share the cores with BLAS's own threads.)
+
+    The library scan behind the limit (reading the process's memory map) runs once per
+    process: it cost 0.7 ms per call, a tenth of a one-query retrieval over 200k rows. It
+    covers the BLAS libraries loaded by then (NumPy's and faiss's, both loaded by
+    ``import densemem``); the worker threads call only NumPy's products.
     """
 
     def __init__(self) -> None:

@@ -19,7 +19,6 @@ import faiss
 import numpy as np
 from faiss.contrib.ivf_tools import add_preassigned, range_search_preassigned
 
-
 from ..core.index import make_index, train_ivf
 from ..core.tiles import blas_single_thread, n_threads_default
 
