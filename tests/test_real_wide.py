@@ -96,3 +96,49 @@ def test_exact_top_weights_on_patches_match_scipy_softmax(patches, rng, beta):
     bound = np.expm1(2 * (d * u / (1 - d * u) + 3 * u) * mag) + 1e-6
     rel = np.abs(res.top_weights / np.where(ref > 1e-250, ref, 1.0) - 1)  # float64 resolves these
     assert np.all(np.where(ref > 1e-250, rel, 0.0) <= bound)
+
+
+def test_exact_with_rows_split_over_threads_matches_scipy_and_faiss(rng):
+    # Reference: scipy.special.softmax over float64 scores, and faiss exact
+    # inner-product search (IndexFlatIP) for the nearest stored patch. 16,171 centred patches
+    # of 'china.jpg' at stride 4 (768 wide): above SPLIT_ROWS per thread on 2 and 3 threads, so
+    # each thread folds its own range of the rows and the partials are merged (uneven over 3).
+    pytest.importorskip("PIL")
+    from scipy.special import softmax
+    from sklearn.datasets import load_sample_images
+
+    from densemem.core import exact as exact_module
+
+    img = load_sample_images().images[0].astype(np.float32) / 255.0
+    x = np.asarray([img[i : i + 16, j : j + 16].ravel() for i in range(0, img.shape[0] - 15, 4)
+                    for j in range(0, img.shape[1] - 15, 4)], dtype=np.float32)
+    x -= x.mean(axis=1, keepdims=True)
+    x = x[np.linalg.norm(x, axis=1) > 1e-3]
+    assert x.shape[0] >= 3 * exact_module.SPLIT_ROWS and x.shape[1] == 768
+    pick = rng.choice(x.shape[0], 96, replace=False)
+    for n_threads in (2, 3):
+        mem = DenseMemory.from_array(x, n_threads=n_threads)
+        xn = mem.patterns.astype(np.float64)
+        q = (xn[pick] + 0.5 * rng.standard_normal((96, 768)) / np.sqrt(768)).astype(np.float32)
+        beta = 30.0
+        res = mem.retrieve(q, beta, method="exact", k=5)
+        z = beta * (q.astype(np.float64) @ xn.T)
+        p = softmax(z, axis=1)
+        # each weight within the float32 dot-product bound of its score (Higham, "Accuracy and
+        # Stability of Numerical Algorithms", 2nd ed. 2002, sec. 3.1, from memory), doubled for
+        # exp(z_i - lse), plus the roundings of the scaled queries; the state moves by at most
+        # that relative change of each weight times |x|, plus float32 sums
+        u, d = 2.0**-24, 768
+        mag = beta * (np.abs(q).astype(np.float64) @ np.abs(xn).T).max(axis=1, keepdims=True)
+        rel = np.expm1(2 * (d * u / (1 - d * u) + 3 * u) * mag)
+        assert np.all(np.abs(res.states - p @ xn) <= rel * (p @ np.abs(xn)) + 1e-6)
+        flat = faiss.IndexFlatIP(768)
+        flat.add(mem.patterns.astype(np.float32))
+        _, nearest = flat.search(q, 1)
+        assert np.mean(res.top_ids[:, 0] == nearest[:, 0]) >= 0.99
+        order = np.argsort(-z, axis=1)[:, :5]
+        gaps = -np.diff(np.take_along_axis(z, order, 1), axis=1).min(axis=1)
+        clear = gaps > 1e-3 * beta  # no near-tie in the top 5: the ids must agree in order
+        assert clear.mean() > 0.5
+        np.testing.assert_array_equal(res.top_ids[clear], order[clear])
+        assert np.all(np.abs(res.top_weights / np.take_along_axis(p, res.top_ids, 1) - 1) <= rel + 1e-6)
